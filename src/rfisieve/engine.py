@@ -1,0 +1,526 @@
+"""The flagging engine: chunks of dumps with halos, (chunk x product) tasks on dask.
+
+Layering: this module reads scans through :mod:`rfisieve.io`, calls the detectors
+(pure array functions in :mod:`rfisieve.sk`, :mod:`rfisieve.sumthreshold`,
+:mod:`rfisieve.morphology`) and writes mask files.  It knows nothing of Snakemake.
+
+Chunks and halos
+----------------
+A scan is cut along time into chunks of ``chunk_dumps`` dumps.  Each task reads its
+chunk plus ``halo`` dumps on each side, flags that extended plane and keeps only the
+chunk's own rows.  The halo rule (see :func:`detect_halo`) is the larger of the
+detectors' own reach: SumThreshold's (background kernel reach plus the largest time
+window, per iteration, from :func:`rfisieve.sumthreshold.sumthreshold_halo`) and the
+kurtosis blocks' (one block, blocks being aligned to absolute dump numbers).  Within
+that reach a sample's result does not depend on where chunks start; what is left is
+the plane-wide robust noise estimate, which is estimated on chunk + halo and varies
+by well under a percent between chunkings (measured: see tests/test_engine.py).
+The merge stage grows flags with the SIR operator over chunks with its own halo
+(:data:`SIR_HALO` dumps), and the per-channel occupancy cut needs the whole scan's
+counts, so it is applied in a second pass over the finished mask.
+
+Memory is bounded by ``chunk_dumps x nchan x nprod x (in-flight chunks)``, where at
+most ``2 x workers`` chunks are in flight, never by the scan's length.
+"""
+
+import json
+import time as _time
+from pathlib import Path
+
+import dask
+import h5py
+import numpy as np
+
+from . import __version__, bits
+from .errors import RfisieveError, ScanError
+from .io import atomic_output, file_identity, open_scan, scan_name
+from .masks import amplitude, bit_attrs, channel_cut, dump_cut, invalid_mask, static_channels
+
+DETECTORS = ("sk", "sumthreshold")
+
+#: Halo (dumps) of the merge stage's SIR growth along time.  A flagged run of L
+#: dumps grows by at most eta L / (1 - eta) on each side (from the SIR definition), so
+#: 256 dumps make growth exact for runs up to 1024 dumps at eta = 0.2.
+SIR_HALO = 256
+
+#: Bin edges of the SK histogram kept for the review's kurtosis diagnostic.
+SK_EDGES = np.linspace(0.0, 3.0, 301)
+
+
+# -- planning -------------------------------------------------------------------
+def _sumthreshold_settings(band):
+    st = dict(band["sumthreshold"])
+    st.pop("enabled", None)
+    return st
+
+
+def _kurtosis_halo(band, scan):
+    if not band["kurtosis"]["enabled"] or scan.has_s2:
+        return 0
+    from .sk import sk_block_halo
+
+    return int(sk_block_halo(int(band["kurtosis"]["block_dumps"])))
+
+
+def detect_halo(band, scan):
+    """Halo in dumps on each side of a chunk for the detection stage."""
+    halo = 0
+    if band["sumthreshold"]["enabled"]:
+        from .sumthreshold import sumthreshold_halo
+
+        halo = max(halo, int(sumthreshold_halo(_sumthreshold_settings(band))))
+    return max(halo, _kurtosis_halo(band, scan))
+
+
+def _chunks(ntime, chunk_dumps):
+    return [[s, min(s + chunk_dumps, ntime)] for s in range(0, ntime, chunk_dumps)]
+
+
+def _check_run(run):
+    cd = run.get("chunk_dumps")
+    if not isinstance(cd, int) or isinstance(cd, bool) or cd < 1:
+        raise RfisieveError(f"run config: chunk_dumps = {cd!r}, expected a whole number of dumps >= 1")
+    w = run.get("workers")
+    if not isinstance(w, int) or isinstance(w, bool) or w < 1:
+        raise RfisieveError(f"run config: workers = {w!r}, expected a whole number >= 1")
+
+
+def plan_scan(scan_path, band, run):
+    """Plan the chunks of one scan: a JSON-serialisable dict (see module docstring)."""
+    _check_run(run)
+    with open_scan(scan_path, run.get("layout")) as scan:
+        _check_band_matches(scan, band)
+        return {
+            "scan": scan.name,
+            "path": str(Path(scan_path).resolve()),
+            "band": scan.band,
+            "ntime": scan.ntime,
+            "nchan": scan.nchan,
+            "nprod": scan.nprod,
+            "chunk_dumps": int(run["chunk_dumps"]),
+            "halo": detect_halo(band, scan),
+            "sir_halo": SIR_HALO,
+            "chunks": _chunks(scan.ntime, int(run["chunk_dumps"])),
+            "has_s2": bool(scan.has_s2),
+            "products": list(scan.products),
+            "autos": [bool(a) for a in scan.autos],
+        }
+
+
+def _check_band_matches(scan, band):
+    want = band.get("band")
+    if want and scan.band != want:
+        raise ScanError(scan.path, f"band is {scan.band!r} but the band config given is for {want!r}")
+
+
+# -- scan metadata passed to tasks -------------------------------------------------
+def _meta(scan, band):
+    k = band["kurtosis"]
+    meta = {
+        "path": str(scan.path),
+        "layout": scan.layout,
+        "nchan": scan.nchan,
+        "nprod": scan.nprod,
+        "autos": [bool(a) for a in scan.autos],
+        "has_s2": scan.has_s2,
+        "accumulations": scan.accumulations,
+        "presum": scan.presum,
+        "d": scan.d,
+        "static": static_channels(scan.freq, band.get("static")),
+    }
+    if k["enabled"]:
+        from scipy.stats import norm
+
+        pfa = k["pfa"] if k.get("pfa") is not None else float(norm.sf(k["sigma"]))
+        if scan.has_s2:
+            # Mode (a): SK per dump, M = accumulations, N = presum (DESIGN.md 3).
+            m, n = scan.accumulations, scan.presum
+        else:
+            # Mode (b): blocks of M dumps, N = raw spectra per dump.
+            m, n = int(k["block_dumps"]), scan.accumulations * scan.presum
+        meta["sk"] = {"mode": "s2" if scan.has_s2 else "block", "m": m, "n": n, "d": scan.d,
+                      "pfa": pfa, "method": k["method"]}
+    return meta
+
+
+def _read_chunk(path, layout, start, stop, what):
+    with open_scan(path, layout) as scan:
+        return scan.read(start, stop, what)
+
+
+def _prior(block, p, meta, values, auto):
+    invalid = invalid_mask(values, auto)
+    if "s2" in block and auto:
+        s2 = block["s2"][:, :, p]
+        invalid |= ~np.isfinite(s2) | (s2 <= 0)
+    excluded = invalid | meta["static"][np.newaxis, :]
+    if "flags" in block:
+        excluded |= block["flags"][:, :, p]
+    return invalid, excluded
+
+
+def _detect_product(block, p, detector, band, meta, t0):
+    """One (chunk x product) task: that detector's bit and the invalid bit, uint8 (time, chan)."""
+    auto = meta["autos"][p]
+    values = amplitude(block["data"][:, :, p], auto)
+    invalid, excluded = _prior(block, p, meta, values, auto)
+    out = np.where(invalid, np.uint8(bits.INVALID), np.uint8(0))
+    hist = None
+    if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
+        from .sumthreshold import sumthreshold_flagger
+
+        hit = sumthreshold_flagger(values, invalid=excluded, **_sumthreshold_settings(band))
+        out[hit & ~excluded] |= bits.SUMTHRESHOLD
+    elif detector == "sk" and auto and "sk" in meta:
+        hit, hist = _kurtosis(block, p, values, excluded, meta["sk"], t0)
+        out[hit & ~excluded] |= bits.SK
+    return out, hist
+
+
+def _kurtosis(block, p, values, excluded, sk, t0):
+    from .sk import sk_estimator, sk_flag_blocks, sk_flag_dumps, sk_thresholds
+
+    m, n, d = sk["m"], sk["n"], sk["d"]
+    lower, upper = sk_thresholds(m, n, d, pfa=sk["pfa"], method=sk["method"])
+    valid = ~excluded
+    if sk["mode"] == "s2":
+        s2 = block["s2"][:, :, p]
+        hit = sk_flag_dumps(values, s2, m, n, d, lower, upper, valid)
+        with np.errstate(all="ignore"):
+            ski = sk_estimator(values.astype(np.float64) * m, s2.astype(np.float64), m, n, d)
+        ski = ski[valid]
+    else:
+        hit = sk_flag_blocks(values, valid, m, n, d, pfa=sk["pfa"], method=sk["method"], t0=t0)
+        ski = _block_sk_values(values, valid, m, n, d, t0)
+    counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], SK_EDGES[0], SK_EDGES[-1] - 1e-9), SK_EDGES)
+    return hit, counts.astype(np.int64)
+
+
+def _block_sk_values(values, valid, m, n, d, t0):
+    """SK of the complete, fully valid, absolutely aligned blocks of m dumps (for the histogram)."""
+    from .sk import sk_estimator
+
+    first = (-t0) % m
+    nb = (values.shape[0] - first) // m
+    if nb <= 0:
+        return np.empty(0)
+    v = values[first:first + nb * m].astype(np.float64).reshape(nb, m, -1)
+    ok = valid[first:first + nb * m].reshape(nb, m, -1).all(axis=1)
+    with np.errstate(all="ignore"):
+        ski = sk_estimator(v.sum(axis=1), (v * v).sum(axis=1), m, n, d)
+    return ski[ok]
+
+
+def _task_product(block, p, detector, band, meta, t0, core):
+    out, h = _detect_product(block, p, detector, band, meta, t0)
+    return out[core[0]:core[1]], h
+
+
+def _assemble(parts, nprod):
+    outs = [pt[0] for pt in parts]
+    hist = np.zeros((nprod, len(SK_EDGES) - 1), dtype=np.int64)
+    for p, pt in enumerate(parts):
+        if pt[1] is not None:
+            hist[p] += pt[1]
+    return np.stack(outs, axis=-1), hist
+
+
+# -- dask -------------------------------------------------------------------------
+class _Scheduler:
+    """dask compute options for the run config's ``scheduler`` and ``workers``."""
+
+    def __init__(self, run):
+        self.name = str(run.get("scheduler") or "threads")
+        self.workers = int(run.get("workers") or 1)
+        self.client = None
+
+    def __enter__(self):
+        if self.name in ("threads", "processes", "synchronous", "sync", "single-threaded"):
+            self.kwargs = {"scheduler": self.name, "num_workers": self.workers}
+        elif "://" in self.name or ":" in self.name:
+            try:
+                from distributed import Client
+            except ImportError:  # pragma: no cover - distributed is a dependency
+                raise RfisieveError("scheduler address given but dask.distributed is not installed") from None
+            try:
+                self.client = Client(self.name, timeout="20s", set_as_default=False)
+            except (OSError, TimeoutError) as err:
+                raise RfisieveError(
+                    f"cannot reach the dask scheduler at {self.name} ({err}); start it or use scheduler: threads"
+                ) from None
+            self.kwargs = {"scheduler": self.client.get}
+        else:
+            raise RfisieveError(
+                f"run config: scheduler = {self.name!r}, expected threads, processes, synchronous "
+                "or a dask.distributed address such as tcp://host:8786"
+            )
+        return self
+
+    def __exit__(self, *exc):
+        if self.client is not None:
+            self.client.close()
+        return False
+
+    @property
+    def window(self):
+        return max(2, 2 * self.workers)
+
+
+def _windows(chunks, size):
+    for i in range(0, len(chunks), size):
+        yield chunks[i:i + size]
+
+
+def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
+    """Run detectors over every chunk; ``sink(start, stop, masks_by_detector, hists)``."""
+    meta = _meta(scan, band)
+    halo = plan["halo"] if plan else detect_halo(band, scan)
+    chunks = plan["chunks"] if plan else _chunks(scan.ntime, int(run["chunk_dumps"]))
+    what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
+    done = 0
+    for window in _windows(chunks, sched.window):
+        graph = []
+        for c0, c1 in window:
+            a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
+            block = dask.delayed(_read_chunk, pure=True)(meta["path"], meta["layout"], a, b, what)
+            per_det = []
+            for det in detectors:
+                parts = [dask.delayed(_task_product)(block, p, det, band, meta, a, (c0 - a, c1 - a))
+                         for p in range(scan.nprod)]
+                per_det.append(dask.delayed(_assemble)(parts, scan.nprod))
+            graph.append(per_det)
+        results = dask.compute(*graph, **sched.kwargs)
+        for (c0, c1), per_det in zip(window, results):
+            sink(c0, c1, dict(zip(detectors, per_det)))
+            done += 1
+            if progress:
+                progress(done, len(chunks))
+
+
+def _create_mask_file(f, scan, chunk_dumps):
+    rows = max(1, min(scan.ntime, chunk_dumps, (1 << 20) // max(1, scan.nchan * scan.nprod)))
+    f.create_dataset(
+        "flags", shape=(scan.ntime, scan.nchan, scan.nprod), dtype=np.uint8,
+        chunks=(rows, scan.nchan, scan.nprod), compression="lzf", shuffle=False, fillvalue=0,
+    )
+    f.create_dataset("time", data=scan.time)
+    f.create_dataset("freq", data=scan.freq)
+    f.create_dataset("products", data=np.array(scan.products, dtype=object), dtype=h5py.string_dtype())
+    f.attrs["scan"] = scan.name
+    f.attrs["band"] = scan.band
+    f.attrs["rfisieve_version"] = __version__
+    f.attrs["input_identity"] = json.dumps(file_identity(scan.path))
+    f.attrs["created_utc"] = _time.strftime("%Y-%m-%dT%H:%M:%SZ", _time.gmtime())
+
+
+def _write_sk_diag(f, hist, meta, band):
+    sk = meta.get("sk")
+    g = f.require_group("diagnostics/sk")
+    g.create_dataset("edges", data=SK_EDGES)
+    g.create_dataset("counts", data=hist)
+    if sk:
+        from .sk import sk_thresholds
+
+        lower, upper = sk_thresholds(sk["m"], sk["n"], sk["d"], pfa=sk["pfa"], method=sk["method"])
+        for key in ("m", "n", "d", "pfa", "method", "mode"):
+            g.attrs[key] = sk[key]
+        g.attrs["lower"], g.attrs["upper"] = float(lower), float(upper)
+    g.attrs["enabled"] = bool(sk)
+
+
+def _fail_clean(fn):
+    """Turn low-level read errors inside dask tasks into one-line ScanErrors."""
+    def wrapper(scan_path, *args, **kwargs):
+        try:
+            return fn(scan_path, *args, **kwargs)
+        except RfisieveError:
+            raise
+        except (OSError, KeyError) as err:
+            raise ScanError(scan_path, f"failed while flagging ({' '.join(str(err).split())[:160]})") from None
+    wrapper.__name__ = fn.__name__
+    wrapper.__doc__ = fn.__doc__
+    return wrapper
+
+
+# -- stages -------------------------------------------------------------------------
+@_fail_clean
+def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
+    """Run one detector over a scan; write its partial mask (its bit + the invalid bit)."""
+    if detector not in DETECTORS:
+        raise RfisieveError(f"unknown detector {detector!r}; expected one of {', '.join(DETECTORS)}")
+    _check_run(run)
+    with open_scan(scan_path, run.get("layout")) as scan, _Scheduler(run) as sched:
+        _check_band_matches(scan, band)
+        meta = _meta(scan, band)
+        with atomic_output(out_path) as tmp, h5py.File(tmp, "w") as f:
+            _create_mask_file(f, scan, int(run["chunk_dumps"]))
+            f.attrs["detector"] = detector
+            flags = f["flags"]
+            hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
+
+            def sink(c0, c1, res):
+                out, h = res[detector]
+                flags[c0:c1] = out
+                hist[...] += h
+
+            _run_detection(scan, [detector], band, run, plan, sched, progress, sink)
+            if detector == "sk":
+                _write_sk_diag(f, hist, meta, band)
+
+
+def _merge_chunk(det_block, extra, band, core):
+    """Merge one chunk (with SIR halo rows): returns the final bits of the core rows."""
+    from .morphology import sir_grow
+
+    g = band["growth"]
+    out = det_block | extra
+    if g["enabled"] and g["eta"] > 0:
+        detected = (det_block & bits.DETECTED) != 0
+        for p in range(det_block.shape[2]):
+            grown = sir_grow(detected[:, :, p], g["eta"], time=g["time"], freq=g["freq"])
+            out[:, :, p][grown & ~detected[:, :, p]] |= bits.MORPHOLOGY
+    out = out[core[0]:core[1]]
+    limit = band["cuts"]["dump_limit"]
+    if limit < 1:
+        for p in range(out.shape[2]):
+            cut = dump_cut(out[:, :, p] != 0, limit)
+            out[cut, :, p] |= bits.OCCUPANCY
+    return out
+
+
+def _input_and_static(scan, a, b, meta):
+    extra = np.zeros((b - a, scan.nchan, scan.nprod), dtype=np.uint8)
+    if scan.has_flags:
+        extra[scan.read(a, b, ("flags",))["flags"]] |= bits.INPUT
+    extra[:, meta["static"], :] |= bits.STATIC
+    return extra
+
+
+def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
+    """Second pass: set the occupancy bit on channels flagged above ``limit`` over the scan."""
+    cut = channel_cut(counts, ntime, limit)  # (chan, prod)
+    if not cut.any():
+        return
+    for c0 in range(0, ntime, chunk_dumps):
+        c1 = min(ntime, c0 + chunk_dumps)
+        block = flags[c0:c1]
+        block[:, cut] |= bits.OCCUPANCY
+        flags[c0:c1] = block
+
+
+@_fail_clean
+def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progress=None):
+    """Merge partial masks with the input, invalid and static bits into the final mask.
+
+    Then grows the detector flags with the SIR operator (bit 5) and applies the
+    occupancy cuts (bit 6): per dump within each chunk, per channel over the scan.
+    """
+    _check_run(run)
+    chunk_dumps = int(run["chunk_dumps"])
+    partial_paths = [Path(p) for p in partial_paths]
+    with open_scan(scan_path, run.get("layout")) as scan:
+        _check_band_matches(scan, band)
+        meta = _meta(scan, band)
+        parts = []
+        try:
+            for pp in partial_paths:
+                try:
+                    h = h5py.File(pp, "r")
+                except OSError as err:
+                    raise ScanError(pp, f"partial mask cannot be opened ({err})") from None
+                parts.append(h)
+                if h["flags"].shape != scan.shape:
+                    raise ScanError(pp, f"partial mask has shape {h['flags'].shape}, scan has {scan.shape}")
+            with atomic_output(out_path) as tmp, h5py.File(tmp, "w") as f:
+                _create_mask_file(f, scan, chunk_dumps)
+                _write_attrs(f, band, band_source, partial_paths)
+                flags = f["flags"]
+                counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
+                chunks = _chunks(scan.ntime, chunk_dumps)
+                for i, (c0, c1) in enumerate(chunks):
+                    a, b = max(0, c0 - SIR_HALO), min(scan.ntime, c1 + SIR_HALO)
+                    det = np.zeros((b - a, scan.nchan, scan.nprod), dtype=np.uint8)
+                    for h in parts:
+                        det |= h["flags"][a:b]
+                    out = _merge_chunk(det, _input_and_static(scan, a, b, meta), band, (c0 - a, c1 - a))
+                    flags[c0:c1] = out
+                    counts += (out != 0).sum(axis=0)
+                    if progress:
+                        progress(i + 1, len(chunks))
+                _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+                _copy_sk_diag(parts, f, meta, band)
+        finally:
+            for h in parts:
+                h.close()
+
+
+def _copy_sk_diag(parts, f, meta, band):
+    for h in parts:
+        if "diagnostics/sk" in h:
+            h.copy(h["diagnostics/sk"], f.require_group("diagnostics"), name="sk")
+            return
+    _write_sk_diag(f, np.zeros((len(meta["autos"]), len(SK_EDGES) - 1), dtype=np.int64), meta, band)
+
+
+def _write_attrs(f, band, band_source, partial_paths):
+    for key, value in bit_attrs().items():
+        f.attrs[key] = value
+    f.attrs["bit_table"] = json.dumps([{"bit": b[0], "value": b[1], "name": b[2], "meaning": b[3]}
+                                       for b in bits.BIT_TABLE])
+    f.attrs["band_settings"] = json.dumps(band, sort_keys=True)
+    if band_source:
+        f.attrs["band_config_path"] = str(band_source.get("path", ""))
+        f.attrs["band_config_text"] = str(band_source.get("text", ""))
+
+
+def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
+    """Both detectors and the merge in one call (tests, benchmarks, small jobs).
+
+    The detectors run side by side in one dask graph; their partial masks are kept in
+    temporary files beside ``out_path`` and removed afterwards.
+    """
+    out_path = Path(out_path)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    partials = [out_path.with_name(f".{out_path.name}.{det}.partial.h5") for det in DETECTORS]
+    try:
+        _detect_both(scan_path, partials, band, run, progress)
+        merge(scan_path, partials, out_path, band, run, band_source=band_source)
+    finally:
+        for p in partials:
+            p.unlink(missing_ok=True)
+
+
+@_fail_clean
+def _detect_both(scan_path, partials, band, run, progress):
+    _check_run(run)
+    with open_scan(scan_path, run.get("layout")) as scan, _Scheduler(run) as sched:
+        _check_band_matches(scan, band)
+        meta = _meta(scan, band)
+        files = [h5py.File(p, "w") for p in partials]
+        try:
+            for det, f in zip(DETECTORS, files):
+                _create_mask_file(f, scan, int(run["chunk_dumps"]))
+                f.attrs["detector"] = det
+            hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
+
+            def sink(c0, c1, res):
+                for det, f in zip(DETECTORS, files):
+                    out, h = res[det]
+                    f["flags"][c0:c1] = out
+                    if det == "sk":
+                        hist[...] += h
+
+            _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink)
+            _write_sk_diag(files[0], hist, meta, band)
+        finally:
+            for f in files:
+                f.close()
+
+
+def scan_output_name(scan_path):
+    """``<scan>.h5``: the mask file name for a scan (DESIGN.md 2.2)."""
+    return f"{scan_name(scan_path)}.h5"
+
+
+__all__ = ["plan_scan", "detect", "merge", "flag_scan", "detect_halo", "SIR_HALO", "DETECTORS",
+           "scan_output_name"]
