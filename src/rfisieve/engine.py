@@ -308,6 +308,8 @@ def _create_mask_file(f, scan, chunk_dumps):
     f.create_dataset("products", data=np.array(scan.products, dtype=object), dtype=h5py.string_dtype())
     f.attrs["scan"] = scan.name
     f.attrs["band"] = scan.band
+    for key in ("integration_time", "channel_width", "accumulations"):
+        f.attrs[key] = getattr(scan, key)
     f.attrs["rfisieve_version"] = __version__
     f.attrs["input_identity"] = json.dumps(file_identity(scan.path))
     f.attrs["created_utc"] = _time.strftime("%Y-%m-%dT%H:%M:%SZ", _time.gmtime())

@@ -1,0 +1,141 @@
+"""Known emitters and protected bands: load the list and match frequency ranges against it.
+
+The shipped list is ``config/emitters.yaml`` (key ``emitters``: entries with ``name``,
+``start_mhz``, ``stop_mhz``, ``kind`` = ``emitter`` or ``protected``, and ``source``,
+the public document the range comes from, or "from memory").  A site adds its own
+entries per band under the key ``emitters`` of ``config/bands/<band>.yaml``
+(``{name, start_mhz, stop_mhz, source}``, kind defaults to ``emitter``); these are
+merged in with ``site`` set to the band name.
+"""
+
+import os
+
+from .errors import ConfigError
+
+KINDS = ("emitter", "protected")
+
+
+def _check_entry(entry, path, where):
+    if not isinstance(entry, dict):
+        raise ConfigError(path, f"{where}: an emitter entry must be a mapping, got {type(entry).__name__}")
+    for key in ("name", "start_mhz", "stop_mhz"):
+        if key not in entry:
+            raise ConfigError(path, f"{where}: emitter entry {entry.get('name', '?')!r} lacks '{key}'")
+    try:
+        start, stop = float(entry["start_mhz"]), float(entry["stop_mhz"])
+    except (TypeError, ValueError):
+        raise ConfigError(path, f"{where}: emitter {entry['name']!r}: start_mhz/stop_mhz must be numbers") from None
+    if not start <= stop:
+        raise ConfigError(path, f"{where}: emitter {entry['name']!r}: start_mhz {start} > stop_mhz {stop}")
+    kind = entry.get("kind", "emitter")
+    if kind not in KINDS:
+        raise ConfigError(path, f"{where}: emitter {entry['name']!r}: kind must be one of {KINDS}, got {kind!r}")
+    return {"name": str(entry["name"]), "start_mhz": start, "stop_mhz": stop, "kind": kind,
+            "source": str(entry.get("source", "not given"))}
+
+
+def parse_emitters(entries, path="<emitters>", site=None):
+    """Validate a list of emitter mappings; return normalised dicts (``site`` added)."""
+    if entries is None:
+        return []
+    if not isinstance(entries, list):
+        raise ConfigError(path, "'emitters' must be a list of {name, start_mhz, stop_mhz, source}")
+    out = []
+    for i, e in enumerate(entries):
+        row = _check_entry(e, path, f"emitters[{i}]")
+        row["site"] = site
+        out.append(row)
+    return out
+
+
+def _load_yaml(path):
+    import yaml
+
+    try:
+        with open(path) as fh:
+            return yaml.safe_load(fh) or {}
+    except OSError as err:
+        raise ConfigError(path, f"cannot read ({err.strerror})") from None
+    except yaml.YAMLError as err:
+        raise ConfigError(path, f"not valid YAML ({str(err).splitlines()[0]})") from None
+
+
+def default_emitters_path():
+    """``config/emitters.yaml`` of the repository (or of the current directory)."""
+    here = os.path.abspath(os.path.join(os.path.dirname(__file__), "..", "..", "config", "emitters.yaml"))
+    if os.path.isfile(here):
+        return here
+    return os.path.join("config", "emitters.yaml")
+
+
+def load_emitters(path=None, bands_dir=None, bands=None):
+    """Load the emitter list, merged with the sites' band-config entries.
+
+    Parameters
+    ----------
+    path : str, optional
+        Emitter list (default :func:`default_emitters_path`); ``""`` for none.
+    bands_dir : str, optional
+        Directory of band configs ``<band>.yaml`` whose ``emitters`` key is merged.
+    bands : iterable of str, optional
+        Bands whose configs are read (default: every ``*.yaml`` in ``bands_dir``).
+
+    Returns
+    -------
+    list of dict
+        ``name``, ``start_mhz``, ``stop_mhz``, ``kind``, ``source``, ``site`` (band
+        name for site entries, else None), sorted by start frequency.
+    """
+    out = []
+    if path is None:
+        path = default_emitters_path()
+    if path:
+        if not os.path.isfile(path):
+            raise ConfigError(path, "emitter list not found")
+        doc = _load_yaml(path)
+        if not isinstance(doc, dict) or "emitters" not in doc:
+            raise ConfigError(path, "no top-level 'emitters' list")
+        out += parse_emitters(doc["emitters"], path)
+    if bands_dir and os.path.isdir(bands_dir):
+        names = sorted(bands) if bands is not None else sorted(
+            f[:-5] for f in os.listdir(bands_dir) if f.endswith(".yaml"))
+        for band in names:
+            bpath = os.path.join(bands_dir, f"{band}.yaml")
+            if not os.path.isfile(bpath):
+                continue
+            doc = _load_yaml(bpath)
+            if isinstance(doc, dict) and doc.get("emitters"):
+                out += parse_emitters(doc["emitters"], bpath, site=band)
+    out.sort(key=lambda e: (e["start_mhz"], e["stop_mhz"], e["name"]))
+    return out
+
+
+def match_emitters(start_mhz, stop_mhz, emitters):
+    """Emitters whose range overlaps the frequency range ``[start_mhz, stop_mhz]``.
+
+    Parameters
+    ----------
+    start_mhz, stop_mhz : float
+        The range to annotate, MHz (e.g. the outer channel edges of an occupied range).
+    emitters : list of dict
+        Entries with ``start_mhz`` and ``stop_mhz`` (:func:`load_emitters`).
+
+    Returns
+    -------
+    list of dict
+        The overlapping entries, largest overlap (as a fraction of the queried range)
+        first; ranges that only touch at an edge do not match.
+    """
+    lo, hi = min(start_mhz, stop_mhz), max(start_mhz, stop_mhz)
+    hits = []
+    for e in emitters:
+        a, b = max(lo, e["start_mhz"]), min(hi, e["stop_mhz"])
+        if b > a or (lo == hi and e["start_mhz"] <= lo <= e["stop_mhz"]):
+            hits.append((-(b - a), e["stop_mhz"] - e["start_mhz"], e))
+    hits.sort(key=lambda h: (h[0], h[1]))
+    return [h[2] for h in hits]
+
+
+def in_band(emitters, fmin_mhz, fmax_mhz):
+    """Emitters overlapping ``[fmin_mhz, fmax_mhz]`` (for marking plots)."""
+    return [e for e in emitters if e["stop_mhz"] > fmin_mhz and e["start_mhz"] < fmax_mhz]

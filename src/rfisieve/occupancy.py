@@ -1,0 +1,773 @@
+"""Occupancy statistics of mask files: what fraction of each channel was flagged, why, when.
+
+The counting functions are pure functions of mask arrays (uint8, ``(time, chan,
+prod)``, one bit per cause, :mod:`rfisieve.bits`); the file functions around them read
+a mask file in chunks of dumps (memory bounded by the chunk, never by the scan
+length) and write the per-scan and per-run tables.
+
+Counting rules
+--------------
+* A *sample* is one (dump, channel, product) cell of the mask.
+* ``flagged`` counts a sample once when any bit is set, however many causes it has.
+* The cause column of bit ``b`` counts every sample with bit ``b`` set, so a sample
+  with two causes counts once in ``flagged`` and once in each of its two cause columns
+  (cause columns can add up to more than ``flagged``).
+* The *primary* cause of a flagged sample is its lowest set bit (bit-table order:
+  input, invalid, static, sk, sumthreshold, morphology, occupancy).  Primary counts do
+  add up to ``flagged`` exactly; the review's stacked plots use them.
+
+Per-scan CSV: ``<outdir>/occupancy/<scan>.csv``
+-----------------------------------------------
+One row per channel, in the mask's channel order.  Columns:
+
+``band``
+    the scan's band (mask attribute ``band``).
+``channel``
+    channel index in the scan.
+``freq_mhz``
+    channel centre frequency, MHz.
+``samples``
+    number of samples in the channel (dumps x products).
+``flagged``
+    fraction of those samples with any bit set.
+``input``, ``invalid``, ``static``, ``sk``, ``sumthreshold``, ``morphology``, ``occupancy``
+    fraction of the channel's samples with that cause bit set (bit names of
+    :data:`rfisieve.bits.BIT_TABLE`).
+``flagged_<product>``
+    one column per product (e.g. ``flagged_q01h-q01h``): fraction of that product's
+    samples in the channel (= dumps) with any bit set.
+
+Per-run CSV: ``<outdir>/occupancy/run.csv``
+-------------------------------------------
+One row per band x channel frequency.  Scans of one band may have different channel
+grids: channels are matched by their exact centre frequency (rounded to 1 Hz), the
+run's grid of a band is the sorted union of the centre frequencies of its scans, and
+every count is summed over the scans that have that channel, so each fraction is
+weighted by samples.  Columns as in the per-scan CSV, with ``channel`` the index in
+the band's run grid and one extra column ``scans`` (number of scans contributing to
+the row) after ``freq_mhz``; ``flagged_<product>`` columns cover every product of
+the run and are empty where a band's scans lack that product.  Fractions are written
+with 10 significant digits.
+
+Per-scan HDF5: ``<outdir>/occupancy/<scan>.h5`` (all counts int64, exact)
+------------------------------------------------------------------------
+========================  ==================  =========================================
+dataset                   shape               meaning
+========================  ==================  =========================================
+/freq                     (nchan,)            channel centre, Hz
+/time                     (ntime,)            dump centre, s since 1970 UTC
+/products                 (nprod,)            product names (UTF-8)
+/channel/samples          (nchan,)            samples per channel
+/channel/flagged          (nchan,)            samples with any bit set
+/channel/bits             (nbits, nchan)      samples with bit b set
+/channel/primary          (nbits, nchan)      flagged samples whose lowest set bit is b
+/channel/product_flagged  (nprod, nchan)      flagged samples per product (of ntime)
+/dump/samples             (ntime,)            samples per dump (nchan x nprod)
+/dump/flagged             (ntime,)            flagged samples per dump
+/dump/bits                (nbits, ntime)      samples with bit b set, per dump
+/product/samples          (nprod,)            samples per product (ntime x nchan)
+/product/flagged          (nprod,)            flagged samples per product
+/product/bits             (nbits, nprod)      samples with bit b set, per product
+/image/samples            (ntbin, ncbin)      samples per time x channel bin
+/image/flagged            (ntbin, ncbin)      flagged samples per bin
+/image/time_start         (ntbin + 1,)        first dump of each time bin (+ ntime)
+/image/chan_start         (ncbin + 1,)        first channel of each channel bin (+ nchan)
+/diagnostics/sk           group               copied from the mask file when present
+========================  ==================  =========================================
+
+Root attributes: ``scan``, ``band``, ``mask`` (path of the mask read), ``ntime``,
+``nchan``, ``nprod``, ``bit_names`` (JSON list), ``integration_time`` (s, from the mask
+attributes or the median dump spacing), ``hours`` (ntime x integration_time / 3600),
+``start_time`` and ``stop_time`` (s since 1970 UTC).
+
+Per-run HDF5: ``<outdir>/occupancy/run.h5``
+-------------------------------------------
+``/bands/<band>/`` holds ``freq``, ``scans`` (per channel), ``samples``, ``flagged``,
+``bits``, ``primary``, ``products``, ``product_samples`` and ``product_flagged``
+(``(nprod, nchan)``) on the band's run grid; ``/scans`` is a table (one row per scan:
+``name``, ``band``, ``ntime``, ``nchan``, ``nprod``, ``hours``, ``start_time``,
+``stop_time``, ``samples``, ``flagged``, ``bits`` (nscan, nbits)).  Root attributes
+``bit_names`` and, written by ``rfisieve review``, ``emitters_json`` (the emitter list
+used) and ``range_fraction``.
+"""
+
+import argparse
+import csv
+import json
+import os
+import sys
+
+import numpy as np
+
+from . import bits as _bits
+from .errors import RfisieveError, ScanError
+
+BIT_NAMES = tuple(_bits.NAMES)
+BIT_VALUES = tuple(row[1] for row in _bits.BIT_TABLE)
+NBITS = len(BIT_VALUES)
+
+#: Default largest image size (time bins x channel bins).
+IMAGE_BINS = (512, 512)
+
+#: Default memory budget for one chunk of mask read from disk, bytes.
+CHUNK_BYTES = 32 * 2**20
+
+
+# ---------------------------------------------------------------------------
+# pure counting functions
+# ---------------------------------------------------------------------------
+
+def bin_starts(n, nbins):
+    """First index of each of ``min(n, nbins)`` near-equal bins over ``n`` items, plus ``n``.
+
+    Item ``i`` falls in bin ``i * nb // n`` (``nb`` = number of bins).
+    """
+    nb = max(1, min(int(n), int(nbins)))
+    idx = np.arange(nb + 1, dtype=np.int64)
+    # smallest i with i * nb // n >= k  <=>  i >= ceil(k * n / nb)
+    return -((-idx * int(n)) // nb)
+
+
+def chunk_counts(flags, time_bin=None, chan_starts=None, ntbin=None):
+    """Occupancy counts of one block of a mask.
+
+    Parameters
+    ----------
+    flags : ndarray of uint8, shape (ntime, nchan, nprod)
+        Mask values, one bit per cause (:data:`rfisieve.bits.BIT_TABLE`).
+    time_bin : ndarray of int, shape (ntime,), optional
+        Image time bin of each dump of the block.
+    chan_starts : ndarray of int, shape (ncbin + 1,), optional
+        First channel of each image channel bin (:func:`bin_starts`).
+    ntbin : int, optional
+        Number of image time bins.
+
+    Returns
+    -------
+    dict
+        ``channel_flagged`` (nchan,), ``channel_bits`` (nbits, nchan),
+        ``channel_primary`` (nbits, nchan), ``product_channel_flagged`` (nprod, nchan),
+        ``dump_flagged`` (ntime,), ``dump_bits`` (nbits, ntime), ``product_flagged``
+        (nprod,), ``product_bits`` (nbits, nprod) and, when the image bins are given,
+        ``image_flagged`` (ntbin, ncbin); all int64 counts of samples, following the
+        counting rules of the module docstring.
+    """
+    flags = np.asarray(flags)
+    if flags.ndim != 3:
+        raise ValueError(f"mask block must be 3-d (time, chan, prod), got shape {flags.shape}")
+    nt, nc, npr = flags.shape
+    anyf = flags != 0
+    out = {
+        "channel_flagged": np.count_nonzero(anyf, axis=(0, 2)).astype(np.int64),
+        "product_channel_flagged": np.count_nonzero(anyf, axis=0).T.astype(np.int64),
+        "dump_flagged": np.count_nonzero(anyf, axis=(1, 2)).astype(np.int64),
+        "product_flagged": np.count_nonzero(anyf, axis=(0, 1)).astype(np.int64),
+        "channel_bits": np.zeros((NBITS, nc), np.int64),
+        "channel_primary": np.zeros((NBITS, nc), np.int64),
+        "dump_bits": np.zeros((NBITS, nt), np.int64),
+        "product_bits": np.zeros((NBITS, npr), np.int64),
+    }
+    lower = np.zeros(flags.shape, bool)
+    for k, value in enumerate(BIT_VALUES):
+        hit = (flags & value) != 0
+        out["channel_bits"][k] = np.count_nonzero(hit, axis=(0, 2))
+        out["dump_bits"][k] = np.count_nonzero(hit, axis=(1, 2))
+        out["product_bits"][k] = np.count_nonzero(hit, axis=(0, 1))
+        first = hit & ~lower
+        out["channel_primary"][k] = np.count_nonzero(first, axis=(0, 2))
+        lower |= hit
+    if chan_starts is not None and time_bin is not None:
+        per_tc = np.count_nonzero(anyf, axis=2).astype(np.int64)  # (nt, nc)
+        if nc:
+            per_tb = np.add.reduceat(per_tc, np.asarray(chan_starts[:-1]), axis=1)
+        else:
+            per_tb = np.zeros((nt, 0), np.int64)
+        img = np.zeros((int(ntbin), len(chan_starts) - 1), np.int64)
+        np.add.at(img, np.asarray(time_bin), per_tb)
+        out["image_flagged"] = img
+    return out
+
+
+class ScanOccupancy:
+    """Accumulates :func:`chunk_counts` over the dumps of one scan.
+
+    Parameters
+    ----------
+    ntime, nchan, nprod : int
+        Shape of the scan's mask.
+    image_bins : (int, int)
+        Largest number of time and channel bins of the occupancy image.
+    """
+
+    def __init__(self, ntime, nchan, nprod, image_bins=IMAGE_BINS):
+        self.ntime, self.nchan, self.nprod = int(ntime), int(nchan), int(nprod)
+        self.time_start = bin_starts(self.ntime, image_bins[0])
+        self.chan_start = bin_starts(self.nchan, image_bins[1])
+        self._tbin = np.repeat(np.arange(len(self.time_start) - 1), np.diff(self.time_start))
+        ntb, ncb = len(self.time_start) - 1, len(self.chan_start) - 1
+        z = np.zeros
+        self.c = {
+            "channel_flagged": z(self.nchan, np.int64),
+            "channel_bits": z((NBITS, self.nchan), np.int64),
+            "channel_primary": z((NBITS, self.nchan), np.int64),
+            "product_channel_flagged": z((self.nprod, self.nchan), np.int64),
+            "dump_flagged": z(self.ntime, np.int64),
+            "dump_bits": z((NBITS, self.ntime), np.int64),
+            "product_flagged": z(self.nprod, np.int64),
+            "product_bits": z((NBITS, self.nprod), np.int64),
+            "image_flagged": z((ntb, ncb), np.int64),
+        }
+        self.dumps_seen = 0
+
+    def add(self, start, block):
+        """Add the counts of mask ``block`` holding dumps ``start .. start + len(block)``."""
+        block = np.asarray(block)
+        stop = start + block.shape[0]
+        if block.shape[1:] != (self.nchan, self.nprod) or start < 0 or stop > self.ntime:
+            raise ValueError(f"block of shape {block.shape} at dump {start} does not fit the "
+                             f"scan shape {(self.ntime, self.nchan, self.nprod)}")
+        cc = chunk_counts(block, self._tbin[start:stop], self.chan_start, len(self.time_start) - 1)
+        c = self.c
+        for key in ("channel_flagged", "channel_bits", "channel_primary",
+                    "product_channel_flagged", "product_flagged", "product_bits",
+                    "image_flagged"):
+            c[key] += cc[key]
+        c["dump_flagged"][start:stop] += cc["dump_flagged"]
+        c["dump_bits"][:, start:stop] += cc["dump_bits"]
+        self.dumps_seen += block.shape[0]
+
+    def result(self):
+        """All counts as a dict of arrays (the datasets of the per-scan HDF5 file)."""
+        c = self.c
+        nt, nc, npr = self.ntime, self.nchan, self.nprod
+        ts, cs = self.time_start, self.chan_start
+        return {
+            "channel/samples": np.full(nc, nt * npr, np.int64),
+            "channel/flagged": c["channel_flagged"],
+            "channel/bits": c["channel_bits"],
+            "channel/primary": c["channel_primary"],
+            "channel/product_flagged": c["product_channel_flagged"],
+            "dump/samples": np.full(nt, nc * npr, np.int64),
+            "dump/flagged": c["dump_flagged"],
+            "dump/bits": c["dump_bits"],
+            "product/samples": np.full(npr, nt * nc, np.int64),
+            "product/flagged": c["product_flagged"],
+            "product/bits": c["product_bits"],
+            "image/samples": np.outer(np.diff(ts), np.diff(cs)).astype(np.int64) * npr,
+            "image/flagged": c["image_flagged"],
+            "image/time_start": ts,
+            "image/chan_start": cs,
+        }
+
+
+def mask_counts(flags, image_bins=IMAGE_BINS):
+    """Occupancy counts of a whole in-memory mask ``(ntime, nchan, nprod)`` (see :class:`ScanOccupancy`)."""
+    flags = np.asarray(flags)
+    acc = ScanOccupancy(*flags.shape, image_bins=image_bins)
+    acc.add(0, flags)
+    return acc.result()
+
+
+def fraction(num, den):
+    """``num / den`` elementwise, NaN where ``den`` is 0."""
+    num = np.asarray(num, float)
+    den = np.asarray(den, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1), np.nan)
+
+
+# ---------------------------------------------------------------------------
+# run aggregation (pure)
+# ---------------------------------------------------------------------------
+
+def freq_key(freq_hz):
+    """Integer key of channel centre frequencies: Hz rounded to 1 Hz (exact-match grid)."""
+    return np.round(np.asarray(freq_hz, float)).astype(np.int64)
+
+
+def aggregate_band(scans):
+    """Sum per-scan channel counts of one band onto the union of their channel grids.
+
+    Parameters
+    ----------
+    scans : list of dict
+        Each with ``freq`` (Hz), ``products`` (list of str) and the per-scan count
+        arrays ``channel/samples``, ``channel/flagged``, ``channel/bits``,
+        ``channel/primary``, ``channel/product_flagged`` and ``ntime``.
+
+    Returns
+    -------
+    dict
+        ``freq`` (sorted union, Hz), ``scans``, ``samples``, ``flagged`` (nchan,),
+        ``bits``, ``primary`` (nbits, nchan), ``products`` (union, sorted by first
+        appearance), ``product_samples`` and ``product_flagged`` (nprod, nchan).
+        Channels match by exact centre frequency (:func:`freq_key`).
+    """
+    keys = np.unique(np.concatenate([freq_key(s["freq"]) for s in scans])) if scans else np.zeros(0, np.int64)
+    products = []
+    for s in scans:
+        for p in s["products"]:
+            if p not in products:
+                products.append(p)
+    nc, npr = len(keys), len(products)
+    out = {
+        "freq": np.zeros(nc),
+        "scans": np.zeros(nc, np.int64),
+        "samples": np.zeros(nc, np.int64),
+        "flagged": np.zeros(nc, np.int64),
+        "bits": np.zeros((NBITS, nc), np.int64),
+        "primary": np.zeros((NBITS, nc), np.int64),
+        "products": products,
+        "product_samples": np.zeros((npr, nc), np.int64),
+        "product_flagged": np.zeros((npr, nc), np.int64),
+    }
+    fsum = np.zeros(nc)
+    for s in scans:
+        k = freq_key(s["freq"])
+        if len(np.unique(k)) != len(k):
+            raise ValueError(f"scan {s.get('scan', '?')}: two channels share a centre frequency")
+        idx = np.searchsorted(keys, k)
+        out["scans"][idx] += 1
+        fsum[idx] += np.asarray(s["freq"], float)
+        out["samples"][idx] += s["channel/samples"]
+        out["flagged"][idx] += s["channel/flagged"]
+        out["bits"][:, idx] += s["channel/bits"]
+        out["primary"][:, idx] += s["channel/primary"]
+        for j, p in enumerate(s["products"]):
+            pi = products.index(p)
+            out["product_samples"][pi, idx] += int(s["ntime"])
+            out["product_flagged"][pi, idx] += s["channel/product_flagged"][j]
+    out["freq"] = fsum / np.maximum(out["scans"], 1)
+    return out
+
+
+def occupied_ranges(freq_hz, flagged, samples, threshold=0.25, primary=None):
+    """Contiguous runs of channels whose flagged fraction is at least ``threshold``.
+
+    Parameters
+    ----------
+    freq_hz : ndarray (nchan,)
+        Channel centres, sorted ascending.
+    flagged, samples : ndarray (nchan,)
+        Flagged and total sample counts per channel.
+    threshold : float
+        Fraction at or above which a channel belongs to a range.
+    primary : ndarray (nbits, nchan), optional
+        Primary-cause counts, to name the main cause of each range.
+
+    Returns
+    -------
+    list of dict
+        ``first``, ``last`` (channel indices), ``channels``, ``start_mhz``,
+        ``stop_mhz`` (outer channel edges: half the neighbour spacing beyond the
+        outer centres), ``mean_fraction`` (flagged / samples over the range),
+        ``peak_fraction``, ``flagged`` (samples), ``cause`` (main primary cause);
+        sorted by flagged samples, largest first.
+    """
+    f = np.asarray(freq_hz, float)
+    frac = fraction(flagged, samples)
+    hot = np.nan_to_num(frac, nan=0.0) >= threshold
+    n = len(f)
+    if n == 0:
+        return []
+    half = np.zeros(n)
+    if n > 1:
+        d = np.diff(f)
+        half = 0.5 * np.minimum(np.concatenate([[d[0]], d]), np.concatenate([d, [d[-1]]]))
+    out = []
+    edges = np.flatnonzero(np.diff(np.concatenate([[0], hot.astype(np.int8), [0]])))
+    for a, b in zip(edges[::2], edges[1::2]):
+        last = b - 1
+        fl = int(np.sum(flagged[a:b]))
+        sm = int(np.sum(samples[a:b]))
+        row = {
+            "first": int(a), "last": int(last), "channels": int(b - a),
+            "start_mhz": (f[a] - half[a]) / 1e6, "stop_mhz": (f[last] + half[last]) / 1e6,
+            "mean_fraction": fl / sm if sm else float("nan"),
+            "peak_fraction": float(np.nanmax(frac[a:b])), "flagged": fl, "cause": "",
+        }
+        if primary is not None:
+            row["cause"] = BIT_NAMES[int(np.argmax(np.asarray(primary)[:, a:b].sum(axis=1)))]
+        out.append(row)
+    out.sort(key=lambda r: -r["flagged"])
+    return out
+
+
+# ---------------------------------------------------------------------------
+# files
+# ---------------------------------------------------------------------------
+
+def _tmp_name(path):
+    d, b = os.path.split(os.path.abspath(path))
+    return os.path.join(d, f".{b}.tmp{os.getpid()}")
+
+
+def _publish(tmp, path):
+    os.replace(tmp, path)
+
+
+def _strings(ds):
+    return [x.decode() if isinstance(x, bytes) else str(x) for x in ds[()]]
+
+
+def _attr_str(v):
+    if isinstance(v, bytes):
+        return v.decode()
+    if isinstance(v, np.ndarray) and v.shape == ():
+        v = v.item()
+    return str(v)
+
+
+def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None):
+    """Read mask file ``path`` in chunks of dumps and return its occupancy counts.
+
+    Returns
+    -------
+    dict
+        The arrays of :meth:`ScanOccupancy.result` plus ``freq``, ``time``,
+        ``products`` and ``attrs`` (``scan``, ``band``, ``ntime``, ``nchan``, ``nprod``,
+        ``integration_time``, ``hours``, ``start_time``, ``stop_time``) and ``sk``
+        (the /diagnostics/sk group as dict, or None).
+
+    Raises
+    ------
+    ScanError
+        When the file is missing or is not a mask file of DESIGN.md 2.2.
+    """
+    import h5py
+
+    path = str(path)
+    if not os.path.isfile(path):
+        raise ScanError(path, "mask file not found")
+    try:
+        fh = h5py.File(path, "r")
+    except OSError as err:
+        raise ScanError(path, f"cannot open as HDF5 ({err.__class__.__name__})") from None
+    with fh:
+        for name in ("flags", "freq", "time", "products"):
+            if name not in fh:
+                raise ScanError(path, f"no /{name} dataset: not a mask file")
+        ds = fh["flags"]
+        if ds.ndim != 3 or ds.dtype != np.uint8:
+            raise ScanError(path, f"/flags must be uint8 (time, chan, prod), got {ds.dtype} {ds.shape}")
+        nt, nc, npr = ds.shape
+        freq = np.asarray(fh["freq"][()], float)
+        time = np.asarray(fh["time"][()], float)
+        products = _strings(fh["products"])
+        if freq.shape != (nc,) or time.shape != (nt,) or len(products) != npr:
+            raise ScanError(path, f"/time, /freq or /products do not match /flags shape {ds.shape}")
+        if "band" not in fh.attrs:
+            raise ScanError(path, "no 'band' attribute")
+        band = _attr_str(fh.attrs["band"])
+        if chunk_dumps is None:
+            per_dump = max(1, nc * npr)
+            chunk_dumps = max(1, CHUNK_BYTES // per_dump)
+            if ds.chunks:
+                ct = ds.chunks[0]
+                chunk_dumps = max(ct, (chunk_dumps // ct) * ct)
+        chunk_dumps = int(chunk_dumps)
+        acc = ScanOccupancy(nt, nc, npr, image_bins=image_bins)
+        for start in range(0, nt, chunk_dumps):
+            stop = min(nt, start + chunk_dumps)
+            acc.add(start, ds[start:stop])
+            if progress:
+                progress(stop, nt)
+        dt = None
+        for key in ("integration_time", "dump_time"):
+            if key in fh.attrs:
+                try:
+                    dt = float(fh.attrs[key])
+                except (TypeError, ValueError):
+                    dt = None
+                break
+        if dt is None:
+            dt = float(np.median(np.diff(time))) if nt > 1 else 0.0
+        sk = None
+        if "diagnostics/sk" in fh:
+            g = fh["diagnostics/sk"]
+            sk = {k: np.asarray(g[k][()]) for k in g.keys() if isinstance(g[k], h5py.Dataset)}
+            sk["attrs"] = {k: (v.item() if isinstance(v, np.ndarray) and v.shape == () else
+                               (_attr_str(v) if isinstance(v, bytes) else v))
+                           for k, v in g.attrs.items()}
+    out = acc.result()
+    out.update(freq=freq, time=time, products=products, sk=sk)
+    out["attrs"] = {
+        "scan": os.path.basename(path)[:-3] if path.endswith(".h5") else os.path.basename(path),
+        "band": band, "mask": os.path.abspath(path), "ntime": nt, "nchan": nc, "nprod": npr,
+        "integration_time": dt, "hours": nt * dt / 3600.0,
+        "start_time": float(time[0]) if nt else float("nan"),
+        "stop_time": float(time[-1]) if nt else float("nan"),
+    }
+    return out
+
+
+def _fmt(x):
+    if x is None or (isinstance(x, float) and np.isnan(x)):
+        return ""
+    return f"{x:.10g}"
+
+
+def scan_table(counts):
+    """Rows (list of lists, with a header row first) of the per-scan CSV for ``counts``."""
+    a = counts["attrs"]
+    s = counts["channel/samples"]
+    head = ["band", "channel", "freq_mhz", "samples", "flagged", *BIT_NAMES,
+            *[f"flagged_{p}" for p in counts["products"]]]
+    fl = fraction(counts["channel/flagged"], s)
+    bf = fraction(counts["channel/bits"], s[None, :])
+    pf = fraction(counts["channel/product_flagged"], np.full(s.shape, a["ntime"])[None, :])
+    rows = [head]
+    for c in range(len(s)):
+        rows.append([a["band"], c, f"{counts['freq'][c] / 1e6:.6f}", int(s[c]), _fmt(fl[c]),
+                     *[_fmt(v) for v in bf[:, c]], *[_fmt(v) for v in pf[:, c]]])
+    return rows
+
+
+def run_table(bands):
+    """Rows (header first) of run.csv for ``bands`` = {band: :func:`aggregate_band` result}."""
+    products = []
+    for agg in bands.values():
+        for p in agg["products"]:
+            if p not in products:
+                products.append(p)
+    head = ["band", "channel", "freq_mhz", "scans", "samples", "flagged", *BIT_NAMES,
+            *[f"flagged_{p}" for p in products]]
+    rows = [head]
+    for band in sorted(bands):
+        agg = bands[band]
+        s = agg["samples"]
+        fl = fraction(agg["flagged"], s)
+        bf = fraction(agg["bits"], s[None, :])
+        pf = fraction(agg["product_flagged"], agg["product_samples"])
+        for c in range(len(s)):
+            prod_cols = []
+            for p in products:
+                prod_cols.append(_fmt(pf[agg["products"].index(p), c]) if p in agg["products"] else "")
+            rows.append([band, c, f"{agg['freq'][c] / 1e6:.6f}", int(agg["scans"][c]), int(s[c]),
+                         _fmt(fl[c]), *[_fmt(v) for v in bf[:, c]], *prod_cols])
+    return rows
+
+
+def write_csv(path, rows):
+    """Write ``rows`` to CSV ``path`` via a temporary name and a rename."""
+    tmp = _tmp_name(path)
+    try:
+        with open(tmp, "w", newline="") as fh:
+            csv.writer(fh).writerows(rows)
+        _publish(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+
+
+def _write_sk(h5, sk):
+    if not sk:
+        return
+    g = h5.create_group("diagnostics/sk")
+    for k, v in sk.items():
+        if k == "attrs":
+            for ak, av in v.items():
+                try:
+                    g.attrs[ak] = av
+                except TypeError:
+                    g.attrs[ak] = str(av)
+        else:
+            g.create_dataset(k, data=v)
+
+
+def write_scan_h5(path, counts):
+    """Write the per-scan occupancy HDF5 (layout in the module docstring) via temp + rename."""
+    import h5py
+
+    tmp = _tmp_name(path)
+    try:
+        with h5py.File(tmp, "w") as h5:
+            h5.create_dataset("freq", data=counts["freq"])
+            h5.create_dataset("time", data=counts["time"])
+            h5.create_dataset("products", data=np.array(counts["products"], dtype=h5py.string_dtype()))
+            for key, arr in counts.items():
+                if "/" in key:
+                    h5.create_dataset(key, data=arr, compression="gzip" if np.size(arr) > 4096 else None)
+            for k, v in counts["attrs"].items():
+                h5.attrs[k] = v
+            h5.attrs["bit_names"] = json.dumps(list(BIT_NAMES))
+            _write_sk(h5, counts.get("sk"))
+        _publish(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+
+
+def read_scan_h5(path):
+    """Read a per-scan occupancy HDF5 back into the dict of :func:`count_mask_file`."""
+    import h5py
+
+    path = str(path)
+    if not os.path.isfile(path):
+        raise ScanError(path, "occupancy file not found")
+    try:
+        fh = h5py.File(path, "r")
+    except OSError as err:
+        raise ScanError(path, f"cannot open as HDF5 ({err.__class__.__name__})") from None
+    with fh:
+        if "channel" not in fh or "freq" not in fh:
+            raise ScanError(path, "not a per-scan occupancy file (no /channel group)")
+        out = {"freq": fh["freq"][()], "time": fh["time"][()], "products": _strings(fh["products"])}
+        for grp in ("channel", "dump", "product", "image"):
+            for k in fh[grp]:
+                out[f"{grp}/{k}"] = fh[grp][k][()]
+        out["attrs"] = {k: (_attr_str(v) if isinstance(v, (bytes, str)) else
+                            (v.item() if isinstance(v, np.generic) else v))
+                        for k, v in fh.attrs.items()}
+        out["sk"] = None
+        if "diagnostics/sk" in fh:
+            g = fh["diagnostics/sk"]
+            sk = {k: g[k][()] for k in g}
+            sk["attrs"] = {k: (_attr_str(v) if isinstance(v, (bytes, str)) else
+                               (v.item() if isinstance(v, np.generic) else v))
+                           for k, v in g.attrs.items()}
+            out["sk"] = sk
+    out["attrs"].setdefault("scan", os.path.basename(path)[:-3])
+    out["ntime"] = int(out["attrs"]["ntime"])
+    return out
+
+
+def occupancy_of_mask(mask_path, csv_path, h5_path, chunk_dumps=None, image_bins=IMAGE_BINS):
+    """Count mask file ``mask_path`` and write its per-scan CSV and HDF5; return the counts."""
+    counts = count_mask_file(mask_path, chunk_dumps=chunk_dumps, image_bins=image_bins)
+    for p in (csv_path, h5_path):
+        if p:
+            os.makedirs(os.path.dirname(os.path.abspath(p)), exist_ok=True)
+    if csv_path:
+        write_csv(csv_path, scan_table(counts))
+    if h5_path:
+        write_scan_h5(h5_path, counts)
+    return counts
+
+
+def aggregate_run(scans):
+    """Aggregate per-scan counts (dicts of :func:`read_scan_h5`) per band: {band: aggregate}."""
+    by_band = {}
+    for s in scans:
+        by_band.setdefault(s["attrs"]["band"], []).append(s)
+    return {band: aggregate_band(lst) for band, lst in sorted(by_band.items())}
+
+
+def scan_overview(scans):
+    """One dict per scan: name, band, ntime, nchan, nprod, hours, start/stop time, samples, flagged, bits."""
+    rows = []
+    for s in scans:
+        a = s["attrs"]
+        rows.append({
+            "name": str(a["scan"]), "band": str(a["band"]), "ntime": int(a["ntime"]),
+            "nchan": int(a["nchan"]), "nprod": int(a["nprod"]), "hours": float(a["hours"]),
+            "start_time": float(a["start_time"]), "stop_time": float(a["stop_time"]),
+            "samples": int(np.sum(s["channel/samples"])), "flagged": int(np.sum(s["channel/flagged"])),
+            "bits": np.asarray(s["channel/bits"]).sum(axis=1).astype(np.int64),
+        })
+    return rows
+
+
+def write_run_h5(path, bands, overview, attrs=None):
+    """Write run.h5 (layout in the module docstring) via temp + rename."""
+    import h5py
+
+    tmp = _tmp_name(path)
+    sdt = h5py.string_dtype()
+    try:
+        with h5py.File(tmp, "w") as h5:
+            h5.attrs["bit_names"] = json.dumps(list(BIT_NAMES))
+            for k, v in (attrs or {}).items():
+                h5.attrs[k] = v
+            for band, agg in bands.items():
+                g = h5.create_group(f"bands/{band}")
+                for k, v in agg.items():
+                    if k == "products":
+                        g.create_dataset(k, data=np.array(v, dtype=sdt))
+                    else:
+                        g.create_dataset(k, data=v)
+            g = h5.create_group("scans")
+            for k in ("name", "band"):
+                g.create_dataset(k, data=np.array([r[k] for r in overview], dtype=sdt))
+            for k in ("ntime", "nchan", "nprod", "samples", "flagged"):
+                g.create_dataset(k, data=np.array([r[k] for r in overview], np.int64))
+            for k in ("hours", "start_time", "stop_time"):
+                g.create_dataset(k, data=np.array([r[k] for r in overview], float))
+            g.create_dataset("bits", data=np.array([r["bits"] for r in overview], np.int64).reshape(-1, NBITS))
+        _publish(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+
+
+def read_run_h5(path):
+    """Read run.h5: returns (bands, overview, attrs) as written by :func:`write_run_h5`."""
+    import h5py
+
+    path = str(path)
+    if not os.path.isfile(path):
+        raise ScanError(path, "run occupancy file not found (run `rfisieve review` first)")
+    try:
+        fh = h5py.File(path, "r")
+    except OSError as err:
+        raise ScanError(path, f"cannot open as HDF5 ({err.__class__.__name__})") from None
+    with fh:
+        if "bands" not in fh or "scans" not in fh:
+            raise ScanError(path, "not a run occupancy file (no /bands or /scans)")
+        bands = {}
+        for band in fh["bands"]:
+            g = fh["bands"][band]
+            agg = {k: g[k][()] for k in g if k != "products"}
+            agg["products"] = _strings(g["products"])
+            bands[band] = agg
+        g = fh["scans"]
+        n = len(g["name"])
+        names, bnames = _strings(g["name"]), _strings(g["band"])
+        overview = []
+        for i in range(n):
+            row = {"name": names[i], "band": bnames[i], "bits": g["bits"][i]}
+            for k in ("ntime", "nchan", "nprod", "samples", "flagged"):
+                row[k] = int(g[k][i])
+            for k in ("hours", "start_time", "stop_time"):
+                row[k] = float(g[k][i])
+            overview.append(row)
+        attrs = {k: (_attr_str(v) if isinstance(v, (bytes, str)) else v) for k, v in fh.attrs.items()}
+    return bands, overview, attrs
+
+
+# ---------------------------------------------------------------------------
+# command line
+# ---------------------------------------------------------------------------
+
+def _cmd_occupancy(args):
+    try:
+        occupancy_of_mask(args.mask, args.csv, args.h5, chunk_dumps=args.chunk_dumps,
+                          image_bins=(args.image_bins, args.image_bins))
+    except RfisieveError as err:
+        print(f"rfisieve occupancy: {err}", file=sys.stderr)
+        return 2
+    return 0
+
+
+def register_cli(subparsers):
+    """Add the ``occupancy`` subcommand to an argparse ``subparsers`` object."""
+    p = subparsers.add_parser(
+        "occupancy",
+        help="count flagged samples of one mask file per channel, dump, product and cause",
+        description=(
+            "Read one mask file (<outdir>/flags/<scan>.h5) in chunks of dumps and write "
+            "its occupancy tables: a CSV with one row per channel (band, channel, freq_mhz, "
+            "samples, flagged fraction, one fraction per cause bit, one per product) and "
+            "an HDF5 file with the exact counts (per channel, dump, product, cause, and a "
+            "time x channel image) for `rfisieve review`."),
+        formatter_class=argparse.ArgumentDefaultsHelpFormatter,
+    )
+    p.add_argument("mask", metavar="MASK", help="mask file written by the flagger (<outdir>/flags/<scan>.h5)")
+    p.add_argument("--csv", required=True, metavar="OUT.csv", help="per-channel table to write")
+    p.add_argument("--h5", required=True, metavar="OUT.h5", help="counts file to write (input of `rfisieve review`)")
+    p.add_argument("--chunk-dumps", type=int, default=None, metavar="N",
+                   help="dumps read per chunk (default: about 32 MiB of mask per chunk)")
+    p.add_argument("--image-bins", type=int, default=IMAGE_BINS[0], metavar="N",
+                   help="largest number of time and of channel bins of the occupancy image")
+    p.set_defaults(func=_cmd_occupancy)
+    return p

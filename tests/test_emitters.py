@@ -1,0 +1,65 @@
+"""Known-emitter list and matching.
+
+Check values: GPS L1 carrier 1575.42 MHz and its 20.46 MHz signal band (IS-GPS-200,
+3.3.1.1); the 1400-1427 MHz passive band (ITU Radio Regulations No. 5.340);
+GSM-900 downlink 925-960 MHz (3GPP TS 45.005).  All from memory of those documents.
+"""
+
+import pytest
+
+from rfisieve.emitters import load_emitters, match_emitters
+from rfisieve.errors import ConfigError
+
+
+@pytest.fixture(scope="module")
+def shipped():
+    return load_emitters()
+
+
+def test_every_entry_names_a_source(shipped):
+    assert len(shipped) >= 20
+    for e in shipped:
+        assert e["source"] and e["source"] != "not given", e["name"]
+        assert e["kind"] in ("emitter", "protected")
+        assert e["start_mhz"] < e["stop_mhz"]
+
+
+def test_gps_l1_channel_is_annotated(shipped):
+    # a 0.2 MHz channel centred on the GPS L1 carrier, 1575.42 MHz (IS-GPS-200)
+    names = [e["name"] for e in match_emitters(1575.32, 1575.52, shipped)]
+    assert "GPS L1" in names
+    gps = next(e for e in shipped if e["name"] == "GPS L1")
+    assert (gps["start_mhz"] + gps["stop_mhz"]) / 2 == pytest.approx(1575.42)   # IS-GPS-200
+    assert gps["stop_mhz"] - gps["start_mhz"] == pytest.approx(20.46)          # IS-GPS-200 3.3.1.1
+
+
+def test_protected_and_mobile_bands(shipped):
+    hits = match_emitters(1420.0, 1420.5, shipped)
+    assert any(e["kind"] == "protected" and e["start_mhz"] == 1400.0 and e["stop_mhz"] == 1427.0 for e in hits)  # RR 5.340
+    hits = match_emitters(940.0, 941.0, shipped)
+    assert any(e["start_mhz"] == 925.0 and e["stop_mhz"] == 960.0 for e in hits)  # 3GPP TS 45.005
+    assert match_emitters(1450.0, 1451.0, shipped) == []  # nothing listed there (common practice: quiet gap)
+
+
+def test_touching_edges_do_not_match():
+    em = [{"name": "x", "start_mhz": 10.0, "stop_mhz": 20.0, "kind": "emitter", "source": "test"}]
+    assert match_emitters(20.0, 25.0, em) == []
+    assert match_emitters(19.0, 25.0, em) == em
+    assert match_emitters(15.0, 15.0, em) == em
+
+
+def test_site_entries_are_merged(tmp_path):
+    (tmp_path / "L.yaml").write_text(
+        "band: L\nemitters:\n  - {name: Site radar, start_mhz: 1300, stop_mhz: 1301, source: site survey}\n")
+    em = load_emitters(bands_dir=str(tmp_path))
+    site = [e for e in em if e["name"] == "Site radar"]
+    assert site and site[0]["site"] == "L" and site[0]["kind"] == "emitter"
+    assert "Site radar" in [e["name"] for e in match_emitters(1300.2, 1300.4, em)]
+
+
+def test_bad_entry_is_config_error(tmp_path):
+    p = tmp_path / "em.yaml"
+    p.write_text("emitters:\n  - {name: broken, start_mhz: 5}\n")
+    with pytest.raises(ConfigError) as err:
+        load_emitters(str(p))
+    assert "stop_mhz" in str(err.value) and str(p) in str(err.value)
