@@ -21,7 +21,7 @@ BAND_DEFAULTS = {
     },
     "sumthreshold": {
         "enabled": True,
-        "chi1": 6.0,             # first threshold chi_1, in robust noise sigma
+        "chi1": 8.0,             # first threshold chi_1, in robust noise sigma
         "rho": 1.5,              # window threshold ratio: chi_M = chi_1 / rho**log2(M)
         "max_window_time": 32,   # largest window along time, dumps (a power of two)
         "max_window_freq": 32,   # largest window along frequency, channels (power of two)
