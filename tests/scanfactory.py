@@ -18,7 +18,9 @@ def make_scan(path, ntime=600, nchan=64, nprod=2, accumulations=256, seed=0, cro
     if cross:
         products.append(f"{ants[0]}-{ants[1]}")
     npr = len(products)
-    bandpass = 1.0 + 0.4 * np.sin(np.linspace(0, 3 * np.pi, nchan))
+    # a smooth bandpass with a few-percent standing-wave ripple of 30 channels' period
+    ch = np.arange(nchan)
+    bandpass = 1.0 + 0.3 * np.sin(np.pi * ch / nchan) + 0.03 * np.sin(2 * np.pi * ch / 30.0)
     data = np.empty((ntime, nchan, npr), dtype=np.complex64 if cross else dtype)
     truth = np.zeros((ntime, nchan, npr), dtype=bool)
     s2_arr = None

@@ -57,9 +57,9 @@ def _sumthreshold_settings(band):
 def _kurtosis_halo(band, scan):
     if not band["kurtosis"]["enabled"] or scan.has_s2:
         return 0
-    from .sk import sk_block_halo
+    from .sk import block_halo
 
-    return int(sk_block_halo(int(band["kurtosis"]["block_dumps"])))
+    return int(block_halo(int(band["kurtosis"]["block_dumps"])))
 
 
 def detect_halo(band, scan):
