@@ -138,8 +138,15 @@ def _meta(scan, band):
         else:
             # Mode (b): blocks of M dumps, N = raw spectra per dump.
             m, n = int(k["block_dumps"]), scan.accumulations * scan.presum
-        meta["sk"] = {"mode": "s2" if scan.has_s2 else "block", "m": m, "n": n, "d": scan.d,
-                      "pfa": pfa, "method": k["method"]}
+        from .sk import sk_threshold_table, sk_thresholds
+
+        sk = {"mode": "s2" if scan.has_s2 else "block", "m": m, "n": n, "d": scan.d,
+              "pfa": pfa, "method": k["method"]}
+        # thresholds computed once here, not in every task (the exact tails cost ~1 s)
+        sk["lower"], sk["upper"] = sk_thresholds(m, n, scan.d, pfa=pfa, method=k["method"])
+        if not scan.has_s2:
+            sk["table"] = sk_threshold_table(m, n, scan.d, pfa=pfa, method=k["method"])
+        meta["sk"] = sk
     return meta
 
 
@@ -178,10 +185,10 @@ def _detect_product(block, p, detector, band, meta, t0):
 
 
 def _kurtosis(block, p, values, excluded, sk, t0):
-    from .sk import sk_estimator, sk_flag_blocks, sk_flag_dumps, sk_thresholds
+    from .sk import sk_estimator, sk_flag_blocks, sk_flag_dumps
 
     m, n, d = sk["m"], sk["n"], sk["d"]
-    lower, upper = sk_thresholds(m, n, d, pfa=sk["pfa"], method=sk["method"])
+    lower, upper = sk["lower"], sk["upper"]
     valid = ~excluded
     if sk["mode"] == "s2":
         s2 = block["s2"][:, :, p]
@@ -190,7 +197,7 @@ def _kurtosis(block, p, values, excluded, sk, t0):
             ski = sk_estimator(values.astype(np.float64) * m, s2.astype(np.float64), m, n, d)
         ski = ski[valid]
     else:
-        hit = sk_flag_blocks(values, valid, m, n, d, pfa=sk["pfa"], method=sk["method"], t0=t0)
+        hit = sk_flag_blocks(values, valid, m, n, d, thresholds=sk["table"], t0=t0)
         ski = _block_sk_values(values, valid, m, n, d, t0)
     counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], SK_EDGES[0], SK_EDGES[-1] - 1e-9), SK_EDGES)
     return hit, counts.astype(np.int64)
@@ -321,9 +328,7 @@ def _write_sk_diag(f, hist, meta, band):
     g.create_dataset("edges", data=SK_EDGES)
     g.create_dataset("counts", data=hist)
     if sk:
-        from .sk import sk_thresholds
-
-        lower, upper = sk_thresholds(sk["m"], sk["n"], sk["d"], pfa=sk["pfa"], method=sk["method"])
+        lower, upper = sk["lower"], sk["upper"]
         for key in ("m", "n", "d", "pfa", "method", "mode"):
             g.attrs[key] = sk[key]
         g.attrs["lower"], g.attrs["upper"] = float(lower), float(upper)
