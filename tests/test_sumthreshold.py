@@ -185,6 +185,7 @@ def test_invalid_values_do_not_matter():
 def test_flagger_one_iteration_is_the_documented_composition():
     # One iteration = background fit, r = x / B - 1, robust sigma, SumThreshold
     # along time and along frequency on the input mask, union (the docstring).
+    # The flagger fits the background with the coarse-grid fit (coarse=True).
     rng = np.random.default_rng(4)
     x, _ = _line_rfi_plane(rng, 200, 96)
     mask = rng.random(x.shape) < 0.01
@@ -194,7 +195,8 @@ def test_flagger_one_iteration_is_the_documented_composition():
     s = _st_settings()
     s.update(iterations=1)
     got = sumthreshold_flagger(x, mask, invalid=invalid, **s)
-    bg = fit_background(x, mask, invalid, s["background_time"], s["background_freq"])
+    bg = fit_background(x, mask, invalid, s["background_time"], s["background_freq"],
+                        coarse=True)
     r = x / bg - 1
     sig = robust_sigma(np.where(invalid, 0, r), mask | invalid)
     c1 = s["chi1"] * sig
@@ -221,8 +223,10 @@ def test_chunk_independence_with_halo():
 
 
 def test_halo_rule():
-    # iterations * (sum_M (M - 1) + background reach): 3 * (57 + 43) for the defaults
-    assert sumthreshold_halo(BAND_DEFAULTS["sumthreshold"]) == 300
+    # iterations * (sum_M (M - 1) + background reach), rounded up to a multiple
+    # of the background's time cell: 3 * (57 + 44) = 303 -> 304 (cells of 8
+    # dumps) for the defaults
+    assert sumthreshold_halo(BAND_DEFAULTS["sumthreshold"]) == 304
     assert sumthreshold_halo({"enabled": False}) == 0
     assert sumthreshold_halo({"iterations": 1, "max_window_time": 1,
                               "background_time": 0}) == 0
@@ -236,3 +240,60 @@ def test_flagger_edge_cases():
     c[10, 5] = 100.0
     d = sumthreshold_flagger(c)
     assert d[10, 5]
+
+
+def test_frequency_tiles_equal_definition():
+    # SumThreshold along frequency on transposed tiles (several tiles, a partial
+    # last one, wholly and partly invalid lines) against the definition.
+    from rfisieve.sumthreshold import _levels, _st_freq
+    rng = np.random.default_rng(21)
+    for n, m in ((150, 90), (17, 300), (70, 33)):
+        x = (rng.standard_normal((n, m)) * 2).astype(np.float32)
+        x[rng.random((n, m)) < 0.05] += 5
+        flagged = rng.random((n, m)) < 0.1
+        invalid = (rng.random((n, m)) < 0.03) & ~flagged
+        invalid[:, rng.integers(m)] = True
+        invalid[rng.integers(n), :] = True
+        flagged &= ~invalid
+        lev, rowbad, colbad = _levels((n, m), flagged, invalid)
+        got = np.zeros((n, m), bool)
+        _st_freq(x, lev, rowbad, colbad, 3.0, 1.5, 6, got, True)
+        want = brute_sumthreshold(x.T, flagged.T, invalid.T, 3.0, 1.5, 32).T
+        np.testing.assert_array_equal(got, want)
+
+
+def test_time_sweep_long_windows():
+    # All window passes in one sweep (ring buffer sized by the lags): windows to
+    # 128 and lines longer than the ring, against the definition.
+    rng = np.random.default_rng(22)
+    x = (rng.standard_normal((400, 7)) * 2).astype(np.float32)
+    x[100:300, 2] += 1.0
+    flagged = rng.random(x.shape) < 0.05
+    invalid = (rng.random(x.shape) < 0.02) & ~flagged
+    invalid[:, 5] = False
+    for mw in (64, 128):
+        got = sumthreshold(x, flagged, chi1=4.0, rho=1.5, max_window=mw, invalid=invalid)
+        want = brute_sumthreshold(x, flagged, invalid, 4.0, 1.5, mw)
+        np.testing.assert_array_equal(got, want)
+
+
+def test_chunks_exact_with_the_whole_plane_noise(monkeypatch):
+    # With the noise estimate of the whole plane (the only plane-wide quantity),
+    # chunks cut at multiples of the background cell with sumthreshold_halo
+    # dumps of halo reproduce the whole-plane result exactly: the halo covers
+    # SumThreshold's and the coarse background's reach.
+    import rfisieve.sumthreshold as stm
+    rng = np.random.default_rng(6)
+    x, _ = _line_rfi_plane(rng, 1024, 96)
+    s = _st_settings()
+    h = sumthreshold_halo(BAND_DEFAULTS["sumthreshold"])
+    real = stm.robust_sigma2
+    record = []
+    monkeypatch.setattr(stm, "robust_sigma2", lambda *a: record.append(real(*a)) or record[-1])
+    whole = sumthreshold_flagger(x, **s)
+    for cut in (512, 640):
+        replay = iter(record * 2)
+        monkeypatch.setattr(stm, "robust_sigma2", lambda *a: next(replay))
+        a = sumthreshold_flagger(x[:cut + h], **s)[:cut]
+        b = sumthreshold_flagger(x[cut - h:], **s)[h:]
+        np.testing.assert_array_equal(np.concatenate([a, b]), whole)

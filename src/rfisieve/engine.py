@@ -384,7 +384,8 @@ def _merge_chunk(det_block, extra, band, core):
     if g["enabled"] and g["eta"] > 0:
         detected = (det_block & bits.DETECTED) != 0
         for p in range(det_block.shape[2]):
-            grown = sir_grow(detected[:, :, p], g["eta"], time=g["time"], freq=g["freq"])
+            grown = sir_grow(detected[:, :, p], g["eta"], time=g["time"], freq=g["freq"],
+                             **_reach_kwargs(g))
             out[:, :, p][grown & ~detected[:, :, p]] |= bits.MORPHOLOGY
     out = out[core[0]:core[1]]
     limit = band["cuts"]["dump_limit"]
@@ -393,6 +394,16 @@ def _merge_chunk(det_block, extra, band, core):
             cut = dump_cut(out[:, :, p] != 0, limit)
             out[cut, :, p] |= bits.OCCUPANCY
     return out
+
+
+def _reach_kwargs(g):
+    """Bounded-reach keywords for sir_grow, when the morphology module supports them."""
+    import inspect
+
+    from .morphology import sir_grow
+
+    params = inspect.signature(sir_grow).parameters
+    return {k: g.get(k) for k in ("reach_time", "reach_freq") if k in params}
 
 
 def _input_and_static(scan, a, b, meta):

@@ -7,20 +7,24 @@ The public, documented entry points are in :mod:`rfisieve.background`,
 :mod:`rfisieve.sumthreshold` and :mod:`rfisieve.morphology`; the functions here
 check nothing and may overwrite their output arguments.
 
-Two loop shapes are used:
+Loop shapes:
 
 * along axis 0 (time, the strided axis): one running quantity per channel and an
-  inner loop over the contiguous channel axis, which the compiler vectorises;
-* along axis 1 (channel, the contiguous axis): blocks of ``_ROWS`` rows are
-  processed together, inner loop over the rows of the block, so that the running
-  sums of different rows are independent and the loop is not latency bound.
+  inner loop over the contiguous channel axis, which the compiler vectorises.
+  SumThreshold along time (:func:`st_time_pipe`) runs all its window passes in
+  one sweep down the dumps with a ring buffer of levels, so the plane is read
+  about once per direction instead of once per window;
+* along axis 1 (channel, the contiguous axis): SumThreshold gathers tiles of
+  dumps transposed into a cache-resident buffer (:func:`st_freq`), the
+  background's frequency fit works row by row on a few moment rows;
+* the background is fitted on a coarse grid of cells (:func:`cell_moments`,
+  :func:`box_axis0_f64`, :func:`coarse_solve`) and interpolated back fused with
+  the residual (:func:`coarse_interp`).
 """
 
 import numpy as np
 from numba import njit
 
-_ROWS = 16          # rows processed together by the axis-1 loops
-_TILE = 64          # tile edge of the transpose
 
 # Levels in the SumThreshold working array (uint8):
 LEV_FREE = 0        # not flagged
@@ -31,21 +35,6 @@ LEV_INVALID = 255   # invalid: left out of every sum
 _opts = dict(nogil=True, cache=True, fastmath=False, error_model="numpy", boundscheck=False)
 
 
-# --------------------------------------------------------------------------- utilities
-@njit(**_opts)
-def transpose(a, out):
-    """out[j, i] = a[i, j], tiled for cache."""
-    n, m = a.shape
-    for i0 in range(0, n, _TILE):
-        i1 = min(i0 + _TILE, n)
-        for j0 in range(0, m, _TILE):
-            j1 = min(j0 + _TILE, m)
-            for j in range(j0, j1):
-                for i in range(i0, i1):
-                    out[j, i] = a[i, j]
-
-
-# --------------------------------------------------------------- normalised smoothing
 @njit(**_opts)
 def weights(x, exclude, num, den):
     """num = x where not excluded else 0; den = 1 where not excluded else 0."""
@@ -190,16 +179,6 @@ def fill_gaps(b):
 
 # ----------------------------------------------------------------------- SumThreshold
 @njit(**_opts)
-def residual(x, bg, lev, out):
-    """out = x / bg - 1 for samples that are not invalid (0 for invalid ones)."""
-    n, m = x.shape
-    for t in range(n):
-        for c in range(m):
-            v = x[t, c] / bg[t, c] - np.float32(1.0)
-            out[t, c] = np.float32(0.0) if lev[t, c] == LEV_INVALID else v
-
-
-@njit(**_opts)
 def init_levels(flagged, invalid, lev):
     """lev = 255 where invalid, 1 where flagged, 0 elsewhere; returns (per-row
     count of invalid samples, per-column count of invalid samples)."""
@@ -217,69 +196,6 @@ def init_levels(flagged, invalid, lev):
             else:
                 lev[t, c] = LEV_FREE
     return rowbad, colbad
-
-
-@njit(**_opts)
-def st_pass_one(x, lev, thr):
-    """Window M = 1 (pass q = 1): flag free samples with x > thr (level 2)."""
-    n, m = x.shape
-    for t in range(n):
-        for c in range(m):
-            if lev[t, c] == LEV_FREE and x[t, c] > thr:
-                lev[t, c] = 2
-
-
-@njit(**_opts)
-def st_axis0(x, lev, rows, chi1, rho, npass, q0, s, last):
-    """SumThreshold passes q0 .. npass (window M = 2**(q-1)) along axis 0 for all
-    columns at once, over the row list ``rows`` (rows not wholly invalid).
-    Invalid samples inside those rows enter as 0 (their columns must be redone
-    by :func:`st_columns_scalar`).  ``s`` float64 and ``last`` int64 scratch of
-    length ``x.shape[1]``."""
-    n, m = x.shape
-    nr = rows.shape[0]
-    for q in range(q0, npass + 1):
-        M = 1 << (q - 1)
-        thr = chi1 / rho ** (q - 1)
-        lim = M * thr
-        qq = np.uint8(q)
-        newlev = np.uint8(q + 1)
-        for c in range(m):
-            s[c] = 0.0
-            last[c] = -1
-        for k in range(nr + M - 1):
-            j = k - M + 1
-            if k < nr:
-                ta = rows[k]
-                for c in range(m):
-                    lv = lev[ta, c]
-                    v = np.float64(x[ta, c])
-                    if lv != 0 and lv <= qq:
-                        v = thr
-                    if lv == LEV_INVALID:
-                        v = 0.0
-                    s[c] += v
-            if k >= M:
-                ts = rows[k - M]
-                for c in range(m):
-                    lv = lev[ts, c]
-                    v = np.float64(x[ts, c])
-                    if lv != 0 and lv <= qq:
-                        v = thr
-                    if lv == LEV_INVALID:
-                        v = 0.0
-                    s[c] -= v
-            if j >= 0 and k < nr:
-                for c in range(m):
-                    if s[c] > lim:
-                        last[c] = k
-            if j >= 0:
-                tj = rows[j]
-                for c in range(m):
-                    if last[c] >= j and lev[tj, c] == LEV_FREE:
-                        lev[tj, c] = newlev
-            # the level written at row j (newlev) is not read again in this pass:
-            # rows j - M .. are behind the window, newlev > q is "free" above.
 
 
 @njit(**_opts)
@@ -304,47 +220,6 @@ def st_line(v, lv, nv, chi1, rho, npass, q0):
                 last = k
             if j >= 0 and last >= j and lv[j] == LEV_FREE:
                 lv[j] = q + 1
-
-
-@njit(**_opts)
-def st_columns_scalar(x, lev, cols, chi1, rho, npass, q0):
-    """Redo columns ``cols`` along axis 0 one by one, leaving invalid samples out:
-    levels written by earlier passes >= q0 are first reset to free."""
-    n, m = x.shape
-    v = np.empty(n, np.float32)
-    lv = np.empty(n, np.uint8)
-    idx = np.empty(n, np.int64)
-    for ci in range(cols.shape[0]):
-        c = cols[ci]
-        nv = 0
-        for t in range(n):
-            a = lev[t, c]
-            if a != LEV_INVALID:
-                if a > q0:          # written by a pass >= q0 of the vector loop
-                    a = LEV_FREE
-                    lev[t, c] = a
-                v[nv] = x[t, c]
-                lv[nv] = a
-                idx[nv] = t
-                nv += 1
-        st_line(v, lv, nv, chi1, rho, npass, q0)
-        for k in range(nv):
-            lev[idx[k], c] = lv[k]
-
-
-@njit(**_opts)
-def detections(lev_t, lev_ft, out):
-    """out = detected along time (lev_t) or along frequency (lev_ft, transposed)."""
-    n, m = lev_t.shape
-    for t0 in range(0, n, _TILE):
-        t1 = min(t0 + _TILE, n)
-        for c0 in range(0, m, _TILE):
-            c1 = min(c0 + _TILE, m)
-            for t in range(t0, t1):
-                for c in range(c0, c1):
-                    a = lev_t[t, c]
-                    b = lev_ft[c, t]
-                    out[t, c] = (a >= 2 and a != LEV_INVALID) or (b >= 2 and b != LEV_INVALID)
 
 
 @njit(**_opts)
@@ -463,3 +338,442 @@ def freq_local_linear(num, den, radii, out):
             else:
                 out[t, c] = x0 / m0
     return bad
+
+
+# ------------------------------------------------- SumThreshold on cache-resident tiles
+_TILE_BYTES = 640 * 1024   # SumThreshold tile budget (5 bytes per sample): stays in L2
+
+
+def tile_width(L):
+    """Lines per SumThreshold tile for lines of L samples: the largest multiple of
+    16 (at most 64, at least 16) whose tile fits in _TILE_BYTES."""
+    b = (_TILE_BYTES // (5 * max(int(L), 1))) // 16 * 16
+    return int(min(64, max(16, b)))
+
+
+@njit(**_opts)
+def _tile_passes(v, lv, L, chi1, rho, npass, s, last):
+    """SumThreshold passes q = 1 .. npass along axis 0 of the tile v[:L, :B]
+    (float32 values, lines are the B columns), levels lv[:L, :B] (0 free, 1
+    input-flagged, q + 1 detected by pass q) updated in place.  The lines hold no
+    invalid sample.  ``s`` float64 and ``last`` int64 scratch of length B.
+    Branch-free inner loops over the B lines (vectorised)."""
+    B = v.shape[1]
+    if npass >= 1:                 # M = 1: a free sample above chi_1
+        two = np.uint8(2)
+        for k in range(L):
+            for b in range(B):
+                a = lv[k, b]
+                lv[k, b] = two if (a == 0 and np.float64(v[k, b]) > chi1) else a
+    for q in range(2, npass + 1):
+        M = 1 << (q - 1)
+        thr = chi1 / rho ** (q - 1)
+        lim = M * thr
+        qm = np.uint8(q - 1)
+        newlev = np.uint8(q + 1)
+        zero = np.uint8(0)
+        one = np.uint8(1)
+        for b in range(B):
+            s[b] = 0.0
+            last[b] = -1
+        # head: k < M (no sample leaves the window); a - 1 < q  <=>  1 <= a <= q
+        for k in range(min(M, L)):
+            for b in range(B):
+                a = lv[k, b]
+                s[b] += thr if np.uint8(a - one) <= qm else np.float64(v[k, b])
+        if L >= M:
+            k = M - 1
+            for b in range(B):
+                last[b] = k if s[b] > lim else last[b]
+            for b in range(B):
+                a = lv[0, b]
+                lv[0, b] = newlev if (last[b] >= 0 and a == zero) else a
+        # body: window [k - M + 1, k]
+        for k in range(M, L):
+            ko = k - M
+            j = ko + 1
+            for b in range(B):
+                a = lv[k, b]
+                u = thr if np.uint8(a - one) <= qm else np.float64(v[k, b])
+                a2 = lv[ko, b]
+                o = thr if np.uint8(a2 - one) <= qm else np.float64(v[ko, b])
+                sv = s[b] + u - o
+                s[b] = sv
+                last[b] = k if sv > lim else last[b]
+            for b in range(B):
+                a = lv[j, b]
+                lv[j, b] = newlev if (last[b] >= j and a == zero) else a
+        # tail: the last M - 1 samples, no new window
+        for j in range(max(L - M + 1, 1), L):
+            for b in range(B):
+                a = lv[j, b]
+                lv[j, b] = newlev if (last[b] >= j and a == zero) else a
+
+
+@njit(**_opts)
+def _line_scalar(x, lev0, line, along_time, chi1, rho, npass, v, lvl, idx):
+    """SumThreshold of one line holding invalid samples (left out): returns the
+    count nv; idx[:nv] the positions, lvl[:nv] the final levels."""
+    nv = 0
+    if along_time:
+        n = x.shape[0]
+        for t in range(n):
+            a = lev0[t, line]
+            if a != LEV_INVALID:
+                v[nv] = x[t, line]
+                lvl[nv] = a
+                idx[nv] = t
+                nv += 1
+    else:
+        m = x.shape[1]
+        for c in range(m):
+            a = lev0[line, c]
+            if a != LEV_INVALID:
+                v[nv] = x[line, c]
+                lvl[nv] = a
+                idx[nv] = c
+                nv += 1
+    st_line(v, lvl, nv, chi1, rho, npass, 1)
+    return nv
+
+
+@njit(**_opts)
+def st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge, B):
+    """SumThreshold passes 1 .. npass along frequency (axis 1), conventions of
+    :func:`st_time_pipe`: tiles of B dumps are gathered (transposed) over the
+    channel list ``cols`` (channels not wholly invalid) into a cache-resident
+    buffer and run by :func:`_tile_passes`; dumps with ``partial`` True are
+    redone line by line."""
+    n, m = x.shape
+    L = cols.shape[0]
+    v = np.empty((max(L, 1), B), np.float32)
+    lv = np.empty((max(L, 1), B), np.uint8)
+    s = np.empty(B)
+    last = np.empty(B, np.int64)
+    for t0 in range(0, n, B):
+        nb = min(B, n - t0)
+        for b in range(nb):
+            for k in range(L):
+                c = cols[k]
+                a = lev0[t0 + b, c]
+                lv[k, b] = a
+                v[k, b] = np.float32(0.0) if a == LEV_INVALID else x[t0 + b, c]
+        for b in range(nb, B):
+            for k in range(L):
+                lv[k, b] = 0
+                v[k, b] = np.float32(0.0)
+        _tile_passes(v, lv, L, chi1, rho, npass, s, last)
+        for b in range(nb):
+            t = t0 + b
+            if partial[t]:
+                continue                # redone line by line below
+            for k in range(L):
+                a = lv[k, b]
+                d = a >= 2 and a != LEV_INVALID
+                c = cols[k]
+                if merge:
+                    det[t, c] |= d
+                else:
+                    det[t, c] = d
+    vv = np.empty(m, np.float32)
+    ll = np.empty(m, np.uint8)
+    idx = np.empty(m, np.int64)
+    for t in range(n):
+        if partial[t]:
+            nv = _line_scalar(x, lev0, t, False, chi1, rho, npass, vv, ll, idx)
+            if not merge:
+                for c in range(m):
+                    if lev0[t, c] == LEV_INVALID:
+                        det[t, c] = False
+            for k in range(nv):
+                a = ll[k]
+                d = a >= 2 and a != LEV_INVALID
+                if merge:
+                    det[t, idx[k]] |= d
+                else:
+                    det[t, idx[k]] = d
+
+
+# ------------------------------------------------------------- coarse background fit
+@njit(**_opts)
+def cell_moments(x, ex1, ex2, ct, cf, mom):
+    """Sums over cells of ct dumps x cf channels of the samples excluded by
+    neither ex1 nor ex2: mom[i, :, j] = (sum w, sum w c, sum w c**2, sum w x,
+    sum w x c), c the absolute channel index (float64).  mom is overwritten.
+    Per-channel sums over the ct dumps of a cell row first (vectorised), then
+    the channel moments of those column sums."""
+    n, m = x.shape
+    ntc, _, nfc = mom.shape
+    aw = np.empty(m)
+    ax = np.empty(m)
+    for i in range(ntc):
+        for c in range(m):
+            aw[c] = 0.0
+            ax[c] = 0.0
+        for t in range(i * ct, min((i + 1) * ct, n)):
+            for c in range(m):
+                keep = not (ex1[t, c] or ex2[t, c])
+                aw[c] += 1.0 if keep else 0.0
+                ax[c] += np.float64(x[t, c]) if keep else 0.0
+        for j in range(nfc):
+            w0 = 0.0
+            w1 = 0.0
+            w2 = 0.0
+            z0 = 0.0
+            z1 = 0.0
+            for c in range(j * cf, min((j + 1) * cf, m)):
+                cc = np.float64(c)
+                w = aw[c]
+                z = ax[c]
+                w0 += w
+                w1 += w * cc
+                w2 += w * cc * cc
+                z0 += z
+                z1 += z * cc
+            mom[i, 0, j] = w0
+            mom[i, 1, j] = w1
+            mom[i, 2, j] = w2
+            mom[i, 3, j] = z0
+            mom[i, 4, j] = z1
+
+
+@njit(**_opts)
+def box_axis0_f64(a, r, out, s):
+    """Zero-padded running box sums of half-width r along axis 0 of the float64
+    plane a into out (no aliasing); s: float64 scratch of length a.shape[1]."""
+    n, m = a.shape
+    for c in range(m):
+        s[c] = 0.0
+    for t in range(min(r, n)):
+        for c in range(m):
+            s[c] += a[t, c]
+    for t in range(n):
+        ad = t + r
+        su = t - r - 1
+        if ad < n:
+            for c in range(m):
+                s[c] += a[ad, c]
+        if su >= 0:
+            for c in range(m):
+                s[c] -= a[su, c]
+        for c in range(m):
+            out[t, c] = s[c]
+
+
+@njit(**_opts)
+def coarse_solve(mom, radii, cf, out):
+    """Local straight-line fit along channels on the coarse grid: per coarse row
+    i, box-smooth the 5 moments mom[i] along the cell axis (half-widths
+    ``radii``) and evaluate the weighted least-squares line at the cell centre
+    P_j = j cf + (cf - 1) / 2 (the formula of :func:`freq_local_linear`, order
+    zero where the weights span less than 0.1 channel**2, NaN where none).
+    Returns the NaN count."""
+    ntc, _, nfc = mom.shape
+    p = np.empty((5, nfc))
+    tmp = np.empty((5, nfc + 1))
+    half = 0.5 * (cf - 1)
+    bad = 0
+    for i in range(ntc):
+        for k in range(5):
+            for j in range(nfc):
+                p[k, j] = mom[i, k, j]
+        for r in radii:
+            _box_rows5(p, tmp, nfc, r)
+        for j in range(nfc):
+            m0 = p[0, j]
+            if not m0 > 0.0:
+                out[i, j] = np.nan
+                bad += 1
+                continue
+            P = np.float64(j * cf) + half
+            s1 = p[1, j] - P * m0
+            s2 = p[2, j] - 2.0 * P * p[1, j] + P * P * m0
+            x0 = p[3, j]
+            x1 = p[4, j] - P * x0
+            det = m0 * s2 - s1 * s1
+            if det > 0.1 * m0 * m0:
+                out[i, j] = (s2 * x0 - s1 * x1) / det
+            else:
+                out[i, j] = x0 / m0
+    return bad
+
+
+@njit(**_opts)
+def coarse_interp(G, ct, cf, x, lev0, out, resid):
+    """Bilinear interpolation of the coarse grid G (nodes at dump i ct + (ct - 1)/2,
+    channel j cf + (cf - 1)/2; held constant beyond the outer nodes along time,
+    extrapolated linearly along channels) to the full plane, rounded to float32
+    as B: first along channels for every node row (H, float64), then along time
+    per dump.  resid False: out = B.  resid True: out = x / B - 1 (float32), 0
+    where lev0 is invalid."""
+    n, m = out.shape
+    ntc, nfc = G.shape
+    H = np.empty((ntc, m))
+    hf = 0.5 * (cf - 1)
+    for c in range(m):
+        if nfc == 1:
+            for i in range(ntc):
+                H[i, c] = G[i, 0]
+        else:
+            a = (c - hf) / cf
+            k = int(np.floor(a))
+            k = min(max(k, 0), nfc - 2)
+            f = a - k
+            for i in range(ntc):
+                H[i, c] = G[i, k] + f * (G[i, k + 1] - G[i, k])
+    ht = 0.5 * (ct - 1)
+    one = np.float32(1.0)
+    zero = np.float32(0.0)
+    for t in range(n):
+        a = (t - ht) / ct
+        if ntc == 1 or a <= 0.0:
+            i0 = 0
+            ft = 0.0
+        elif a >= ntc - 1:
+            i0 = ntc - 1
+            ft = 0.0
+        else:
+            i0 = int(np.floor(a))
+            ft = a - i0
+        h0 = H[i0]
+        h1 = H[min(i0 + 1, ntc - 1)]
+        xt = x[t]
+        ot = out[t]
+        if resid:
+            lt = lev0[t]
+            for c in range(m):
+                bg = np.float32(h0[c] + ft * (h1[c] - h0[c]))
+                vv = xt[c] / bg - one
+                ot[c] = zero if lt[c] == LEV_INVALID else vv
+        else:
+            for c in range(m):
+                ot[c] = np.float32(h0[c] + ft * (h1[c] - h0[c]))
+
+
+@njit(**_opts)
+def strided_sample2(x, ex1, ex2, step, out):
+    """As :func:`strided_sample`, excluding where ex1 or ex2."""
+    xf = x.ravel()
+    e1 = ex1.ravel()
+    e2 = ex2.ravel()
+    k = 0
+    for i in range(0, xf.shape[0], step):
+        if not (e1[i] or e2[i]):
+            v = xf[i]
+            if v == v:
+                out[k] = v
+                k += 1
+    return k
+
+
+@njit(**_opts)
+def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
+    """SumThreshold passes 1 .. npass along time (axis 0) of the plane x with
+    input levels lev0 (0 free, 1 flagged, 255 invalid), over the dump list
+    ``rows`` (dumps not wholly invalid).  Channels with ``partial`` True hold
+    invalid samples in those dumps and are redone line by line, invalid samples
+    left out.  Detections go to det (det = d, or det |= d when ``merge``); det
+    is not written at dumps outside ``rows`` (the caller clears it).
+
+    All passes run in one sweep down the dumps, vectorised over all channels, pass q lagging pass
+    q - 1 by M_{q-1} - 1 dumps (the dumps pass q reads are final for the passes
+    before it; the levels pass q writes, q + 1, read as free in later-started
+    windows of the earlier passes, as they would in sequence).  The levels of
+    the last dumps (lag of the last pass plus its window: 59 dumps for windows
+    up to 32) live in a ring buffer, so each dump is read from memory about
+    once."""
+    n, m = x.shape
+    L = rows.shape[0]
+    lag = np.zeros(npass + 2, np.int64)       # lag[q]: dumps pass q trails the load
+    for q in range(3, npass + 1):
+        lag[q] = lag[q - 1] + (1 << (q - 2)) - 1
+    Mmax = 1 << max(npass - 1, 0)
+    final_lag = (lag[npass] if npass >= 2 else 0) + Mmax - 1
+    R = 1
+    while R < final_lag + 2:
+        R *= 2
+    RM = R - 1
+    ring = np.zeros((R, m), np.uint8)
+    s = np.zeros((max(npass, 1) + 1, m))
+    last = np.full((max(npass, 1) + 1, m), -1, np.int64)
+    two = np.uint8(2)
+    one = np.uint8(1)
+    zero = np.uint8(0)
+    c1 = np.float64(chi1)
+    for K in range(L + final_lag):
+        if K < L:
+            t = rows[K]
+            rr = ring[K & RM]
+            for c in range(m):
+                a = lev0[t, c]
+                if npass >= 1:
+                    a = two if (a == zero and np.float64(x[t, c]) > c1) else a
+                rr[c] = a
+        for q in range(2, npass + 1):
+            kq = K - lag[q]
+            M = 1 << (q - 1)
+            if kq < 0 or kq >= L + M - 1:
+                continue
+            thr = chi1 / rho ** (q - 1)
+            lim = M * thr
+            qm = np.uint8(q - 1)
+            newlev = np.uint8(q + 1)
+            sq = s[q]
+            lq = last[q]
+            j = kq - M + 1
+            if kq < L and kq >= M:
+                ra = ring[kq & RM]
+                xa = x[rows[kq]]
+                ro = ring[(kq - M) & RM]
+                xo = x[rows[kq - M]]
+                for c in range(m):
+                    a = ra[c]
+                    u = thr if np.uint8(a - one) <= qm else np.float64(xa[c])
+                    a2 = ro[c]
+                    o = thr if np.uint8(a2 - one) <= qm else np.float64(xo[c])
+                    sv = sq[c] + u - o
+                    sq[c] = sv
+                    lq[c] = kq if sv > lim else lq[c]
+            elif kq < L:
+                ra = ring[kq & RM]
+                xa = x[rows[kq]]
+                for c in range(m):
+                    a = ra[c]
+                    sq[c] += thr if np.uint8(a - one) <= qm else np.float64(xa[c])
+                if j >= 0:
+                    for c in range(m):
+                        lq[c] = kq if sq[c] > lim else lq[c]
+            if j >= 0:
+                rj = ring[j & RM]
+                for c in range(m):
+                    a = rj[c]
+                    rj[c] = newlev if (lq[c] >= j and a == zero) else a
+        r = K - final_lag
+        if r >= 0:
+            t = rows[r]
+            rr = ring[r & RM]
+            for c in range(m):
+                a = rr[c]
+                d = a >= 2 and a != LEV_INVALID and not partial[c]
+                if merge:
+                    det[t, c] |= d
+                else:
+                    det[t, c] = d
+    vv = np.empty(n, np.float32)
+    ll = np.empty(n, np.uint8)
+    idx = np.empty(n, np.int64)
+    for c in range(m):
+        if partial[c]:
+            nv = _line_scalar(x, lev0, c, True, chi1, rho, npass, vv, ll, idx)
+            if not merge:
+                for t in range(n):
+                    if lev0[t, c] == LEV_INVALID:
+                        det[t, c] = False
+            for k in range(nv):
+                a = ll[k]
+                d = a >= 2 and a != LEV_INVALID
+                if merge:
+                    det[idx[k], c] |= d
+                else:
+                    det[idx[k], c] = d
+

@@ -35,6 +35,8 @@ BAND_DEFAULTS = {
         "eta": 0.2,              # SIR aggressiveness eta (0 = no growth, 1 = flag all)
         "time": True,            # grow along time
         "freq": True,            # grow along frequency
+        "reach_time": 16,        # longest reach of a growth interval to either side, dumps
+        "reach_freq": 4,         # longest reach of a growth interval to either side, channels
     },
     "cuts": {
         "channel_limit": 0.8,    # flag a whole channel of a product above this fraction

@@ -24,7 +24,7 @@ import math
 import numpy as np
 
 from . import kernels
-from .background import box_reach, masked_smooth, robust_sigma
+from .background import cell_size, coarse_reach, coarse_residual, robust_sigma2
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger",
            "threshold_factors", "sumthreshold_halo"]
@@ -51,16 +51,21 @@ def _levels(shape, mask, invalid):
     return lev, rowbad, colbad
 
 
-def _run_axis0(x, lev, rowbad, colbad, chi1, rho, npass, q0):
-    """SumThreshold passes q0..npass along axis 0 of a (line position, line) plane."""
+def _st_time(x, lev0, rowbad, colbad, chi1, rho, npass, det, merge):
+    """SumThreshold passes along axis 0 (lines = columns) into det."""
     n, m = x.shape
-    rows = np.flatnonzero(rowbad < m).astype(np.int64)        # rows not wholly invalid
-    kernels.st_axis0(x, lev, rows, chi1, rho, npass, q0, np.empty(m), np.empty(m, np.int64))
-    # columns holding invalid samples in rows that are not wholly invalid: redo
-    part = colbad - (n - rows.shape[0])
-    cols = np.flatnonzero(part > 0).astype(np.int64)
-    if cols.size:
-        kernels.st_columns_scalar(x, lev, cols, chi1, rho, npass, q0)
+    rows = np.flatnonzero(rowbad < m).astype(np.int64)        # dumps not wholly invalid
+    partial = (colbad - (n - rows.shape[0])) > 0              # invalid samples among them
+    kernels.st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge)
+
+
+def _st_freq(x, lev0, rowbad, colbad, chi1, rho, npass, det, merge):
+    """SumThreshold passes along axis 1 (lines = rows) into det."""
+    n, m = x.shape
+    cols = np.flatnonzero(colbad < n).astype(np.int64)        # channels not wholly invalid
+    partial = (rowbad - (m - cols.shape[0])) > 0
+    kernels.st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge,
+                    kernels.tile_width(cols.shape[0]))
 
 
 def sumthreshold(values, mask=None, chi1=6.0, rho=1.5, max_window=32, axis=0, invalid=None):
@@ -118,8 +123,8 @@ def sumthreshold(values, mask=None, chi1=6.0, rho=1.5, max_window=32, axis=0, in
         invalid = None if invalid is None else np.asarray(invalid).T
     xc = np.ascontiguousarray(x, dtype=np.float32)
     lev, rowbad, colbad = _levels(xc.shape, mask, invalid)
-    _run_axis0(xc, lev, rowbad, colbad, float(chi1), float(rho), _npass(max_window), 1)
-    det = (lev >= 2) & (lev != kernels.LEV_INVALID)
+    det = np.zeros(xc.shape, np.bool_)
+    _st_time(xc, lev, rowbad, colbad, float(chi1), float(rho), _npass(max_window), det, False)
     if axis == 1:
         det = det.T
     return det[:, 0] if one else np.ascontiguousarray(det)
@@ -149,8 +154,9 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
 
-    1. fit a smooth background B (:func:`rfisieve.background.masked_smooth`,
-       scales ``background_time`` dumps and ``background_freq`` channels) with the
+    1. fit a smooth background B (:func:`rfisieve.background.coarse_smooth`, the
+       coarse-grid form of the local fit of ``masked_smooth``; scales
+       ``background_time`` dumps and ``background_freq`` channels) with the
        input-flagged, invalid and so-far detected samples excluded;
     2. form the relative residual r = x / B - 1.  Relative units because the
        bandpass and the gain scale signal and noise alike (radiometer equation:
@@ -167,6 +173,12 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     i + 1; the result is the last iteration's detections.  Where the background
     has no valid sample within its kernel (wide flagged regions) it is filled by
     interpolation (see ``masked_smooth``), so such samples are still tested.
+
+    Implementation: the residual is formed in the same pass as the background's
+    interpolation; SumThreshold along time runs all window passes in one sweep
+    down the dumps (no transpose), along frequency on cache-resident tiles of
+    dumps; buffers are reused between iterations.  Compiled with ``nogil``: dask
+    threads flag planes in parallel.
 
     Parameters
     ----------
@@ -211,34 +223,24 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     if n == 0 or m == 0:
         return det
     lev0, rowbad, colbad = _levels((n, m), flagged, bad)
-    lev0t = np.empty((m, n), np.uint8)
-    kernels.transpose(lev0, lev0t)
     base_ex = flagged | bad
-    exclude = base_ex.copy()
+    prev = np.zeros((n, m), np.bool_)        # detections steering the next fit
     work = {}
     r = np.empty((n, m), np.float32)
-    rt = np.empty((m, n), np.float32)
-    lev_t = np.empty_like(lev0)
-    lev_f = np.empty_like(lev0t)
     np_t = _npass(max_window_time)
     np_f = _npass(max_window_freq)
+    bt, bf = float(background_time), float(background_freq)
     for factor in threshold_factors(iterations, first_factor):
-        bg = masked_smooth(x, exclude, background_time, background_freq, work=work)
-        kernels.residual(x, bg, lev0, r)
-        sigma = robust_sigma(r, exclude)
+        coarse_residual(x, base_ex, prev, lev0, bt, bf, r, work)
+        sigma = robust_sigma2(r, base_ex, prev)
         if not np.isfinite(sigma):
             return np.zeros((n, m), np.bool_)
         c1 = float(chi1) * factor * sigma
-        # M = 1 is the same along both axes: do it once
-        np.copyto(lev_t, lev0)
-        kernels.st_pass_one(r, lev_t, c1)
-        kernels.transpose(r, rt)
-        kernels.transpose(lev_t, lev_f)
-        _run_axis0(r, lev_t, rowbad, colbad, c1, float(rho), np_t, 2)
-        _run_axis0(rt, lev_f, colbad, rowbad, c1, float(rho), np_f, 2)
-        kernels.detections(lev_t, lev_f, det)
-        np.logical_or(base_ex, det, out=exclude)
-    return det
+        det.fill(False)
+        _st_time(r, lev0, rowbad, colbad, c1, float(rho), np_t, det, False)
+        _st_freq(r, lev0, rowbad, colbad, c1, float(rho), np_f, det, True)
+        det, prev = prev, det
+    return prev
 
 
 def sumthreshold_halo(settings):
@@ -248,15 +250,21 @@ def sumthreshold_halo(settings):
     within the time reach of SumThreshold, R_st = sum over windows of (M - 1)
     (a window M holding t reaches M - 1 dumps away, and the flags it takes in
     come from smaller windows), and the residual at a dump depends on the
-    previous iteration's detections within the background kernel's reach R_b
-    (the sum of the box half-widths, :func:`rfisieve.background.box_reach`).
-    So ``halo = iterations * (R_st + R_b)``; with it, every sample at least
-    ``halo`` dumps from a chunk end gets the same result as on the whole plane,
-    apart from the global noise estimate, which differs by its sampling error
-    (about 0.3 %; it only moves samples whose window means lie that close to the
-    threshold).  Windows skip invalid samples, so invalid dumps inside the halo
-    lengthen the reach by their number.  For the defaults (iterations 3, windows
-    to 32, background_time 15): 3 * (57 + 43) = 300 dumps.
+    previous iteration's detections within the background's reach R_b
+    (:func:`rfisieve.background.coarse_reach`: cells, box cascade on the cells,
+    interpolation).  So ``halo = iterations * (R_st + R_b)``, rounded up to a
+    multiple of the background's time cell c_t
+    (:func:`rfisieve.background.cell_size`): the coarse background sums cells
+    of c_t dumps counted from the first dump of the plane it is given, so a
+    chunk that starts at a multiple of c_t dumps (chunk lengths a multiple of
+    c_t) has, with this halo, the same cells as the whole plane.  With it,
+    every sample at least ``halo`` dumps from a chunk end gets the same result
+    as on the whole plane, apart from the global noise estimate, which differs
+    by its sampling error (about 0.3 %; it only moves samples whose window means
+    lie that close to the threshold).  Windows skip invalid samples, so invalid
+    dumps inside the halo lengthen the reach by their number.  For the defaults
+    (iterations 3, windows to 32, background_time 15, c_t = 8): 3 * (57 + 44) =
+    303, rounded up to 304 dumps.
 
     Parameters
     ----------
@@ -273,6 +281,9 @@ def sumthreshold_halo(settings):
     if not s.get("enabled", True):
         return 0
     it = max(1, int(s.get("iterations", 3)))
+    bt = float(s.get("background_time", 15.0))
     r_st = sum(M - 1 for M in window_sizes(s.get("max_window_time", 32)))
-    r_b = box_reach(s.get("background_time", 15.0))
-    return int(it * (r_st + r_b))
+    r_b = coarse_reach(bt)
+    ct = cell_size(bt)
+    halo = it * (r_st + r_b)
+    return int(-(-halo // ct) * ct)
