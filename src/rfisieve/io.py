@@ -217,8 +217,15 @@ class Scan:
     def shape(self):
         return (self.ntime, self.nchan, self.nprod)
 
-    def _read(self, ds, start, stop):
-        sel = tuple(slice(start, stop) if ax == "time" else slice(None) for ax in self._axes)
+    def _read(self, ds, start, stop, prod=None):
+        def axis_sel(ax):
+            if ax == "time":
+                return slice(start, stop)
+            if ax == "product" and prod is not None:
+                return slice(prod, prod + 1)
+            return slice(None)
+
+        sel = tuple(axis_sel(ax) for ax in self._axes)
         try:
             block = ds[sel]
         except (OSError, ValueError, RuntimeError) as err:
@@ -234,20 +241,21 @@ class Scan:
             block = np.transpose(block, order)
         return block
 
-    def read(self, start, stop, what=("data", "flags", "s2")):
+    def read(self, start, stop, what=("data", "flags", "s2"), prod=None):
         """Read dumps ``start:stop``: a dict of arrays in (time, chan, prod) order.
 
         Keys are those of ``what`` that the file has: ``data`` (as stored), ``flags``
-        (bool) and ``s2`` (float32).
+        (bool) and ``s2`` (float32).  ``prod`` selects one product (the product axis
+        is then of length 1).
         """
         start, stop = max(0, int(start)), min(self.ntime, int(stop))
         out = {}
         if "data" in what:
-            out["data"] = self._read(self._data, start, stop)
+            out["data"] = self._read(self._data, start, stop, prod)
         if "flags" in what and self._flags is not None:
-            out["flags"] = self._read(self._flags, start, stop) != 0
+            out["flags"] = self._read(self._flags, start, stop, prod) != 0
         if "s2" in what and self._s2 is not None:
-            out["s2"] = self._read(self._s2, start, stop).astype(np.float32, copy=False)
+            out["s2"] = self._read(self._s2, start, stop, prod).astype(np.float32, copy=False)
         return out
 
     def close(self):

@@ -1,0 +1,497 @@
+"""The ``rfisieve`` command: one entry point, one subcommand per job.
+
+Subcommands written here: ``run`` (the whole workflow through Snakemake), ``inspect``,
+``thresholds`` and the stage commands the workflow rules call (``plan``, ``detect``,
+``merge``).  Other modules add theirs through ``register_cli(subparsers)``; they are
+imported only when the parser is built, and a module that is missing or broken is
+left out rather than breaking the others.  Heavy libraries (numpy, h5py, dask) are
+imported inside the commands so that ``rfisieve --help`` stays fast.
+"""
+
+import argparse
+import importlib
+import json
+import os
+import subprocess
+import sys
+import time
+
+from rfisieve import __version__
+from rfisieve.errors import ConfigError, RfisieveError
+
+#: Modules that add their own subcommands with ``register_cli(subparsers)``.
+PLUGIN_MODULES = ("rfisieve.simulate", "rfisieve.occupancy", "rfisieve.review",
+                  "rfisieve.score", "rfisieve.tune")
+
+DESCRIPTION = """\
+Flag radio-frequency interference (RFI) in time-frequency scan files (HDF5 dynamic
+spectra of auto- and cross-correlation products), one mask file per scan, and
+summarise per-channel occupancy for the morning review.
+
+Most users need `rfisieve run` (flag a whole observing run through the Snakemake
+workflow), `rfisieve inspect` (what is in a scan file) and `rfisieve thresholds`
+(spectral-kurtosis thresholds for an accumulation length). The stage commands
+plan / detect / merge are what the workflow rules call, one scan at a time.
+"""
+
+
+class _Formatter(argparse.HelpFormatter):
+    """Wrapped help that shows a default only where there is one worth showing."""
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if (action.option_strings and "%(default)" not in text and "default:" not in text
+                and action.default not in (None, False, [], argparse.SUPPRESS)):
+            text += " (default: %(default)s)"
+        return text
+
+
+class _TopFormatter(argparse.RawDescriptionHelpFormatter, _Formatter):
+    pass
+
+
+# -- shared options ------------------------------------------------------------
+def _add_run_options(p):
+    g = p.add_argument_group("run settings (defaults: rfisieve.settings.RUN_DEFAULTS)")
+    g.add_argument("--run-config", metavar="FILE",
+                   help="run config YAML (keys as in config/config.yaml); default: built-in defaults")
+    g.add_argument("--set", dest="sets", action="append", default=[], metavar="KEY=VALUE",
+                   help="override one run-config key, value in YAML; dotted keys reach into "
+                        "layout, e.g. --set chunk_dumps=512 --set layout.data=/vis (repeatable)")
+
+
+def _add_parallel_options(p):
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="dask workers for the chunks of this scan (overrides the run config)")
+    p.add_argument("--scheduler", metavar="S",
+                   help="threads | processes | synchronous | tcp://host:port of a dask.distributed "
+                        "scheduler (overrides the run config)")
+
+
+def _run_settings(args):
+    from rfisieve import config
+
+    overrides = config.parse_set(args.sets)
+    for key in ("workers", "scheduler"):
+        value = getattr(args, key, None)
+        if value is not None:
+            overrides[key] = value
+    return config.load_run_config(args.run_config, overrides)
+
+
+def _band_settings(args, scan_path, run):
+    """Band settings from --band-config, or the scan's band in the run's bands_dir."""
+    from rfisieve import config, io
+
+    band = io.scan_band(scan_path, run.get("layout"))
+    if args.band_config:
+        return config.load_band_file(args.band_config, band)
+    return config.load_band(run["bands_dir"], band)
+
+
+def _add_stage(sub, name, func, help, description):
+    """A stage subcommand: SCAN, --band-config and the run-settings options."""
+    p = sub.add_parser(name, formatter_class=_Formatter, help=help, description=description)
+    p.add_argument("scan", metavar="SCAN", help="scan file (HDF5)")
+    p.add_argument("--band-config", metavar="FILE",
+                   help="band config YAML of the scan's band (default: <bands_dir>/<band>.yaml "
+                        "from the run settings)")
+    _add_run_options(p)
+    p.set_defaults(func=func)
+    return p
+
+
+class _Progress:
+    """Progress lines on stderr: at most about every 10 %% (and always the last)."""
+
+    def __init__(self, label):
+        self.label = label
+        self.last = -1
+        self.t0 = time.monotonic()
+
+    def __call__(self, done, total):
+        step = int(10 * done / max(total, 1))
+        if step > self.last or done == total:
+            self.last = step
+            dt = time.monotonic() - self.t0
+            print(f"{self.label}: {done}/{total} chunks, {dt:.1f} s", file=sys.stderr, flush=True)
+
+
+# -- stage commands ------------------------------------------------------------
+def cmd_plan(args):
+    from rfisieve import engine, io
+
+    run = _run_settings(args)
+    band, _ = _band_settings(args, args.scan, run)
+    plan = engine.plan_scan(args.scan, band, run)
+    text = json.dumps(plan, indent=1) + "\n"
+    if args.out in (None, "-"):
+        sys.stdout.write(text)
+        return 0
+    with io.atomic_output(args.out) as tmp:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(text)
+    return 0
+
+
+def _read_plan(path):
+    if not path:
+        return None
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return json.load(fh)
+    except (OSError, ValueError) as err:
+        raise RfisieveError(f"{path}: cannot read the plan ({err}); rerun `rfisieve plan`") from None
+
+
+def cmd_detect(args):
+    from rfisieve import engine
+
+    run = _run_settings(args)
+    band, _ = _band_settings(args, args.scan, run)
+    plan = _read_plan(args.plan)
+    engine.detect(args.scan, args.out, args.detector, band, run, plan=plan,
+                  progress=_Progress(f"detect {args.detector} {os.path.basename(args.scan)}"))
+    return 0
+
+
+def cmd_merge(args):
+    from rfisieve import engine
+
+    run = _run_settings(args)
+    band, source = _band_settings(args, args.scan, run)
+    engine.merge(args.scan, args.partial, args.out, band, run, band_source=source,
+                 progress=_Progress(f"merge {os.path.basename(args.scan)}"))
+    return 0
+
+
+# -- inspect -------------------------------------------------------------------
+def _utc(t):
+    import datetime
+
+    return datetime.datetime.fromtimestamp(float(t), datetime.timezone.utc).isoformat(
+        timespec="seconds").replace("+00:00", "Z")
+
+
+def _upstream_fraction(scan, step=1024):
+    if not scan.has_flags:
+        return None
+    flagged = 0
+    for start in range(0, scan.ntime, step):
+        flagged += int(scan.read(start, start + step, what=("flags",))["flags"].sum())
+    return flagged / (scan.ntime * scan.nchan * scan.nprod)
+
+
+def _products_text(names, limit=6):
+    if not names:
+        return "none"
+    shown = ", ".join(names[:limit])
+    return f"{len(names)} ({shown}{', ...' if len(names) > limit else ''})"
+
+
+def inspect_scan(path, layout=None):
+    """Summary of one scan file as a dict of printable values (see ``rfisieve inspect``)."""
+    from rfisieve import io
+
+    with io.open_scan(path, layout) as scan:
+        autos = [p for p, a in zip(scan.products, scan.autos) if a]
+        crosses = [p for p, a in zip(scan.products, scan.autos) if not a]
+        f0, f1 = float(scan.freq.min()), float(scan.freq.max())
+        frac = _upstream_fraction(scan)
+        dtype = scan._data.dtype if hasattr(scan, "_data") else "?"
+        return {
+            "file": str(path),
+            "shape (time, chan, prod)": f"{scan.ntime} x {scan.nchan} x {scan.nprod}",
+            "dtype": f"{dtype} ({'complex visibilities, amplitude used' if scan.is_complex else 'real power'})",
+            "band": scan.band,
+            "auto products": _products_text(autos),
+            "cross products": _products_text(crosses),
+            "time span (UTC)": f"{_utc(scan.time.min())} to {_utc(scan.time.max())} "
+                               f"({float(scan.time.max() - scan.time.min()) / 60:.1f} min)",
+            "integration time": f"{scan.integration_time:g} s per dump",
+            "frequency range": f"{f0 / 1e6:.4f} to {f1 / 1e6:.4f} MHz (channel centres)",
+            "channel width": f"{scan.channel_width / 1e3:g} kHz",
+            "accumulations": f"{scan.accumulations} raw spectra per dump (presum N = {scan.presum}, d = {scan.d:g})",
+            "upstream flags": "none (no /flags dataset)" if frac is None else f"{100 * frac:.3f} % flagged",
+            "/s2 (sum of squared powers)": "present: SK per dump" if scan.has_s2 else "absent: SK over blocks of dumps",
+        }
+
+
+def cmd_inspect(args):
+    run = _run_settings(args)
+    status = 0
+    for i, path in enumerate(args.scans):
+        try:
+            info = inspect_scan(path, run.get("layout"))
+        except RfisieveError as err:
+            print(f"rfisieve: error: {err}", file=sys.stderr)
+            status = 2
+            continue
+        if args.json:
+            print(json.dumps(info))
+            continue
+        if i:
+            print()
+        width = max(len(k) for k in info)
+        for key, value in info.items():
+            print(f"{key:<{width}}  {value}")
+    return status
+
+
+# -- thresholds ------------------------------------------------------------------
+def cmd_thresholds(args):
+    from rfisieve import sk
+
+    try:
+        if args.pfa is not None:
+            lower, upper = sk.sk_thresholds(args.m, n=args.n, d=args.d, pfa=args.pfa, method=args.method)
+            what = f"PFA {args.pfa:g} per tail"
+        else:
+            lower, upper = sk.sk_thresholds_sigma(args.m, n=args.n, d=args.d, sigma=args.sigma,
+                                                  method=args.method)
+            what = f"{args.sigma:g} sigma"
+    except ValueError as err:
+        raise RfisieveError(f"thresholds: {err}") from None
+    if args.quiet:
+        print(f"{lower:.6f} {upper:.6f}")
+    else:
+        print(f"M = {args.m}, N = {args.n}, d = {args.d:g}, {what}, method {args.method}")
+        print(f"lower {lower:.6f}")
+        print(f"upper {upper:.6f}")
+    return 0
+
+
+# -- run ------------------------------------------------------------------------
+def _resolve_profile(root, profile):
+    if profile is None:
+        profile = "local"
+    candidate = os.path.join(root, "workflow", "profiles", profile)
+    if os.sep not in profile and os.path.isdir(candidate):
+        return candidate
+    if os.path.isdir(profile):
+        return os.path.abspath(profile)
+    have = ", ".join(sorted(os.listdir(os.path.join(root, "workflow", "profiles"))))
+    raise ConfigError(profile, f"no such profile directory; shipped profiles: {have}")
+
+
+def snakemake_command(args, root):
+    """``(command, outdir)``: the ``snakemake`` command line that ``rfisieve run`` starts from ``root``."""
+    from rfisieve import config
+
+    config_file = os.path.abspath(args.config_file) if args.config_file else os.path.join(
+        root, "config", "config.yaml")
+    overrides = config.parse_set(args.sets)
+    for key in ("bands_dir", "previous_run"):  # paths given here are relative to the current directory
+        if isinstance(overrides.get(key), str):
+            overrides[key] = os.path.abspath(os.path.expanduser(overrides[key]))
+    if args.inputs:
+        overrides["inputs"] = [os.path.abspath(os.path.expanduser(p)) for p in args.inputs]
+    if args.outdir:
+        overrides["outdir"] = os.path.abspath(args.outdir)
+    run = config.load_run_config(config_file, overrides)
+    # Checked here so that a glob with no match is one line, before Snakemake starts;
+    # Snakemake runs in ``root``, so relative inputs of a config file are relative to it.
+    # Corrupt scans and bands without a config are found here too, in the same way.
+    from rfisieve import io
+
+    inputs = run["inputs"] if isinstance(run["inputs"], list) else [run["inputs"]]
+    paths = config.expand_inputs([os.path.join(root, os.path.expanduser(p)) for p in inputs],
+                                 source="--inputs" if args.inputs else config_file)
+    for band in sorted({io.scan_band(p, run["layout"]) for p in paths}):
+        config.load_band(os.path.join(root, run["bands_dir"]), band)
+    cmd = [sys.executable, "-m", "snakemake", "--snakefile", os.path.join(root, "Snakefile"),
+           "--directory", root, "--configfile", config_file,
+           "--workflow-profile", _resolve_profile(root, args.profile),
+           "--rerun-incomplete", "--cores", str(args.cores)]
+    if args.dry_run:
+        cmd.append("--dry-run")
+    elif not args.verbose:
+        cmd += ["--quiet", "rules", "host"]  # progress lines ("12 of 40 steps (30%) done") and errors
+    # Extra arguments (options or target files) go before --config, which takes the rest.
+    cmd += list(args.snakemake_args or [])
+    if overrides:  # Snakemake reads these values as YAML; an empty value is null
+        cmd += ["--config"] + [f"{k}={'' if v is None else json.dumps(v)}" for k, v in sorted(overrides.items())]
+    return cmd, os.path.join(root, run["outdir"])
+
+
+def cmd_run(args):
+    from rfisieve import config
+
+    root = config.repo_root()
+    if root is None:
+        raise RfisieveError("rfisieve run needs the repository checkout (its Snakefile and workflow/); "
+                            "install with `pip install -e <checkout>`")
+    cmd, outdir = snakemake_command(args, str(root))
+    if args.print_command:
+        print(" ".join(_quote(c) for c in cmd))
+        return 0
+    print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
+    t0 = time.monotonic()
+    proc = subprocess.Popen(cmd, cwd=str(root))
+    try:
+        rc = proc.wait()
+    except KeyboardInterrupt:  # Snakemake got the Ctrl-C too: let it mark unfinished jobs
+        print("rfisieve run: interrupted; waiting for snakemake to stop its jobs", file=sys.stderr)
+        rc = proc.wait()
+        raise RfisieveError("interrupted; run the same command again to finish the run") from None
+    if rc != 0:
+        raise RfisieveError(f"the workflow stopped (snakemake exit status {rc}); read the failing job's "
+                            "log under <outdir>/logs, fix it and rerun: finished scans are kept")
+    print(f"rfisieve run: done in {time.monotonic() - t0:.0f} s", file=sys.stderr)
+    if not args.dry_run:
+        for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
+                          ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
+                          ("logs", "logs/<stage>/<scan>.log")):
+            print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
+    return 0
+
+
+def _quote(s):
+    import shlex
+
+    return shlex.quote(s)
+
+
+# -- parser ---------------------------------------------------------------------
+OWN_COMMANDS = ("run", "inspect", "thresholds", "plan", "detect", "merge")
+
+
+def build_parser(plugins=True):
+    """The argparse tree; ``plugins=False`` leaves out the other modules' subcommands."""
+    parser = argparse.ArgumentParser(prog="rfisieve", description=DESCRIPTION, formatter_class=_TopFormatter)
+    parser.add_argument("--version", action="version", version=f"rfisieve {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
+
+    p = sub.add_parser(
+        "run", formatter_class=_Formatter,
+        help="flag a whole observing run through the Snakemake workflow (resumes where it stopped)",
+        description="Run the workflow from the repository root: for every scan, plan its chunks, "
+                    "run the spectral-kurtosis and SumThreshold detectors, merge them into "
+                    "<outdir>/flags/<scan>.h5, count occupancy, and write the review page "
+                    "<outdir>/report/index.html. An interrupted run continues where it stopped; "
+                    "editing one band's config re-flags only that band's scans. Arguments after "
+                    "`--` go to snakemake unchanged.")
+    p.add_argument("--inputs", nargs="+", metavar="GLOB",
+                   help="scan files or glob patterns (quote them), relative to the current directory; "
+                        "default: inputs of the run config")
+    p.add_argument("--outdir", metavar="DIR", help="output directory; default: outdir of the run config")
+    p.add_argument("--cores", type=int, default=os.cpu_count() or 1, metavar="N",
+                   help="CPU cores Snakemake may use in total (each detect job takes `workers` of them)")
+    p.add_argument("--config-file", metavar="FILE",
+                   help="run config YAML; default: config/config.yaml of the repository")
+    p.add_argument("--set", dest="sets", action="append", default=[], metavar="KEY=VALUE",
+                   help="override one run-config key (YAML value), e.g. --set workers=4 (repeatable)")
+    p.add_argument("--profile", metavar="P",
+                   help="Snakemake profile: a name under workflow/profiles (local, cluster) or a directory; "
+                        "default: local")
+    p.add_argument("--dry-run", "-n", action="store_true", help="show the jobs that would run, run nothing")
+    p.add_argument("--verbose", "-v", action="store_true",
+                   help="show every job Snakemake starts, not only the progress lines")
+    p.add_argument("--print-command", action="store_true", help="print the snakemake command and stop")
+    p.add_argument("snakemake_args", nargs=argparse.REMAINDER, metavar="-- SNAKEMAKE_ARGS",
+                   help="extra arguments passed to snakemake, after --")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser(
+        "inspect", formatter_class=_Formatter,
+        help="show what a scan file holds: shape, band, products, time span, frequencies",
+        description="Open scan files read-only and print shape and dtype, band, auto and cross "
+                    "products, time span (UTC, ISO 8601), frequency range (MHz), channel width, "
+                    "accumulations per dump, the upstream-flagged fraction and whether /s2 "
+                    "(per-dump sum of squared powers, used by per-dump spectral kurtosis) is there.")
+    p.add_argument("scans", nargs="+", metavar="SCAN", help="scan file(s) (HDF5)")
+    p.add_argument("--json", action="store_true", help="one JSON object per scan instead of a table")
+    _add_run_options(p)
+    p.set_defaults(func=cmd_inspect)
+
+    p = sub.add_parser(
+        "thresholds", formatter_class=_Formatter,
+        help="spectral-kurtosis thresholds for M accumulations (and N, d) at a PFA or sigma",
+        description="Print the lower and upper spectral-kurtosis (SK) thresholds of the generalized "
+                    "estimator (Nita & Gary 2010) for M accumulations of N-presummed powers with "
+                    "shape d, each tail holding the false-alarm probability PFA, or the probability "
+                    "a Gaussian holds beyond S sigma. Example: --m 300 --n 10 --sigma 3 gives about "
+                    "0.77 and 1.28 (Nita & Gary 2010, PASP 122, 595, Table 1).")
+    p.add_argument("--m", type=int, required=True, metavar="M", help="accumulations M per SK estimate")
+    p.add_argument("--n", type=int, default=1, metavar="N", help="raw powers presummed into each accumulation")
+    p.add_argument("--d", type=float, default=1.0, metavar="D",
+                   help="shape of the power distribution: 1 for complex voltages, 0.5 for real")
+    g = p.add_mutually_exclusive_group(required=True)
+    g.add_argument("--pfa", type=float, metavar="P", help="false-alarm probability per tail, e.g. 0.0013499")
+    g.add_argument("--sigma", type=float, metavar="S", help="tail probability of a Gaussian beyond S sigma")
+    p.add_argument("--method", default="auto", metavar="NAME",
+                   help="threshold method: auto, exact, pearson (types IV/VI), pearson3 (type III)")
+    p.add_argument("--quiet", "-q", action="store_true", help="print only 'lower upper'")
+    p.set_defaults(func=cmd_thresholds)
+
+    p = _add_stage(
+        sub, "plan", cmd_plan,
+        help="stage 1 (workflow): check a scan and cut it into chunks of dumps -> plan JSON",
+        description="Open a scan read-only, check it against its band config, and write the "
+                    "processing plan: shape, products (autos/crosses), chunks of dumps with the "
+                    "halo each detector needs, and whether /s2 is there.")
+    p.add_argument("--out", "-o", metavar="PLAN.json", help="plan file to write; default: print it")
+
+    p = _add_stage(
+        sub, "detect", cmd_detect,
+        help="stage 2 (workflow): run one detector over a scan -> partial mask",
+        description="Run one detector over every chunk of a scan on dask workers and write a "
+                    "partial mask (HDF5 /flags, uint8: that detector's bit plus the invalid bit). "
+                    "sk = spectral kurtosis on auto products (bit 3, value 8); sumthreshold = "
+                    "SumThreshold on background-subtracted amplitudes (bit 4, value 16).")
+    p.add_argument("--detector", required=True, choices=("sk", "sumthreshold"), help="detector to run")
+    p.add_argument("--out", "-o", required=True, metavar="PARTIAL.h5", help="partial mask file to write")
+    p.add_argument("--plan", metavar="PLAN.json", help="plan from `rfisieve plan`; default: plan afresh")
+    _add_parallel_options(p)
+
+    p = _add_stage(
+        sub, "merge", cmd_merge,
+        help="stage 3 (workflow): combine partial masks -> the scan's final mask file",
+        description="Combine the detectors' partial masks with the upstream flags (bit 0), invalid "
+                    "samples (bit 1) and the band's static ranges (bit 2), grow them with the "
+                    "scale-invariant rank operator (bit 5) and cut channels/dumps above the "
+                    "occupancy limits (bit 6); write <outdir>/flags/<scan>.h5 with /flags, /time, "
+                    "/freq, /products and the band config used.")
+    p.add_argument("--partial", nargs="+", required=True, metavar="PARTIAL.h5",
+                   help="partial masks from `rfisieve detect`")
+    p.add_argument("--out", "-o", required=True, metavar="MASK.h5", help="mask file to write")
+
+    for name in PLUGIN_MODULES if plugins else ():
+        try:
+            module = importlib.import_module(name)
+        except ImportError as err:
+            if getattr(err, "name", None) == name:
+                continue  # not written yet
+            print(f"rfisieve: warning: {name} cannot be imported ({err}); its commands are missing",
+                  file=sys.stderr)
+            continue
+        register = getattr(module, "register_cli", None)
+        if register is not None:
+            register(sub)
+    return parser
+
+
+def main(argv=None):
+    """Entry point of the ``rfisieve`` command; returns the exit status."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    # The other modules import numpy and friends: load them only when they may be needed.
+    parser = build_parser(plugins=not (argv and argv[0] in OWN_COMMANDS))
+    args = parser.parse_args(argv)
+    if getattr(args, "func", None) is None:
+        parser.print_help()
+        return 2
+    if getattr(args, "snakemake_args", None) and args.snakemake_args[0] == "--":
+        args.snakemake_args = args.snakemake_args[1:]
+    try:
+        rc = args.func(args)
+    except RfisieveError as err:
+        print(f"rfisieve: error: {' '.join(str(err).split())}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("rfisieve: interrupted", file=sys.stderr)
+        return 130
+    return int(rc or 0)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,32 @@
+"""Shared fixtures: the repository root and small scan files."""
+
+import hashlib
+import os
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+BIN = Path(sys.executable).parent
+
+
+@pytest.fixture(scope="session")
+def repo_root():
+    return ROOT
+
+
+def sha256(path):
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def tool_env():
+    """Environment for subprocesses: this interpreter's bin/ first on PATH."""
+    env = dict(os.environ)
+    env["PATH"] = f"{BIN}{os.pathsep}{env.get('PATH', '')}"
+    env.setdefault("PYTHONHASHSEED", "0")
+    return env
