@@ -261,7 +261,7 @@ def print_scene(res, band):
     for k in sorted(a["recall_by_kind"]):
         row(f"  {k}", a["recall_by_kind"][k], b["recall_by_kind"][k])
     n = a["recall_by_inr"]
-    print(f"   samples per bin: " + ", ".join(f"{bn} {n[bn]['samples']}" for bn in INR_BINS))
+    print("   samples per bin: " + ", ".join(f"{bn} {n[bn]['samples']}" for bn in INR_BINS))
     return a, b
 
 
@@ -288,7 +288,7 @@ def main(argv=None):
     run = run_settings({"workers": args.workers, "scheduler": "threads", "chunk_dumps": 1024})
     print(f"rfisieve flagging-quality benchmark: {len(args.scenes)} scene(s) of {args.ntime} dumps x "
           f"{args.nchan} channels x 2 auto products, accumulations {args.accumulations}, seed {args.seed}")
-    print(f"band settings: defaults" + (f" with overrides {json.dumps(parse_set(args.sets))}" if args.sets else ""))
+    print("band settings: defaults" + (f" with overrides {json.dumps(parse_set(args.sets))}" if args.sets else ""))
     pooled = {"ours": None, "clip": None}
     results = []
     kinds_all = {}
@@ -304,7 +304,7 @@ def main(argv=None):
             if not name.startswith("noise_") and name != "noise":
                 pooled["ours"] = add_counts(pooled["ours"], res["ours"])
                 pooled["clip"] = add_counts(pooled["clip"], res["clip"])
-    print(f"\n== all scenes with interference, pooled (each scene's clip at its own matched sigma)")
+    print("\n== all scenes with interference, pooled (each scene's clip at its own matched sigma)")
     pa, pb = finish(pooled["ours"], kinds_all), finish(pooled["clip"], kinds_all)
     bins = INR_BINS[1:] + (">=1",)
     print(f"   {'recall ours / clip':<22}" + "".join(f" {bn:>15}" for bn in bins))

@@ -9,12 +9,10 @@ dask.distributed scheduler gives the same mask as threads.
 
 import os
 import re
-import shutil
 import signal
 import subprocess
 import sys
 import time
-from pathlib import Path
 
 import h5py
 import numpy as np

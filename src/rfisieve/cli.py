@@ -198,7 +198,7 @@ def inspect_scan(path, layout=None):
         crosses = [p for p, a in zip(scan.products, scan.autos) if not a]
         f0, f1 = float(scan.freq.min()), float(scan.freq.max())
         frac = _upstream_fraction(scan)
-        dtype = scan._data.dtype if hasattr(scan, "_data") else "?"
+        dtype = scan.dtype
         return {
             "file": str(path),
             "shape (time, chan, prod)": f"{scan.ntime} x {scan.nchan} x {scan.nprod}",

@@ -142,6 +142,7 @@ class Scan:
         self.nchan = int(shape["freq"])
         self.nprod = int(shape.get("product", 1))
         self.is_complex = data.dtype.kind == "c"
+        self.dtype = data.dtype
         if self.ntime < 1 or self.nchan < 1 or self.nprod < 1:
             raise ScanError(path, f"{data.name} is empty (shape {data.shape})")
 
@@ -279,6 +280,12 @@ def open_scan(path, layout=None):
     return Scan(path, layout)
 
 
+def _umask():
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_output(path, suffix=None):
     """Yield a temporary path beside ``path``; rename it to ``path`` when the block ends.
@@ -292,6 +299,7 @@ def atomic_output(path, suffix=None):
     tmp = Path(tmp)
     try:
         yield tmp
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; outputs are for everyone
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):

@@ -24,13 +24,12 @@ import datetime as _dt
 import html
 import json
 import os
-import sys
 
 import numpy as np
 
 from . import occupancy as occ
 from .emitters import load_emitters, match_emitters
-from .errors import ConfigError, RfisieveError, ScanError
+from .errors import ConfigError, ScanError
 from .occupancy import BIT_NAMES, fraction
 
 RANGE_FRACTION = 0.2   # a channel belongs to an occupied range at this flagged fraction
@@ -497,23 +496,16 @@ def summary_text(outdir, top=TOP_RANGES, threshold=None):
 # ---------------------------------------------------------------------------
 
 def _cmd_review(args):
-    try:
-        index = build_review(args.outdir, args.scans, previous=args.previous,
-                             emitters_path=args.emitters, bands_dir=args.bands_dir,
-                             threshold=args.range_fraction)
-    except RfisieveError as err:
-        print(f"rfisieve review: {err}", file=sys.stderr)
-        return 2
+    # RfisieveError reaches rfisieve.cli.main, which prints it as one line, exit 2
+    index = build_review(args.outdir, args.scans, previous=args.previous,
+                         emitters_path=args.emitters, bands_dir=args.bands_dir,
+                         threshold=args.range_fraction)
     print(index)
     return 0
 
 
 def _cmd_summary(args):
-    try:
-        print(summary_text(args.outdir, top=args.top, threshold=args.range_fraction))
-    except RfisieveError as err:
-        print(f"rfisieve summary: {err}", file=sys.stderr)
-        return 2
+    print(summary_text(args.outdir, top=args.top, threshold=args.range_fraction))
     return 0
 
 

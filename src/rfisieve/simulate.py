@@ -43,8 +43,6 @@ carry no interference in ``/inr`` and ``/kind`` (their data is gone); upstream f
 import argparse
 import json
 import math
-import os
-import tempfile
 import textwrap
 import time as _time
 from pathlib import Path
@@ -53,6 +51,7 @@ import h5py
 import numpy as np
 
 from rfisieve import __version__
+from rfisieve.io import atomic_output
 from rfisieve.simulate_draw import Group, draw_dumps, draw_raw
 from rfisieve.simulate_emitters import (KIND_CODES, KIND_NAMES, KINDS_JSON,
                                         default_emitters, render)
@@ -75,20 +74,8 @@ _STREAMS = ("model", "emitters", "noise", "interference", "dropped", "flags")
 def _write_atomic(path, fill):
     """Write an HDF5 file through ``fill(h5file)`` under a temporary name in the same
     directory, then rename it to ``path``; nothing is left behind on failure."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    os.close(fd)
-    try:
-        with h5py.File(tmp, "w") as f:
-            fill(f)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
+    with atomic_output(path) as tmp, h5py.File(tmp, "w") as f:
+        fill(f)
 
 
 def _strings(values):
