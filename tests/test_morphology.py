@@ -7,16 +7,20 @@ from hypothesis.extra import numpy as hnp
 from rfisieve.morphology import sir_grow, sir_halo, sir_operator
 
 
-def brute_sir(f, eta):
+def brute_sir(f, eta, reach=None):
     """Straight from the definition (Offringa, van de Gronde & Roerdink 2012,
     A&A 539, A95; DESIGN.md 3): y is flagged when it lies in some interval
-    [Y1, Y2) holding at least (1 - eta)(Y2 - Y1) flagged samples."""
+    [Y1, Y2) holding at least (1 - eta)(Y2 - Y1) flagged samples.  With
+    ``reach`` = R (the project's bounded-reach variant, rfisieve.morphology) only
+    intervals with Y1 >= y - R and Y2 <= y + 1 + R count."""
     n = len(f)
     out = np.zeros(n, bool)
     c = np.concatenate([[0], np.cumsum(f)])
     for y in range(n):
-        for y1 in range(0, y + 1):
-            for y2 in range(y + 1, n + 1):
+        lo = 0 if reach is None else max(0, y - reach)
+        hi = n if reach is None else min(n, y + 1 + reach)
+        for y1 in range(lo, y + 1):
+            for y2 in range(y + 1, hi + 1):
                 if c[y2] - c[y1] >= (1 - eta) * (y2 - y1) - 1e-9:
                     out[y] = True
                     break
@@ -70,3 +74,122 @@ def test_sir_halo_rule():
     a = sir_operator(f[:200 + h], 0.2)[:200]
     b = sir_operator(f[200 - h:], 0.2)[h:]
     assert (np.concatenate([a, b]) == whole).mean() > 0.99
+
+
+# ---------------------------------------------------------------- bounded reach
+@hsettings(max_examples=300, deadline=None)
+@given(hnp.arrays(np.bool_, st.integers(1, 40), elements=st.booleans()),
+       st.sampled_from([0.0, 0.1, 0.2, 0.25, 0.3, 0.5, 0.7, 1.0]),
+       st.integers(0, 45))
+def test_sir_reach_equals_definition(f, eta, reach):
+    np.testing.assert_array_equal(sir_operator(f, eta, max_reach=reach), brute_sir(f, eta, reach))
+
+
+@hsettings(max_examples=100, deadline=None)
+@given(hnp.arrays(np.bool_, st.integers(30, 60), elements=st.booleans()),
+       st.sampled_from([0.1, 0.2, 0.3]), st.sampled_from([1, 2, 4, 8]))
+def test_sir_reach_sparse_runs(f, eta, reach):
+    # sparser masks (runs and gaps, as from an intermittent emitter) exercise the
+    # deques differently from dense random bits
+    g = f.copy()
+    g[::3] = False
+    g[1::5] = False
+    np.testing.assert_array_equal(sir_operator(g, eta, max_reach=reach), brute_sir(g, eta, reach))
+
+
+def test_sir_reach_limits():
+    rng = np.random.default_rng(2)
+    f = rng.random(200) < 0.4
+    # R = 0: only [y, y + 1): the input (from the definition)
+    np.testing.assert_array_equal(sir_operator(f, 0.3, max_reach=0), f)
+    # R >= the line length: the published operator
+    np.testing.assert_array_equal(sir_operator(f, 0.3, max_reach=200), sir_operator(f, 0.3))
+    np.testing.assert_array_equal(sir_operator(f, 0.3, max_reach=10 ** 6), sir_operator(f, 0.3))
+    # the compiled kernel itself (the wrapper short-cuts R >= length to the published one)
+    from rfisieve import kernels_morph
+    out = np.empty((1, 200), bool)
+    kernels_morph.sir_rows_reach(f[None, :], 0.3, 250, out)
+    np.testing.assert_array_equal(out[0], sir_operator(f, 0.3))
+    # the reach only removes intervals: subset of the published operator, monotone in R
+    prev = f
+    for r in (1, 2, 4, 8, 16, 32):
+        g = sir_operator(f, 0.3, max_reach=r)
+        assert not (prev & ~g).any()
+        assert not (g & ~sir_operator(f, 0.3)).any()
+        prev = g
+
+
+def test_sir_reach_growth_beside_long_run():
+    # Isolated run of L flagged samples: the published operator grows
+    # floor(eta L / (1 - eta)) per side; with reach R the growth per side is
+    # min(that, floor(eta (R + 1))): for a clean sample g beyond the edge the best
+    # interval is [y - R, y + 1), R + 1 - g flagged of R + 1 (derived from the
+    # definition).  E.g. a 1600-dump pulse train at eta = 0.2 gains 400 dumps per
+    # side unrestricted, 3 with R = 16.
+    f = np.zeros(4000, bool)
+    f[1000:2600] = True
+    g = sir_operator(f, 0.2)
+    assert g[600:3000].all() and not g[599] and not g[3000]
+    g = sir_operator(f, 0.2, max_reach=16)
+    assert g[997:2603].all() and not g[996] and not g[2603]
+    for eta in (0.1, 0.2, 0.3):
+        for r in (2, 4, 8, 16, 32):
+            for n in (3, 10, 100):
+                f = np.zeros(400, bool)
+                f[100:100 + n] = True
+                k = min(int(np.floor(eta * n / (1 - eta) + 1e-9)), int(np.floor(eta * (r + 1) + 1e-9)))
+                g = sir_operator(f, eta, max_reach=r)
+                assert g[100 - k:100 + n + k].all()
+                assert not g[:100 - k].any() and not g[100 + n + k:].any()
+
+
+def test_sir_reach_fills_gaps():
+    # an intermittent emitter: runs of 6 on, 2 off; with eta = 0.25 an interval
+    # covering a 2-gap and 3 flagged on each side has 6 of 8 flagged (from the
+    # definition), so R = 4 fills every gap, as the published operator does
+    f = np.zeros(100, bool)
+    for s in range(20, 76, 8):
+        f[s:s + 6] = True
+    g = sir_operator(f, 0.25, max_reach=4)
+    assert g[20:74].all()
+    assert not (g[20:74] ^ sir_operator(f, 0.25)[20:74]).any()
+
+
+def test_sir_reach_2d_and_grow():
+    rng = np.random.default_rng(3)
+    m = rng.random((30, 20)) < 0.3
+    eta = 0.3
+    t = sir_operator(m, eta, axis=0, max_reach=3)
+    f = sir_operator(m, eta, axis=1, max_reach=2)
+    for c in range(m.shape[1]):
+        np.testing.assert_array_equal(t[:, c], brute_sir(m[:, c], eta, 3))
+    for r in range(m.shape[0]):
+        np.testing.assert_array_equal(f[r], brute_sir(m[r], eta, 2))
+    np.testing.assert_array_equal(sir_grow(m, eta, reach_time=3, reach_freq=2), t | f)
+    np.testing.assert_array_equal(sir_grow(m, eta, freq=False, reach_time=3), t)
+    np.testing.assert_array_equal(sir_grow(m, eta, time=False, reach_freq=2), f)
+
+
+def test_sir_reach_halo_exact():
+    # with reach R every deciding interval lies in [y - R, y + 1 + R): a halo of
+    # R dumps is exact for every mask; sir_halo returns R + 1 (one of margin)
+    assert sir_halo(0.2, reach=16) == 17
+    assert sir_halo(0.0, reach=16) == 0
+    assert sir_halo(1.0, reach=4) == 5
+    rng = np.random.default_rng(4)
+    for eta in (0.1, 0.2, 0.5, 1.0):
+        for r in (1, 4, 16):
+            f = rng.random(500) < 0.5
+            whole = sir_operator(f, eta, max_reach=r)
+            for h in (r, sir_halo(eta, reach=r)):
+                a = sir_operator(f[:250 + h], eta, max_reach=r)[:250]
+                b = sir_operator(f[250 - h:], eta, max_reach=r)[h:]
+                np.testing.assert_array_equal(np.concatenate([a, b]), whole)
+
+
+def test_sir_reach_rejects_bad_reach():
+    import pytest
+    with pytest.raises(ValueError):
+        sir_operator(np.zeros(5, bool), 0.2, max_reach=-1)
+    with pytest.raises(ValueError):
+        sir_operator(np.zeros(5, bool), 0.2, max_reach=2.5)

@@ -38,10 +38,18 @@ from .masks import amplitude, bit_attrs, channel_cut, dump_cut, invalid_mask, st
 
 DETECTORS = ("sk", "sumthreshold")
 
-#: Halo (dumps) of the merge stage's SIR growth along time.  A flagged run of L
-#: dumps grows by at most eta L / (1 - eta) on each side (from the SIR definition), so
-#: 256 dumps make growth exact for runs up to 1024 dumps at eta = 0.2.
+#: Halo (dumps) of the merge stage's SIR growth along time when its reach is
+#: unbounded (``growth.reach_time: null``).  A flagged run of L dumps grows by at most
+#: eta L / (1 - eta) on each side (from the SIR definition), so 256 dumps make growth
+#: exact for runs up to 1024 dumps at eta = 0.2.  With a bounded reach R the halo is
+#: R + 1 dumps and the growth is exact (see :func:`merge_halo`).
 SIR_HALO = 256
+
+#: Noise pre-pass: the SumThreshold noise sigma of each product is estimated once per
+#: scan on windows of NOISE_WINDOW dumps (at most NOISE_WINDOWS of them, spread evenly
+#: over the scan) and used by every chunk, so thresholds do not depend on chunking.
+NOISE_WINDOW = 512
+NOISE_WINDOWS = 8
 
 #: Bin edges of the SK histogram kept for the review's kurtosis diagnostic.
 SK_EDGES = np.linspace(0.0, 3.0, 301)
@@ -72,6 +80,17 @@ def detect_halo(band, scan):
     return max(halo, _kurtosis_halo(band, scan))
 
 
+def merge_halo(band):
+    """Halo in dumps on each side of a chunk for the merge stage's SIR growth."""
+    from .morphology import sir_halo
+
+    g = band["growth"]
+    if not (g["enabled"] and g["eta"] > 0 and g["time"]):
+        return 0
+    reach = g.get("reach_time")
+    return SIR_HALO if reach is None else int(sir_halo(g["eta"], reach=int(reach)))
+
+
 def _chunks(ntime, chunk_dumps):
     return [[s, min(s + chunk_dumps, ntime)] for s in range(0, ntime, chunk_dumps)]
 
@@ -99,7 +118,7 @@ def plan_scan(scan_path, band, run):
             "nprod": scan.nprod,
             "chunk_dumps": int(run["chunk_dumps"]),
             "halo": detect_halo(band, scan),
-            "sir_halo": SIR_HALO,
+            "sir_halo": merge_halo(band),
             "chunks": _chunks(scan.ntime, int(run["chunk_dumps"])),
             "has_s2": bool(scan.has_s2),
             "products": list(scan.products),
@@ -150,9 +169,46 @@ def _meta(scan, band):
     return meta
 
 
-def _read_chunk(path, layout, start, stop, what):
+def _read_chunk(path, layout, start, stop, what, prod=None):
     with open_scan(path, layout) as scan:
-        return scan.read(start, stop, what)
+        return scan.read(start, stop, what, prod=prod)
+
+
+def noise_windows(ntime):
+    """The [start, stop) dump windows of the noise pre-pass (independent of chunking)."""
+    if ntime <= NOISE_WINDOW * NOISE_WINDOWS:
+        n = max(1, ntime // NOISE_WINDOW)
+        edges = np.linspace(0, ntime, n + 1).round().astype(int)
+        return [[int(a), int(b)] for a, b in zip(edges[:-1], edges[1:])]
+    starts = np.linspace(0, ntime - NOISE_WINDOW, NOISE_WINDOWS).round().astype(int)
+    return [[int(a), int(a) + NOISE_WINDOW] for a in starts]
+
+
+def _noise_task(block, band, meta, p, t0):
+    from .sumthreshold import sumthreshold_noise
+
+    auto = meta["autos"][p]
+    values = amplitude(block["data"][:, :, 0], auto)
+    _, excluded = _prior(block, 0, meta, values, auto)
+    if excluded.all():
+        return np.nan
+    return float(sumthreshold_noise(values, invalid=excluded, t0=t0, **_sumthreshold_settings(band)))
+
+
+def _noise_prepass(scan, band, meta, sched):
+    """Per-product SumThreshold noise sigma: the median over the pre-pass windows."""
+    what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
+    tasks = []
+    for p in range(scan.nprod):
+        for a, b in noise_windows(scan.ntime):
+            block = dask.delayed(_read_chunk, pure=True)(meta["path"], meta["layout"], a, b, what, p)
+            tasks.append(dask.delayed(_noise_task)(block, band, meta, p, a))
+    values = np.array(dask.compute(*tasks, **sched.kwargs), dtype=np.float64).reshape(scan.nprod, -1)
+    sigmas = []
+    for p, row in enumerate(values):
+        row = row[np.isfinite(row)]
+        sigmas.append(float(np.median(row)) if row.size else 1.0)
+    return sigmas
 
 
 def _prior(block, p, meta, values, auto):
@@ -176,7 +232,8 @@ def _detect_product(block, p, detector, band, meta, t0):
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
         from .sumthreshold import sumthreshold_flagger
 
-        hit = sumthreshold_flagger(values, invalid=excluded, **_sumthreshold_settings(band))
+        hit = sumthreshold_flagger(values, invalid=excluded, sigma=meta["sigma"][p], t0=t0,
+                                   **_sumthreshold_settings(band))
         out[hit & ~excluded] |= bits.SUMTHRESHOLD
     elif detector == "sk" and auto and "sk" in meta:
         hit, hist = _kurtosis(block, p, values, excluded, meta["sk"], t0)
@@ -279,8 +336,13 @@ def _windows(chunks, size):
 
 
 def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
-    """Run detectors over every chunk; ``sink(start, stop, masks_by_detector, hists)``."""
+    """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
+
+    Returns the scan metadata used, including the pre-pass noise sigmas (``sigma``).
+    """
     meta = _meta(scan, band)
+    if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
+        meta["sigma"] = _noise_prepass(scan, band, meta, sched)
     halo = plan["halo"] if plan else detect_halo(band, scan)
     chunks = plan["chunks"] if plan else _chunks(scan.ntime, int(run["chunk_dumps"]))
     what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
@@ -302,6 +364,7 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
             done += 1
             if progress:
                 progress(done, len(chunks))
+    return meta
 
 
 def _create_mask_file(f, scan, chunk_dumps):
@@ -333,6 +396,11 @@ def _write_sk_diag(f, hist, meta, band):
             g.attrs[key] = sk[key]
         g.attrs["lower"], g.attrs["upper"] = float(lower), float(upper)
     g.attrs["enabled"] = bool(sk)
+
+
+def _write_noise(f, meta):
+    if "sigma" in meta:
+        f.attrs["noise_sigma"] = np.asarray(meta["sigma"], dtype=np.float64)
 
 
 def _fail_clean(fn):
@@ -370,7 +438,8 @@ def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
                 flags[c0:c1] = out
                 hist[...] += h
 
-            _run_detection(scan, [detector], band, run, plan, sched, progress, sink)
+            used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink)
+            _write_noise(f, used)
             if detector == "sk":
                 _write_sk_diag(f, hist, meta, band)
 
@@ -385,7 +454,7 @@ def _merge_chunk(det_block, extra, band, core):
         detected = (det_block & bits.DETECTED) != 0
         for p in range(det_block.shape[2]):
             grown = sir_grow(detected[:, :, p], g["eta"], time=g["time"], freq=g["freq"],
-                             **_reach_kwargs(g))
+                             reach_time=g.get("reach_time"), reach_freq=g.get("reach_freq"))
             out[:, :, p][grown & ~detected[:, :, p]] |= bits.MORPHOLOGY
     out = out[core[0]:core[1]]
     limit = band["cuts"]["dump_limit"]
@@ -394,16 +463,6 @@ def _merge_chunk(det_block, extra, band, core):
             cut = dump_cut(out[:, :, p] != 0, limit)
             out[cut, :, p] |= bits.OCCUPANCY
     return out
-
-
-def _reach_kwargs(g):
-    """Bounded-reach keywords for sir_grow, when the morphology module supports them."""
-    import inspect
-
-    from .morphology import sir_grow
-
-    params = inspect.signature(sir_grow).parameters
-    return {k: g.get(k) for k in ("reach_time", "reach_freq") if k in params}
 
 
 def _input_and_static(scan, a, b, meta):
@@ -455,8 +514,9 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 flags = f["flags"]
                 counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
                 chunks = _chunks(scan.ntime, chunk_dumps)
+                halo = merge_halo(band)
                 for i, (c0, c1) in enumerate(chunks):
-                    a, b = max(0, c0 - SIR_HALO), min(scan.ntime, c1 + SIR_HALO)
+                    a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
                     det = np.zeros((b - a, scan.nchan, scan.nprod), dtype=np.uint8)
                     for h in parts:
                         det |= h["flags"][a:b]
@@ -467,6 +527,9 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                         progress(i + 1, len(chunks))
                 _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
                 _copy_sk_diag(parts, f, meta, band)
+                for h in parts:
+                    if "noise_sigma" in h.attrs:
+                        f.attrs["noise_sigma"] = h.attrs["noise_sigma"]
         finally:
             for h in parts:
                 h.close()
@@ -528,8 +591,9 @@ def _detect_both(scan_path, partials, band, run, progress):
                     if det == "sk":
                         hist[...] += h
 
-            _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink)
+            used = _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink)
             _write_sk_diag(files[0], hist, meta, band)
+            _write_noise(files[1], used)
         finally:
             for f in files:
                 f.close()

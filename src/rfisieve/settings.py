@@ -32,7 +32,7 @@ BAND_DEFAULTS = {
     },
     "growth": {
         "enabled": True,
-        "eta": 0.2,              # SIR aggressiveness eta (0 = no growth, 1 = flag all)
+        "eta": 0.1,              # SIR aggressiveness eta (0 = no growth, 1 = flag all)
         "time": True,            # grow along time
         "freq": True,            # grow along frequency
         "reach_time": 16,        # longest reach of a growth interval to either side, dumps
