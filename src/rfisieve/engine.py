@@ -460,8 +460,10 @@ def _merge_chunk(det_block, extra, band, core):
     limit = band["cuts"]["dump_limit"]
     if limit < 1:
         for p in range(out.shape[2]):
-            cut = dump_cut(out[:, :, p] != 0, limit)
-            out[cut, :, p] |= bits.OCCUPANCY
+            plane = out[:, :, p]
+            cut = dump_cut(plane != 0, limit)
+            # the occupancy bit marks what the cut adds: the samples no other cause flagged
+            plane[cut[:, None] & (plane == 0)] = bits.OCCUPANCY
     return out
 
 
@@ -481,7 +483,7 @@ def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
     for c0 in range(0, ntime, chunk_dumps):
         c1 = min(ntime, c0 + chunk_dumps)
         block = flags[c0:c1]
-        block[:, cut] |= bits.OCCUPANCY
+        block[cut[None, :, :] & (block == 0)] = bits.OCCUPANCY  # only what the cut adds
         flags[c0:c1] = block
 
 
