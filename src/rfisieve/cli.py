@@ -490,6 +490,10 @@ def main(argv=None):
     except KeyboardInterrupt:
         print("rfisieve: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into head(1) and the like
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     return int(rc or 0)
 
 
