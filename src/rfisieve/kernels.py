@@ -15,11 +15,16 @@ Loop shapes:
   one sweep down the dumps with a ring buffer of levels, so the plane is read
   about once per direction instead of once per window;
 * along axis 1 (channel, the contiguous axis): SumThreshold gathers tiles of
-  dumps transposed into a cache-resident buffer (:func:`st_freq`), the
-  background's frequency fit works row by row on a few moment rows;
+  dumps transposed (8 x 8 blocks) into a cache-resident buffer and runs all
+  window passes on it in one sweep as along time (:func:`st_freq`,
+  :func:`_tile_sweep`); the frequency pass takes the time pass's detections
+  as flagged;
 * the background is fitted on a coarse grid of cells (:func:`cell_moments`,
-  :func:`box_axis0_f64`, :func:`coarse_solve`) and interpolated back fused with
-  the residual (:func:`coarse_interp`).
+  :func:`box_axis0_f64`, :func:`coarse_solve`, the last on blocks of coarse
+  rows transposed so the frequency boxes vectorise) and interpolated back
+  fused with the residual (:func:`coarse_interp`);
+* avoid 1-D row views inside hot loops over short rows: each view costs
+  atomic reference counting (index 2-D arrays directly).
 """
 
 import numpy as np
@@ -267,15 +272,17 @@ def sir_rows(mask, eta, out):
 @njit(**_opts)
 def _box_rows5(p, tmp, m, r):
     """Zero-padded box sums of half-width r along the 5 rows of p (float64
-    (5, m)), using tmp (5, m + 1) for the prefix sums."""
-    for k in range(5):
-        tmp[k, 0] = 0.0
+    (5, m)), using tmp (5, m + 1) for the prefix sums P: out[c] = P[min(c + r +
+    1, m)] - P[max(c - r, 0)], with the head, body and tail of the row in
+    separate loops (the body vectorises)."""
     u0 = 0.0
     u1 = 0.0
     u2 = 0.0
     u3 = 0.0
     u4 = 0.0
-    for c in range(m):
+    for k in range(5):
+        tmp[k, 0] = 0.0
+    for c in range(m):                  # five interleaved chains
         u0 += p[0, c]
         u1 += p[1, c]
         u2 += p[2, c]
@@ -286,11 +293,15 @@ def _box_rows5(p, tmp, m, r):
         tmp[2, c + 1] = u2
         tmp[3, c + 1] = u3
         tmp[4, c + 1] = u4
+    lo_end = min(r, m)                  # c < r: lower end clipped at 0
+    hi_start = max(m - r - 1, lo_end)   # c >= m - r - 1: upper end clipped at m
     for k in range(5):
-        for c in range(m):
-            hi = min(c + r + 1, m)
-            lo = max(c - r, 0)
-            p[k, c] = tmp[k, hi] - tmp[k, lo]
+        for c in range(lo_end):
+            p[k, c] = tmp[k, min(c + r + 1, m)]
+        for c in range(lo_end, hi_start):
+            p[k, c] = tmp[k, c + r + 1] - tmp[k, c - r]
+        for c in range(hi_start, m):
+            p[k, c] = tmp[k, m] - tmp[k, max(c - r, 0)]
 
 
 @njit(**_opts)
@@ -352,62 +363,91 @@ def tile_width(L):
 
 
 @njit(**_opts)
-def _tile_passes(v, lv, L, chi1, rho, npass, s, last):
-    """SumThreshold passes q = 1 .. npass along axis 0 of the tile v[:L, :B]
-    (float32 values, lines are the B columns), levels lv[:L, :B] (0 free, 1
-    input-flagged, q + 1 detected by pass q) updated in place.  The lines hold no
-    invalid sample.  ``s`` float64 and ``last`` int64 scratch of length B.
-    Branch-free inner loops over the B lines (vectorised)."""
+def _pipe_lags(npass):
+    """Lags of the one-sweep SumThreshold (:func:`st_time_pipe`): lag[q] dumps
+    pass q trails the load; returns (lag, final lag, ring length R, a power of
+    two)."""
+    lag = np.zeros(npass + 2, np.int64)
+    for q in range(3, npass + 1):
+        lag[q] = lag[q - 1] + (1 << (q - 2)) - 1
+    Mmax = 1 << max(npass - 1, 0)
+    final_lag = (lag[npass] if npass >= 2 else 0) + Mmax - 1
+    R = 1
+    while R < final_lag + 2:
+        R *= 2
+    return lag, final_lag, R
+
+
+@njit(**_opts)
+def _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last):
+    """All SumThreshold passes q = 1 .. npass along axis 0 of the tile v[:L, :B]
+    (lines are the B columns, no invalid sample) in one sweep, as
+    :func:`st_time_pipe` does on a plane; the final levels are written back to
+    lv[:L] (0 free, 1 input-flagged, q + 1 detected by pass q).  ring (R, B)
+    uint8, s (npass + 1, B) float64, last (npass + 1, B) int64 are scratch.
+    Plain 2-D indexing (no row views: their reference counting would cost more
+    than the B-wide loops)."""
     B = v.shape[1]
-    if npass >= 1:                 # M = 1: a free sample above chi_1
-        two = np.uint8(2)
-        for k in range(L):
-            for b in range(B):
-                a = lv[k, b]
-                lv[k, b] = two if (a == 0 and np.float64(v[k, b]) > chi1) else a
-    for q in range(2, npass + 1):
-        M = 1 << (q - 1)
-        thr = chi1 / rho ** (q - 1)
-        lim = M * thr
-        qm = np.uint8(q - 1)
-        newlev = np.uint8(q + 1)
-        zero = np.uint8(0)
-        one = np.uint8(1)
+    RM = ring.shape[0] - 1
+    two = np.uint8(2)
+    one = np.uint8(1)
+    zero = np.uint8(0)
+    c1 = np.float64(chi1)
+    thrs = np.empty(npass + 1)
+    for q in range(1, npass + 1):
+        thrs[q] = chi1 / rho ** (q - 1)
+    for q in range(npass + 1):
         for b in range(B):
-            s[b] = 0.0
-            last[b] = -1
-        # head: k < M (no sample leaves the window); a - 1 < q  <=>  1 <= a <= q
-        for k in range(min(M, L)):
+            s[q, b] = 0.0
+            last[q, b] = -1
+    for K in range(L + final_lag):
+        if K < L:
+            kr = K & RM
             for b in range(B):
-                a = lv[k, b]
-                s[b] += thr if np.uint8(a - one) <= qm else np.float64(v[k, b])
-        if L >= M:
-            k = M - 1
+                a = lv[K, b]
+                if npass >= 1:
+                    a = two if (a == zero and np.float64(v[K, b]) > c1) else a
+                ring[kr, b] = a
+        for q in range(2, npass + 1):
+            kq = K - lag[q]
+            M = 1 << (q - 1)
+            if kq < 0 or kq >= L + M - 1:
+                continue
+            thr = thrs[q]
+            lim = M * thr
+            qm = np.uint8(q - 1)
+            newlev = np.uint8(q + 1)
+            j = kq - M + 1
+            if kq < L and kq >= M:
+                ka = kq & RM
+                ko = (kq - M) & RM
+                kx = kq - M
+                for b in range(B):
+                    a = ring[ka, b]
+                    u = thr if np.uint8(a - one) <= qm else np.float64(v[kq, b])
+                    a2 = ring[ko, b]
+                    o = thr if np.uint8(a2 - one) <= qm else np.float64(v[kx, b])
+                    sv = s[q, b] + u - o
+                    s[q, b] = sv
+                    last[q, b] = kq if sv > lim else last[q, b]
+            elif kq < L:
+                ka = kq & RM
+                for b in range(B):
+                    a = ring[ka, b]
+                    s[q, b] += thr if np.uint8(a - one) <= qm else np.float64(v[kq, b])
+                if j >= 0:
+                    for b in range(B):
+                        last[q, b] = kq if s[q, b] > lim else last[q, b]
+            if j >= 0:
+                kj = j & RM
+                for b in range(B):
+                    a = ring[kj, b]
+                    ring[kj, b] = newlev if (last[q, b] >= j and a == zero) else a
+        r = K - final_lag
+        if r >= 0:
+            kr = r & RM
             for b in range(B):
-                last[b] = k if s[b] > lim else last[b]
-            for b in range(B):
-                a = lv[0, b]
-                lv[0, b] = newlev if (last[b] >= 0 and a == zero) else a
-        # body: window [k - M + 1, k]
-        for k in range(M, L):
-            ko = k - M
-            j = ko + 1
-            for b in range(B):
-                a = lv[k, b]
-                u = thr if np.uint8(a - one) <= qm else np.float64(v[k, b])
-                a2 = lv[ko, b]
-                o = thr if np.uint8(a2 - one) <= qm else np.float64(v[ko, b])
-                sv = s[b] + u - o
-                s[b] = sv
-                last[b] = k if sv > lim else last[b]
-            for b in range(B):
-                a = lv[j, b]
-                lv[j, b] = newlev if (last[b] >= j and a == zero) else a
-        # tail: the last M - 1 samples, no new window
-        for j in range(max(L - M + 1, 1), L):
-            for b in range(B):
-                a = lv[j, b]
-                lv[j, b] = newlev if (last[b] >= j and a == zero) else a
+                lv[r, b] = ring[kr, b]
 
 
 @njit(**_opts)
@@ -438,56 +478,133 @@ def _line_scalar(x, lev0, line, along_time, chi1, rho, npass, v, lvl, idx):
 
 
 @njit(**_opts)
+def _gather_one(x, lev0, det, cols, ident, merge, t, b, k, v, lv):
+    c = k if ident else cols[k]
+    a = lev0[t, c]
+    a = np.uint8(LEV_INPUT) if (merge and det[t, c] and a == 0) else a
+    lv[k, b] = a
+    v[k, b] = np.float32(0.0) if a == LEV_INVALID else x[t, c]
+
+
+@njit(**_opts)
+def _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv):
+    """Tile gather: v[k, b], lv[k, b] from dump t0 + b, channel cols[k] (k when
+    ident); 8 x 8 blocks (in L1) where whole, zero lanes b >= nb."""
+    B = v.shape[1]
+    L8 = L // 8 * 8
+    n8 = nb // 8 * 8
+    one = np.uint8(LEV_INPUT)
+    zero = np.uint8(0)
+    inv = np.uint8(LEV_INVALID)
+    fz = np.float32(0.0)
+    du = det.view(np.uint8)
+    mflag = np.uint8(1 if merge else 0)
+    if ident:
+        for k0 in range(0, L8, 8):
+            for b0 in range(0, n8, 8):
+                for i in range(8):
+                    t = t0 + b0 + i
+                    for jj in range(8):
+                        c = k0 + jj
+                        a = lev0[t, c]
+                        a = a | (du[t, c] & mflag & np.uint8(a == zero))   # branch-free
+                        lv[c, b0 + i] = a
+                        v[c, b0 + i] = fz if a == inv else x[t, c]
+        for k in range(L8, L):
+            for b in range(n8):
+                _gather_one(x, lev0, det, cols, ident, merge, t0 + b, b, k, v, lv)
+    else:
+        for b in range(n8):
+            for k in range(L):
+                _gather_one(x, lev0, det, cols, ident, merge, t0 + b, b, k, v, lv)
+    for b in range(n8, nb):
+        for k in range(L):
+            _gather_one(x, lev0, det, cols, ident, merge, t0 + b, b, k, v, lv)
+    for k in range(L):
+        for b in range(nb, B):
+            lv[k, b] = zero
+            v[k, b] = fz
+
+
+@njit(**_opts)
+def _scatter(lv, det, cols, ident, merge, partial, t0, nb, L):
+    """Tile scatter: the detections of lv (levels 2 .. 254) into det (|= when
+    merge), skipping dumps with ``partial`` True; 8 x 8 blocks where whole."""
+    inv = np.uint8(LEV_INVALID)
+    two = np.uint8(2)
+    L8 = L // 8 * 8 if ident else 0
+    n8 = nb // 8 * 8
+    du = det.view(np.uint8)
+    keep = np.uint8(1 if merge else 0)
+    for b0 in range(0, n8, 8):
+        for k0 in range(0, L8, 8):
+            for i in range(8):
+                t = t0 + b0 + i
+                if partial[t]:
+                    continue
+                for jj in range(8):
+                    c = k0 + jj
+                    a = lv[c, b0 + i]
+                    d = np.uint8(a >= two) & np.uint8(a != inv)
+                    du[t, c] = (du[t, c] & keep) | d
+    for b in range(nb):
+        t = t0 + b
+        if partial[t]:
+            continue
+        for k in range(L8 if b < n8 else 0, L):
+            c = k if ident else cols[k]
+            a = lv[k, b]
+            d = a >= two and a != inv
+            det[t, c] = (det[t, c] | d) if merge else d
+
+
+@njit(**_opts)
 def st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge, B):
     """SumThreshold passes 1 .. npass along frequency (axis 1), conventions of
-    :func:`st_time_pipe`: tiles of B dumps are gathered (transposed) over the
-    channel list ``cols`` (channels not wholly invalid) into a cache-resident
-    buffer and run by :func:`_tile_passes`; dumps with ``partial`` True are
-    redone line by line."""
+    :func:`st_time_pipe`, on the levels lev0 joined by det when ``merge`` (the
+    samples det marks enter as flagged: the time pass's detections), then
+    det |= d; when not ``merge``, det = d.  Tiles of B dumps are gathered
+    (transposed, in 8 x 8 blocks) over the channel list ``cols`` (channels not
+    wholly invalid) into a cache-resident buffer and run in one sweep by
+    :func:`_tile_sweep`; dumps with ``partial`` True are redone line by line."""
     n, m = x.shape
     L = cols.shape[0]
+    ident = L == m
     v = np.empty((max(L, 1), B), np.float32)
     lv = np.empty((max(L, 1), B), np.uint8)
-    s = np.empty(B)
-    last = np.empty(B, np.int64)
+    lag, final_lag, R = _pipe_lags(npass)
+    ring = np.zeros((R, B), np.uint8)
+    s = np.empty((npass + 1, B))
+    last = np.empty((npass + 1, B), np.int64)
+    one = np.uint8(LEV_INPUT)
+    zero = np.uint8(0)
+    inv = np.uint8(LEV_INVALID)
     for t0 in range(0, n, B):
         nb = min(B, n - t0)
-        for b in range(nb):
-            for k in range(L):
-                c = cols[k]
-                a = lev0[t0 + b, c]
-                lv[k, b] = a
-                v[k, b] = np.float32(0.0) if a == LEV_INVALID else x[t0 + b, c]
-        for b in range(nb, B):
-            for k in range(L):
-                lv[k, b] = 0
-                v[k, b] = np.float32(0.0)
-        _tile_passes(v, lv, L, chi1, rho, npass, s, last)
-        for b in range(nb):
-            t = t0 + b
-            if partial[t]:
-                continue                # redone line by line below
-            for k in range(L):
-                a = lv[k, b]
-                d = a >= 2 and a != LEV_INVALID
-                c = cols[k]
-                if merge:
-                    det[t, c] |= d
-                else:
-                    det[t, c] = d
+        _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv)
+        _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last)
+        _scatter(lv, det, cols, ident, merge, partial, t0, nb, L)
     vv = np.empty(m, np.float32)
     ll = np.empty(m, np.uint8)
     idx = np.empty(m, np.int64)
     for t in range(n):
         if partial[t]:
-            nv = _line_scalar(x, lev0, t, False, chi1, rho, npass, vv, ll, idx)
+            nv = 0
+            for c in range(m):
+                a = lev0[t, c]
+                if a != inv:
+                    vv[nv] = x[t, c]
+                    ll[nv] = one if (merge and det[t, c] and a == zero) else a
+                    idx[nv] = c
+                    nv += 1
+            st_line(vv, ll, nv, chi1, rho, npass, 1)
             if not merge:
                 for c in range(m):
-                    if lev0[t, c] == LEV_INVALID:
+                    if lev0[t, c] == inv:
                         det[t, c] = False
             for k in range(nv):
                 a = ll[k]
-                d = a >= 2 and a != LEV_INVALID
+                d = a >= 2 and a != inv
                 if merge:
                     det[t, idx[k]] |= d
                 else:
@@ -496,24 +613,30 @@ def st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge, B):
 
 # ------------------------------------------------------------- coarse background fit
 @njit(**_opts)
-def cell_moments(x, ex1, ex2, ct, cf, mom):
+def cell_moments(x, ex1, ex2, ct, cf, off, mom):
     """Sums over cells of ct dumps x cf channels of the samples excluded by
     neither ex1 nor ex2: mom[i, :, j] = (sum w, sum w c, sum w c**2, sum w x,
     sum w x c), c the absolute channel index (float64).  mom is overwritten.
+    Cell row i holds dumps i ct - off .. (i + 1) ct - off - 1 (clipped to the
+    plane; 0 <= off < ct aligns the cells to absolute dump numbers).
     Per-channel sums over the ct dumps of a cell row first (vectorised), then
     the channel moments of those column sums."""
     n, m = x.shape
     ntc, _, nfc = mom.shape
-    aw = np.empty(m)
+    aw = np.empty(m, np.float32)        # counts (exact)
     ax = np.empty(m)
+    e1 = ex1.view(np.uint8)
+    e2 = ex2.view(np.uint8)
+    f1 = np.float32(1.0)
+    f0 = np.float32(0.0)
     for i in range(ntc):
         for c in range(m):
-            aw[c] = 0.0
+            aw[c] = f0
             ax[c] = 0.0
-        for t in range(i * ct, min((i + 1) * ct, n)):
+        for t in range(max(i * ct - off, 0), min((i + 1) * ct - off, n)):
             for c in range(m):
-                keep = not (ex1[t, c] or ex2[t, c])
-                aw[c] += 1.0 if keep else 0.0
+                keep = (e1[t, c] | e2[t, c]) == 0     # no short-circuit: vectorises
+                aw[c] += f1 if keep else f0
                 ax[c] += np.float64(x[t, c]) if keep else 0.0
         for j in range(nfc):
             w0 = 0.0
@@ -523,7 +646,7 @@ def cell_moments(x, ex1, ex2, ct, cf, mom):
             z1 = 0.0
             for c in range(j * cf, min((j + 1) * cf, m)):
                 cc = np.float64(c)
-                w = aw[c]
+                w = np.float64(aw[c])
                 z = ax[c]
                 w0 += w
                 w1 += w * cc
@@ -560,47 +683,74 @@ def box_axis0_f64(a, r, out, s):
             out[t, c] = s[c]
 
 
+_SOLVE_ROWS = 8   # coarse rows solved together (5 moments each: 40 lanes)
+
+
 @njit(**_opts)
 def coarse_solve(mom, radii, cf, out):
     """Local straight-line fit along channels on the coarse grid: per coarse row
-    i, box-smooth the 5 moments mom[i] along the cell axis (half-widths
-    ``radii``) and evaluate the weighted least-squares line at the cell centre
-    P_j = j cf + (cf - 1) / 2 (the formula of :func:`freq_local_linear`, order
-    zero where the weights span less than 0.1 channel**2, NaN where none).
-    Returns the NaN count."""
+    i, box-smooth the 5 moments mom[i] along the cell axis (zero-padded running
+    boxes of half-widths ``radii``) and evaluate the weighted least-squares line
+    at the cell centre P_j = j cf + (cf - 1) / 2 (the formula of
+    :func:`freq_local_linear`, order zero where the weights span less than 0.1
+    channel**2, NaN where none).  _SOLVE_ROWS rows at a time are copied
+    transposed (cell, row x moment) so that the running boxes are vectorised
+    over rows and moments.  Returns the NaN count."""
     ntc, _, nfc = mom.shape
-    p = np.empty((5, nfc))
-    tmp = np.empty((5, nfc + 1))
+    W = 5 * _SOLVE_ROWS
+    a = np.empty((nfc, W))
+    b = np.empty((nfc, W))
+    sm = np.empty(W)
     half = 0.5 * (cf - 1)
     bad = 0
-    for i in range(ntc):
-        for k in range(5):
-            for j in range(nfc):
-                p[k, j] = mom[i, k, j]
-        for r in radii:
-            _box_rows5(p, tmp, nfc, r)
+    for i0 in range(0, ntc, _SOLVE_ROWS):
+        ib = min(_SOLVE_ROWS, ntc - i0)
         for j in range(nfc):
-            m0 = p[0, j]
-            if not m0 > 0.0:
-                out[i, j] = np.nan
-                bad += 1
-                continue
-            P = np.float64(j * cf) + half
-            s1 = p[1, j] - P * m0
-            s2 = p[2, j] - 2.0 * P * p[1, j] + P * P * m0
-            x0 = p[3, j]
-            x1 = p[4, j] - P * x0
-            det = m0 * s2 - s1 * s1
-            if det > 0.1 * m0 * m0:
-                out[i, j] = (s2 * x0 - s1 * x1) / det
-            else:
-                out[i, j] = x0 / m0
+            for ii in range(ib):
+                for k in range(5):
+                    a[j, ii * 5 + k] = mom[i0 + ii, k, j]
+        w = ib * 5
+        for r in radii:
+            for q in range(w):
+                sm[q] = 0.0
+            for j in range(min(r, nfc)):
+                for q in range(w):
+                    sm[q] += a[j, q]
+            for j in range(nfc):
+                ad = j + r
+                su = j - r - 1
+                if ad < nfc:
+                    for q in range(w):
+                        sm[q] += a[ad, q]
+                if su >= 0:
+                    for q in range(w):
+                        sm[q] -= a[su, q]
+                for q in range(w):
+                    b[j, q] = sm[q]
+            a, b = b, a
+        for ii in range(ib):
+            i = i0 + ii
+            o = ii * 5
+            for j in range(nfc):        # branch-free
+                m0 = a[j, o]
+                P = np.float64(j * cf) + half
+                s1 = a[j, o + 1] - P * m0
+                s2 = a[j, o + 2] - 2.0 * P * a[j, o + 1] + P * P * m0
+                x0 = a[j, o + 3]
+                x1 = a[j, o + 4] - P * x0
+                det = m0 * s2 - s1 * s1
+                lin = det > 0.1 * m0 * m0
+                num = (s2 * x0 - s1 * x1) if lin else x0
+                den = det if lin else m0
+                out[i, j] = num / den if m0 > 0.0 else np.nan
+            for j in range(nfc):
+                bad += 0 if a[j, o] > 0.0 else 1
     return bad
 
 
 @njit(**_opts)
-def coarse_interp(G, ct, cf, x, lev0, out, resid):
-    """Bilinear interpolation of the coarse grid G (nodes at dump i ct + (ct - 1)/2,
+def coarse_interp(G, ct, cf, off, x, lev0, out, resid):
+    """Bilinear interpolation of the coarse grid G (nodes at dump i ct - off + (ct - 1)/2,
     channel j cf + (cf - 1)/2; held constant beyond the outer nodes along time,
     extrapolated linearly along channels) to the full plane, rounded to float32
     as B: first along channels for every node row (H, float64), then along time
@@ -610,22 +760,29 @@ def coarse_interp(G, ct, cf, x, lev0, out, resid):
     ntc, nfc = G.shape
     H = np.empty((ntc, m))
     hf = 0.5 * (cf - 1)
-    for c in range(m):
-        if nfc == 1:
-            for i in range(ntc):
-                H[i, c] = G[i, 0]
-        else:
+    kk = np.zeros(m, np.int64)
+    ff = np.zeros(m)
+    if nfc > 1:
+        for c in range(m):
             a = (c - hf) / cf
             k = int(np.floor(a))
             k = min(max(k, 0), nfc - 2)
-            f = a - k
-            for i in range(ntc):
-                H[i, c] = G[i, k] + f * (G[i, k + 1] - G[i, k])
+            kk[c] = k
+            ff[c] = a - k
+    for i in range(ntc):                # row by row (contiguous writes)
+        if nfc == 1:
+            for c in range(m):
+                H[i, c] = G[i, 0]
+        else:
+            for c in range(m):
+                k = kk[c]
+                g0 = G[i, k]
+                H[i, c] = g0 + ff[c] * (G[i, k + 1] - g0)
     ht = 0.5 * (ct - 1)
     one = np.float32(1.0)
     zero = np.float32(0.0)
     for t in range(n):
-        a = (t - ht) / ct
+        a = (t + off - ht) / ct
         if ntc == 1 or a <= 0.0:
             i0 = 0
             ft = 0.0
@@ -700,60 +857,61 @@ def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
     one = np.uint8(1)
     zero = np.uint8(0)
     c1 = np.float64(chi1)
+    thrs = np.empty(npass + 1)
+    for q in range(1, npass + 1):
+        thrs[q] = chi1 / rho ** (q - 1)
     for K in range(L + final_lag):
         if K < L:
             t = rows[K]
-            rr = ring[K & RM]
+            kr = K & RM
             for c in range(m):
                 a = lev0[t, c]
                 if npass >= 1:
                     a = two if (a == zero and np.float64(x[t, c]) > c1) else a
-                rr[c] = a
+                ring[kr, c] = a
         for q in range(2, npass + 1):
             kq = K - lag[q]
             M = 1 << (q - 1)
             if kq < 0 or kq >= L + M - 1:
                 continue
-            thr = chi1 / rho ** (q - 1)
+            thr = thrs[q]
             lim = M * thr
             qm = np.uint8(q - 1)
             newlev = np.uint8(q + 1)
-            sq = s[q]
-            lq = last[q]
             j = kq - M + 1
             if kq < L and kq >= M:
-                ra = ring[kq & RM]
-                xa = x[rows[kq]]
-                ro = ring[(kq - M) & RM]
-                xo = x[rows[kq - M]]
+                ka = kq & RM
+                ta = rows[kq]
+                ko = (kq - M) & RM
+                to = rows[kq - M]
                 for c in range(m):
-                    a = ra[c]
-                    u = thr if np.uint8(a - one) <= qm else np.float64(xa[c])
-                    a2 = ro[c]
-                    o = thr if np.uint8(a2 - one) <= qm else np.float64(xo[c])
-                    sv = sq[c] + u - o
-                    sq[c] = sv
-                    lq[c] = kq if sv > lim else lq[c]
+                    a = ring[ka, c]
+                    u = thr if np.uint8(a - one) <= qm else np.float64(x[ta, c])
+                    a2 = ring[ko, c]
+                    o = thr if np.uint8(a2 - one) <= qm else np.float64(x[to, c])
+                    sv = s[q, c] + u - o
+                    s[q, c] = sv
+                    last[q, c] = kq if sv > lim else last[q, c]
             elif kq < L:
-                ra = ring[kq & RM]
-                xa = x[rows[kq]]
+                ka = kq & RM
+                ta = rows[kq]
                 for c in range(m):
-                    a = ra[c]
-                    sq[c] += thr if np.uint8(a - one) <= qm else np.float64(xa[c])
+                    a = ring[ka, c]
+                    s[q, c] += thr if np.uint8(a - one) <= qm else np.float64(x[ta, c])
                 if j >= 0:
                     for c in range(m):
-                        lq[c] = kq if sq[c] > lim else lq[c]
+                        last[q, c] = kq if s[q, c] > lim else last[q, c]
             if j >= 0:
-                rj = ring[j & RM]
+                kj = j & RM
                 for c in range(m):
-                    a = rj[c]
-                    rj[c] = newlev if (lq[c] >= j and a == zero) else a
+                    a = ring[kj, c]
+                    ring[kj, c] = newlev if (last[q, c] >= j and a == zero) else a
         r = K - final_lag
         if r >= 0:
             t = rows[r]
-            rr = ring[r & RM]
+            kr = r & RM
             for c in range(m):
-                a = rr[c]
+                a = ring[kr, c]
                 d = a >= 2 and a != LEV_INVALID and not partial[c]
                 if merge:
                     det[t, c] |= d
@@ -777,3 +935,48 @@ def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
                 else:
                     det[idx[k], c] = d
 
+
+
+
+@njit(**_opts)
+def init_flagger(x, inv, has_inv, flg, has_flg, lev, ex):
+    """Set-up of the flagger in one pass: invalid = x not finite, or ``inv``
+    (when has_inv); lev = 255 where invalid, 1 where flagged (``flg``, when
+    has_flg), 0 elsewhere; ex = invalid or flagged.  Returns the per-row and
+    per-column counts of invalid samples (as :func:`init_levels`)."""
+    n, m = x.shape
+    rowbad = np.zeros(n, np.int64)
+    colbad = np.zeros(m, np.int64)
+    for t in range(n):
+        nb = 0
+        for c in range(m):
+            v = x[t, c]
+            b = not (abs(v) < np.inf)              # NaN or +-Inf
+            if has_inv:
+                b = b | inv[t, c]
+            f = has_flg and flg[t, c]
+            lev[t, c] = np.uint8(LEV_INVALID) if b else (np.uint8(LEV_INPUT) if f else np.uint8(0))
+            ex[t, c] = b | f
+            nb += 1 if b else 0
+            colbad[c] += 1 if b else 0
+        rowbad[t] = nb
+    return rowbad, colbad
+
+
+
+@njit(**_opts)
+def taps_axis0(a, taps, out, lo, hi):
+    """out[t] = sum_k taps[k] a[t - R + k] along axis 0 for rows lo <= t < hi
+    (R = len(taps) // 2; the caller keeps t - R >= 0 and t + R < n): the
+    interior of a box cascade as one pass of its 2 R + 1 taps."""
+    n, m = a.shape
+    R = taps.shape[0] // 2
+    for t in range(lo, hi):
+        w0 = taps[0]
+        for c in range(m):
+            out[t, c] = w0 * a[t - R, c]
+        for k in range(1, taps.shape[0]):
+            w = taps[k]
+            tk = t - R + k
+            for c in range(m):
+                out[t, c] += w * a[tk, c]

@@ -27,7 +27,7 @@ from . import kernels
 from .background import cell_size, coarse_reach, coarse_residual, robust_sigma2
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger",
-           "threshold_factors", "sumthreshold_halo"]
+           "sumthreshold_noise", "threshold_factors", "sumthreshold_halo"]
 
 
 def window_sizes(max_window):
@@ -149,25 +149,36 @@ def threshold_factors(iterations, first_factor):
 
 def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32,
                          max_window_freq=32, iterations=3, first_factor=4.0,
-                         background_time=15.0, background_freq=5.0, invalid=None):
+                         background_time=15.0, background_freq=5.0, invalid=None,
+                         sigma=None, t0=0):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
 
     1. fit a smooth background B (:func:`rfisieve.background.coarse_smooth`, the
        coarse-grid form of the local fit of ``masked_smooth``; scales
-       ``background_time`` dumps and ``background_freq`` channels) with the
-       input-flagged, invalid and so-far detected samples excluded;
+       ``background_time`` dumps and ``background_freq`` channels, cells aligned
+       to absolute dump numbers by ``t0``) with the input-flagged, invalid and
+       so-far detected samples excluded;
     2. form the relative residual r = x / B - 1.  Relative units because the
        bandpass and the gain scale signal and noise alike (radiometer equation:
        sigma_x = B / sqrt(N)), so r has one noise level over the whole plane;
-    3. estimate its noise sigma once for the plane (:func:`robust_sigma`: 1.4826 *
-       MAD over unflagged valid samples, subsampled to 2**18);
-    4. run :func:`sumthreshold` along time (windows up to ``max_window_time``) and
-       along frequency (up to ``max_window_freq``), both on the input mask, with
-       chi_1 = ``chi1`` * f_i * sigma, f_i falling geometrically from
-       ``first_factor`` to 1 (:func:`threshold_factors`); the detections are the
-       union of both directions.
+    3. take its noise sigma: ``sigma`` when given, else estimated once for the
+       plane (:func:`rfisieve.background.robust_sigma`: 1.4826 * MAD over
+       unflagged valid samples, subsampled to 2**18);
+    4. run :func:`sumthreshold` along time (windows up to ``max_window_time``) on
+       the input mask, then along frequency (up to ``max_window_freq``) on the
+       input mask joined by the time pass's detections, with chi_1 = ``chi1`` *
+       f_i * sigma, f_i falling geometrically from ``first_factor`` to 1
+       (:func:`threshold_factors`); the detections are the union of both
+       directions.
+
+    The frequency pass takes the time pass's detections as flagged (they enter
+    its windows at chi_M, the paper's rule for flagged samples): a narrowband
+    line found along time would otherwise enter every frequency window crossing
+    it at its full excess (a 6-sigma line adds 6/32 sigma to the mean of a
+    32-channel window, a sixth of chi_32 at chi1 = 8), and two such lines raise
+    whole dumps of pure noise between them above chi_32.
 
     The detections of iteration i only steer the background fit of iteration
     i + 1; the result is the last iteration's detections.  Where the background
@@ -177,8 +188,8 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     Implementation: the residual is formed in the same pass as the background's
     interpolation; SumThreshold along time runs all window passes in one sweep
     down the dumps (no transpose), along frequency on cache-resident tiles of
-    dumps; buffers are reused between iterations.  Compiled with ``nogil``: dask
-    threads flag planes in parallel.
+    dumps; buffers are reused between iterations.  Compiled with ``nogil`` (the
+    median too): threads flag planes in parallel.
 
     Parameters
     ----------
@@ -187,7 +198,7 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     mask : array_like of bool, optional
         Already flagged samples (input, static, other detectors).
     chi1 : float
-        chi_1 in units of the robust noise sigma of r.
+        chi_1 in units of the noise sigma of r.
     rho : float
         rho: chi_M = chi_1 / rho ** log2(M).
     max_window_time, max_window_freq : int
@@ -201,6 +212,15 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     invalid : array_like of bool, optional
         Samples left out of every sum and of the fit.  Non-finite values are
         always treated as invalid.
+    sigma : float, optional
+        Fixed noise sigma of r used by every iteration (e.g. from
+        :func:`sumthreshold_noise` on a few windows of the scan), so that chunks
+        of a scan are flagged with one threshold; None estimates it per
+        iteration on this plane.
+    t0 : int
+        Absolute dump number of the plane's first row (the chunk start less the
+        halo): aligns the background's time cells to the scan, so a chunk gives
+        the whole scan's result whatever dump it starts at.
 
     Returns
     -------
@@ -210,37 +230,92 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     See Also
     --------
     sumthreshold_halo : halo of dumps needed for chunked processing.
+    sumthreshold_noise : the noise sigma for ``sigma``.
     """
+    return _flag(values, mask, chi1, rho, max_window_time, max_window_freq, iterations,
+                 first_factor, background_time, background_freq, invalid, sigma, t0)[0]
+
+
+def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
+    """Robust noise sigma of the relative residual r = x / B - 1 at the last
+    iteration of :func:`sumthreshold_flagger` on this plane.
+
+    Method: the flagger's iterations are run on ``values`` (background fits with
+    the detections so far excluded, 1.4826 * MAD of r over unflagged valid
+    samples, Hampel 1974, JASA 69, 383); the sigma of the last iteration is
+    returned.  Meant for a pre-pass over a few fixed windows of a scan whose
+    (e.g. median) value is then passed as ``sigma`` to every chunk, so chunks of
+    any size get the same thresholds.
+
+    Parameters
+    ----------
+    values : array_like, shape (ntime, nchan)
+        Power or amplitude x.
+    invalid, mask : array_like of bool, optional
+        As for :func:`sumthreshold_flagger`.
+    t0 : int
+        Absolute dump number of the first row.
+    **settings
+        The flagger's settings (chi1, rho, max_window_time, max_window_freq,
+        iterations, first_factor, background_time, background_freq).
+
+    Returns
+    -------
+    float
+        sigma (NaN when the plane holds no valid sample).
+    """
+    s = dict(settings)
+    s.pop("enabled", None)
+    s.pop("sigma", None)
+    return _flag(values, mask, invalid=invalid, t0=t0, **s)[1]
+
+
+def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_freq=32,
+          iterations=3, first_factor=4.0, background_time=15.0, background_freq=5.0,
+          invalid=None, sigma=None, t0=0):
+    """The flagger; returns (detections, sigma of the last iteration)."""
     x = np.ascontiguousarray(values, dtype=np.float32)
     if x.ndim != 2:
         raise ValueError("values must be a 2-D (time, channel) plane")
     n, m = x.shape
-    bad = ~np.isfinite(x)
-    if invalid is not None:
-        bad |= np.asarray(invalid, dtype=bool)
-    flagged = np.zeros((n, m), np.bool_) if mask is None else np.ascontiguousarray(mask, dtype=np.bool_)
-    det = np.zeros((n, m), np.bool_)
+    dummy = np.zeros((1, 1), np.bool_)
+    inv = dummy if invalid is None else np.ascontiguousarray(invalid, dtype=np.bool_)
+    flagged = dummy if mask is None else np.ascontiguousarray(mask, dtype=np.bool_)
+    for name, a in (("invalid", invalid), ("mask", mask)):
+        if a is not None and np.shape(a) != (n, m):
+            raise ValueError("%s must have the shape of values %r" % (name, (n, m)))
+    det = np.empty((n, m), np.bool_)
     if n == 0 or m == 0:
-        return det
-    lev0, rowbad, colbad = _levels((n, m), flagged, bad)
-    base_ex = flagged | bad
+        return np.zeros((n, m), np.bool_), float("nan")
+    if sigma is not None:
+        sigma = float(sigma)
+        if not sigma > 0 or not np.isfinite(sigma):
+            raise ValueError("sigma must be a positive finite number, not %r" % (sigma,))
+    lev0 = np.empty((n, m), np.uint8)
+    base_ex = np.empty((n, m), np.bool_)     # input-flagged or invalid
+    rowbad, colbad = kernels.init_flagger(x, inv, invalid is not None, flagged, mask is not None,
+                                          lev0, base_ex)
+    some_dump_gone = bool(np.any(rowbad == m))   # the time pass does not write those dumps
     prev = np.zeros((n, m), np.bool_)        # detections steering the next fit
     work = {}
     r = np.empty((n, m), np.float32)
     np_t = _npass(max_window_time)
     np_f = _npass(max_window_freq)
     bt, bf = float(background_time), float(background_freq)
+    sig = float("nan")
     for factor in threshold_factors(iterations, first_factor):
-        coarse_residual(x, base_ex, prev, lev0, bt, bf, r, work)
-        sigma = robust_sigma2(r, base_ex, prev)
-        if not np.isfinite(sigma):
-            return np.zeros((n, m), np.bool_)
-        c1 = float(chi1) * factor * sigma
-        det.fill(False)
+        coarse_residual(x, base_ex, prev, lev0, bt, bf, r, work, int(t0))
+        sig = robust_sigma2(r, base_ex, prev) if sigma is None else sigma
+        if not np.isfinite(sig):
+            return np.zeros((n, m), np.bool_), sig
+        c1 = float(chi1) * factor * sig
+        if some_dump_gone:
+            det.fill(False)
         _st_time(r, lev0, rowbad, colbad, c1, float(rho), np_t, det, False)
+        # frequency pass on lev0 joined by the time detections in det
         _st_freq(r, lev0, rowbad, colbad, c1, float(rho), np_f, det, True)
         det, prev = prev, det
-    return prev
+    return prev, sig
 
 
 def sumthreshold_halo(settings):
@@ -254,14 +329,17 @@ def sumthreshold_halo(settings):
     (:func:`rfisieve.background.coarse_reach`: cells, box cascade on the cells,
     interpolation).  So ``halo = iterations * (R_st + R_b)``, rounded up to a
     multiple of the background's time cell c_t
-    (:func:`rfisieve.background.cell_size`): the coarse background sums cells
-    of c_t dumps counted from the first dump of the plane it is given, so a
-    chunk that starts at a multiple of c_t dumps (chunk lengths a multiple of
-    c_t) has, with this halo, the same cells as the whole plane.  With it,
-    every sample at least ``halo`` dumps from a chunk end gets the same result
-    as on the whole plane, apart from the global noise estimate, which differs
-    by its sampling error (about 0.3 %; it only moves samples whose window means
-    lie that close to the threshold).  Windows skip invalid samples, so invalid
+    (:func:`rfisieve.background.cell_size`).  The coarse background sums cells
+    of c_t dumps aligned to absolute dump numbers when the flagger is given
+    ``t0`` (the absolute index of the plane's first dump), so a chunk cut at
+    any dump has the whole scan's cells; without ``t0`` the cells count from
+    the plane's first dump, and only chunks starting at multiples of c_t match.
+    With this halo, ``t0`` and one noise sigma for the scan (``sigma``, from
+    :func:`sumthreshold_noise`), every sample at least ``halo`` dumps from a
+    chunk end gets exactly the result of the whole plane; with the noise
+    estimated per chunk the thresholds differ by its sampling error (about
+    0.3 %), which moves samples whose window means lie that close to a
+    threshold (~0.02 % of the samples with RFI).  Windows skip invalid samples, so invalid
     dumps inside the halo lengthen the reach by their number.  For the defaults
     (iterations 3, windows to 32, background_time 15, c_t = 8): 3 * (57 + 44) =
     303, rounded up to 304 dumps.
