@@ -11,6 +11,18 @@ ROOT = Path(__file__).resolve().parents[1]
 BIN = Path(sys.executable).parent
 
 
+@pytest.fixture(scope="session", autouse=True)
+def _fresh_threshold_cache(tmp_path_factory):
+    """Tests compute SK thresholds afresh: the user's on-disk cache is not read."""
+    old = os.environ.get("XDG_CACHE_HOME")
+    os.environ["XDG_CACHE_HOME"] = str(tmp_path_factory.mktemp("cache"))
+    yield
+    if old is None:
+        os.environ.pop("XDG_CACHE_HOME", None)
+    else:
+        os.environ["XDG_CACHE_HOME"] = old
+
+
 @pytest.fixture(scope="session")
 def repo_root():
     return ROOT

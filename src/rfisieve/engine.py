@@ -48,8 +48,8 @@ SIR_HALO = 256
 #: Noise pre-pass: the SumThreshold noise sigma of each product is estimated once per
 #: scan on windows of NOISE_WINDOW dumps (at most NOISE_WINDOWS of them, spread evenly
 #: over the scan) and used by every chunk, so thresholds do not depend on chunking.
-NOISE_WINDOW = 512
-NOISE_WINDOWS = 8
+NOISE_WINDOW = 256
+NOISE_WINDOWS = 4
 
 #: Bin edges of the SK histogram kept for the review's kurtosis diagnostic.
 SK_EDGES = np.linspace(0.0, 3.0, 301)
@@ -169,9 +169,9 @@ def _meta(scan, band):
     return meta
 
 
-def _read_chunk(path, layout, start, stop, what, prod=None):
-    with open_scan(path, layout) as scan:
-        return scan.read(start, stop, what, prod=prod)
+def _planes(block, lo, hi, p):
+    """One product's 2-D (time, chan) planes of rows lo:hi of a read block (views)."""
+    return {key: arr[lo:hi, :, p] for key, arr in block.items()}
 
 
 def noise_windows(ntime):
@@ -184,49 +184,54 @@ def noise_windows(ntime):
     return [[int(a), int(a) + NOISE_WINDOW] for a in starts]
 
 
-def _noise_task(block, band, meta, p, t0):
+def _noise_task(planes, band, meta, p, t0):
     from .sumthreshold import sumthreshold_noise
 
     auto = meta["autos"][p]
-    values = amplitude(block["data"][:, :, 0], auto)
-    _, excluded = _prior(block, 0, meta, values, auto)
+    values = amplitude(planes["data"], auto)
+    _, excluded = _prior(planes, meta, values, auto)
     if excluded.all():
         return np.nan
     return float(sumthreshold_noise(values, invalid=excluded, t0=t0, **_sumthreshold_settings(band)))
 
 
-def _noise_prepass(scan, band, meta, sched):
+def _noise_prepass(scan, band, meta, sched, what):
     """Per-product SumThreshold noise sigma: the median over the pre-pass windows."""
-    what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
     tasks = []
-    for p in range(scan.nprod):
-        for a, b in noise_windows(scan.ntime):
-            block = dask.delayed(_read_chunk, pure=True)(meta["path"], meta["layout"], a, b, what, p)
-            tasks.append(dask.delayed(_noise_task)(block, band, meta, p, a))
-    values = np.array(dask.compute(*tasks, **sched.kwargs), dtype=np.float64).reshape(scan.nprod, -1)
+    for a, b in noise_windows(scan.ntime):
+        block = scan.read(a, b, what)
+        for p in range(scan.nprod):
+            tasks.append(dask.delayed(_noise_task)(sched.put(_planes(block, 0, b - a, p)), band, meta, p, a))
+    values = np.array(dask.compute(*tasks, **sched.kwargs), dtype=np.float64)
+    values = values.reshape(-1, scan.nprod).T
     sigmas = []
-    for p, row in enumerate(values):
+    for row in values:
         row = row[np.isfinite(row)]
         sigmas.append(float(np.median(row)) if row.size else 1.0)
     return sigmas
 
 
-def _prior(block, p, meta, values, auto):
+def _prior(planes, meta, values, auto):
+    """(invalid, excluded): samples no statistic may use, and those plus input/static flags."""
     invalid = invalid_mask(values, auto)
-    if "s2" in block and auto:
-        s2 = block["s2"][:, :, p]
+    if "s2" in planes and auto:
+        s2 = planes["s2"]
         invalid |= ~np.isfinite(s2) | (s2 <= 0)
     excluded = invalid | meta["static"][np.newaxis, :]
-    if "flags" in block:
-        excluded |= block["flags"][:, :, p]
+    if "flags" in planes:
+        excluded |= planes["flags"]
     return invalid, excluded
 
 
-def _detect_product(block, p, detector, band, meta, t0):
-    """One (chunk x product) task: that detector's bit and the invalid bit, uint8 (time, chan)."""
+def _detect_product(planes, p, detector, band, meta, t0, core):
+    """One (chunk x product) task on rows with halo starting at dump ``t0``.
+
+    Returns (uint8 (core rows, chan) with that detector's bit and the invalid bit,
+    SK histogram counts of the core rows or None).
+    """
     auto = meta["autos"][p]
-    values = amplitude(block["data"][:, :, p], auto)
-    invalid, excluded = _prior(block, p, meta, values, auto)
+    values = amplitude(planes["data"], auto)
+    invalid, excluded = _prior(planes, meta, values, auto)
     out = np.where(invalid, np.uint8(bits.INVALID), np.uint8(0))
     hist = None
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
@@ -236,36 +241,37 @@ def _detect_product(block, p, detector, band, meta, t0):
                                    **_sumthreshold_settings(band))
         out[hit & ~excluded] |= bits.SUMTHRESHOLD
     elif detector == "sk" and auto and "sk" in meta:
-        hit, hist = _kurtosis(block, p, values, excluded, meta["sk"], t0)
+        hit, hist = _kurtosis(planes, values, excluded, meta["sk"], t0, core)
         out[hit & ~excluded] |= bits.SK
-    return out, hist
+    return out[core[0]:core[1]], hist
 
 
-def _kurtosis(block, p, values, excluded, sk, t0):
+def _kurtosis(planes, values, excluded, sk, t0, core):
     from .sk import sk_estimator, sk_flag_blocks, sk_flag_dumps
 
     m, n, d = sk["m"], sk["n"], sk["d"]
-    lower, upper = sk["lower"], sk["upper"]
     valid = ~excluded
     if sk["mode"] == "s2":
-        s2 = block["s2"][:, :, p]
-        hit = sk_flag_dumps(values, s2, m, n, d, lower, upper, valid)
+        s2 = planes["s2"]
+        hit = sk_flag_dumps(values, s2, m, n, d, sk["lower"], sk["upper"], valid)
+        rows = slice(core[0], core[1])
         with np.errstate(all="ignore"):
-            ski = sk_estimator(values.astype(np.float64) * m, s2.astype(np.float64), m, n, d)
-        ski = ski[valid]
+            ski = sk_estimator(values[rows].astype(np.float64) * m, s2[rows].astype(np.float64), m, n, d)
+        ski = ski[valid[rows]]
     else:
         hit = sk_flag_blocks(values, valid, m, n, d, thresholds=sk["table"], t0=t0)
-        ski = _block_sk_values(values, valid, m, n, d, t0)
+        ski = _block_sk_values(values, valid, m, n, d, t0, core)
     counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], SK_EDGES[0], SK_EDGES[-1] - 1e-9), SK_EDGES)
     return hit, counts.astype(np.int64)
 
 
-def _block_sk_values(values, valid, m, n, d, t0):
-    """SK of the complete, fully valid, absolutely aligned blocks of m dumps (for the histogram)."""
+def _block_sk_values(values, valid, m, n, d, t0, core):
+    """SK of the complete, fully valid blocks of m dumps, aligned to absolute dump
+    numbers, that start in the core rows (each block counted once over the scan)."""
     from .sk import sk_estimator
 
-    first = (-t0) % m
-    nb = (values.shape[0] - first) // m
+    first = core[0] + (-(t0 + core[0])) % m
+    nb = max(0, min((core[1] - first + m - 1) // m, (values.shape[0] - first) // m))
     if nb <= 0:
         return np.empty(0)
     v = values[first:first + nb * m].astype(np.float64).reshape(nb, m, -1)
@@ -273,11 +279,6 @@ def _block_sk_values(values, valid, m, n, d, t0):
     with np.errstate(all="ignore"):
         ski = sk_estimator(v.sum(axis=1), (v * v).sum(axis=1), m, n, d)
     return ski[ok]
-
-
-def _task_product(block, p, detector, band, meta, t0, core):
-    out, h = _detect_product(block, p, detector, band, meta, t0)
-    return out[core[0]:core[1]], h
 
 
 def _assemble(parts, nprod):
@@ -329,6 +330,12 @@ class _Scheduler:
     def window(self):
         return max(2, 2 * self.workers)
 
+    def put(self, data):
+        """Hand a task's input to the scheduler: as is locally, scattered to a cluster."""
+        if self.client is not None:
+            return self.client.scatter(data, direct=False)
+        return data
+
 
 def _windows(chunks, size):
     for i in range(0, len(chunks), size):
@@ -338,32 +345,46 @@ def _windows(chunks, size):
 def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
     """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
 
-    Returns the scan metadata used, including the pre-pass noise sigmas (``sigma``).
+    Chunks go in windows of ``2 x workers``: the driver reads each window's dumps (with
+    halos) in one read, one window ahead in a reader thread, and sends each
+    (chunk x product) plane to the dask scheduler.  Returns the scan metadata used,
+    including the pre-pass noise sigmas (``sigma``).
     """
+    from concurrent.futures import ThreadPoolExecutor
+
     meta = _meta(scan, band)
+    what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
     if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
-        meta["sigma"] = _noise_prepass(scan, band, meta, sched)
+        meta["sigma"] = _noise_prepass(scan, band, meta, sched, what)
     halo = plan["halo"] if plan else detect_halo(band, scan)
     chunks = plan["chunks"] if plan else _chunks(scan.ntime, int(run["chunk_dumps"]))
-    what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
+    windows = list(_windows(chunks, sched.window))
+    spans = [(max(0, w[0][0] - halo), min(scan.ntime, w[-1][1] + halo)) for w in windows]
     done = 0
-    for window in _windows(chunks, sched.window):
-        graph = []
-        for c0, c1 in window:
-            a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
-            block = dask.delayed(_read_chunk, pure=True)(meta["path"], meta["layout"], a, b, what)
-            per_det = []
-            for det in detectors:
-                parts = [dask.delayed(_task_product)(block, p, det, band, meta, a, (c0 - a, c1 - a))
-                         for p in range(scan.nprod)]
-                per_det.append(dask.delayed(_assemble)(parts, scan.nprod))
-            graph.append(per_det)
-        results = dask.compute(*graph, **sched.kwargs)
-        for (c0, c1), per_det in zip(window, results):
-            sink(c0, c1, dict(zip(detectors, per_det)))
-            done += 1
-            if progress:
-                progress(done, len(chunks))
+    with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
+        ahead = reader.submit(scan.read, *spans[0], what) if windows else None
+        for k, window in enumerate(windows):
+            block = ahead.result()
+            if k + 1 < len(windows):
+                ahead = reader.submit(scan.read, *spans[k + 1], what)
+            base = spans[k][0]
+            graph = []
+            for c0, c1 in window:
+                a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
+                per_det = []
+                for det in detectors:
+                    parts = [dask.delayed(_detect_product)(sched.put(_planes(block, a - base, b - base, p)),
+                                                           p, det, band, meta, a, (c0 - a, c1 - a))
+                             for p in range(scan.nprod)]
+                    per_det.append(dask.delayed(_assemble)(parts, scan.nprod))
+                graph.append(per_det)
+            results = dask.compute(*graph, **sched.kwargs)
+            del block
+            for (c0, c1), per_det in zip(window, results):
+                sink(c0, c1, dict(zip(detectors, per_det)))
+                done += 1
+                if progress:
+                    progress(done, len(chunks))
     return meta
 
 
@@ -444,27 +465,32 @@ def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
                 _write_sk_diag(f, hist, meta, band)
 
 
-def _merge_chunk(det_block, extra, band, core):
-    """Merge one chunk (with SIR halo rows): returns the final bits of the core rows."""
+def _merge_plane(det, extra, band, core):
+    """Merge one product's plane of a chunk (with SIR halo rows) into its final bits.
+
+    ``det`` holds the partial masks' bits OR-ed, ``extra`` the input and static bits;
+    returns the uint8 (core rows, chan) plane with growth (bit 5) and dump cuts (bit 6).
+    """
     from .morphology import sir_grow
 
     g = band["growth"]
-    out = det_block | extra
+    out = det | extra
     if g["enabled"] and g["eta"] > 0:
-        detected = (det_block & bits.DETECTED) != 0
-        for p in range(det_block.shape[2]):
-            grown = sir_grow(detected[:, :, p], g["eta"], time=g["time"], freq=g["freq"],
-                             reach_time=g.get("reach_time"), reach_freq=g.get("reach_freq"))
-            out[:, :, p][grown & ~detected[:, :, p]] |= bits.MORPHOLOGY
+        detected = (det & bits.DETECTED) != 0
+        grown = sir_grow(detected, g["eta"], time=g["time"], freq=g["freq"],
+                         reach_time=g.get("reach_time"), reach_freq=g.get("reach_freq"))
+        out[grown & ~detected] |= bits.MORPHOLOGY
     out = out[core[0]:core[1]]
     limit = band["cuts"]["dump_limit"]
     if limit < 1:
-        for p in range(out.shape[2]):
-            plane = out[:, :, p]
-            cut = dump_cut(plane != 0, limit)
-            # the occupancy bit marks what the cut adds: the samples no other cause flagged
-            plane[cut[:, None] & (plane == 0)] = bits.OCCUPANCY
+        cut = dump_cut(out != 0, limit)
+        # the occupancy bit marks what the cut adds: the samples no other cause flagged
+        out[cut[:, None] & (out == 0)] = bits.OCCUPANCY
     return out
+
+
+def _stack(planes):
+    return np.stack(planes, axis=-1)
 
 
 def _input_and_static(scan, a, b, meta):
@@ -517,16 +543,28 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
                 chunks = _chunks(scan.ntime, chunk_dumps)
                 halo = merge_halo(band)
-                for i, (c0, c1) in enumerate(chunks):
-                    a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
-                    det = np.zeros((b - a, scan.nchan, scan.nprod), dtype=np.uint8)
+                workers = max(1, int(run.get("workers") or 1))
+                local = "synchronous" if run.get("scheduler") == "synchronous" else "threads"
+                done = 0
+                for window in _windows(chunks, max(2, 2 * workers)):
+                    lo, hi = max(0, window[0][0] - halo), min(scan.ntime, window[-1][1] + halo)
+                    det = np.zeros((hi - lo, scan.nchan, scan.nprod), dtype=np.uint8)
                     for h in parts:
-                        det |= h["flags"][a:b]
-                    out = _merge_chunk(det, _input_and_static(scan, a, b, meta), band, (c0 - a, c1 - a))
-                    flags[c0:c1] = out
-                    counts += (out != 0).sum(axis=0)
-                    if progress:
-                        progress(i + 1, len(chunks))
+                        det |= h["flags"][lo:hi]
+                    extra = _input_and_static(scan, lo, hi, meta)
+                    graph = []
+                    for c0, c1 in window:
+                        a, b = max(0, c0 - halo) - lo, min(scan.ntime, c1 + halo) - lo
+                        core = (c0 - lo - a, c1 - lo - a)
+                        graph.append(dask.delayed(_stack)(
+                            [dask.delayed(_merge_plane)(det[a:b, :, p], extra[a:b, :, p], band, core)
+                             for p in range(scan.nprod)]))
+                    for (c0, c1), out in zip(window, dask.compute(*graph, scheduler=local, num_workers=workers)):
+                        flags[c0:c1] = out
+                        counts += (out != 0).sum(axis=0)
+                        done += 1
+                        if progress:
+                            progress(done, len(chunks))
                 _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
                 _copy_sk_diag(parts, f, meta, band)
                 for h in parts:
