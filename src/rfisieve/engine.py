@@ -6,21 +6,30 @@ Layering: this module reads scans through :mod:`rfisieve.io`, calls the detector
 
 Chunks and halos
 ----------------
-A scan is cut along time into chunks of ``chunk_dumps`` dumps.  Each task reads its
-chunk plus ``halo`` dumps on each side, flags that extended plane and keeps only the
-chunk's own rows.  The halo rule (see :func:`detect_halo`) is the larger of the
-detectors' own reach: SumThreshold's (background kernel reach plus the largest time
-window, per iteration, from :func:`rfisieve.sumthreshold.sumthreshold_halo`) and the
-kurtosis blocks' (one block, blocks being aligned to absolute dump numbers).  Within
-that reach a sample's result does not depend on where chunks start; what is left is
-the plane-wide robust noise estimate, which is estimated on chunk + halo and varies
-by well under a percent between chunkings (measured: see tests/test_engine.py).
-The merge stage grows flags with the SIR operator over chunks with its own halo
-(:data:`SIR_HALO` dumps), and the per-channel occupancy cut needs the whole scan's
-counts, so it is applied in a second pass over the finished mask.
+A scan is cut along time into chunks of ``chunk_dumps`` dumps.  Each task flags its
+chunk plus ``halo`` dumps on each side and keeps only the chunk's own rows.  The halo
+rule (see :func:`detect_halo`) is the larger of the detectors' own reach:
+SumThreshold's (per iteration, the background's reach plus the sum of M - 1 over the
+time windows, from :func:`rfisieve.sumthreshold.sumthreshold_halo`: 304 dumps at the
+defaults) and the kurtosis blocks' (M - 1 dumps, blocks being aligned to absolute dump
+numbers).  SumThreshold's noise sigma is estimated once per scan and product, on fixed
+windows (:func:`noise_windows`), and its background cells are aligned to absolute dump
+numbers, so within that reach a sample's result does not depend on where chunks start
+or on the number of workers (tests/test_engine.py checks both).  The merge stage grows
+flags with the bounded-reach SIR operator over chunks with its own halo
+(:func:`merge_halo`: reach + 1 dumps, exact), and the per-channel occupancy cut needs
+the whole scan's counts, so it is applied in a second pass over the finished mask.
+
+Parallelism
+-----------
+Chunks go in windows of ``2 x workers``.  The driver reads each window (with halos)
+in one read, one window ahead in a reader thread, and hands every
+(chunk x product) plane to dask as one task: the threaded scheduler by default, or
+processes, or a dask.distributed scheduler address (planes are scattered to it).
 
 Memory is bounded by ``chunk_dumps x nchan x nprod x (in-flight chunks)``, where at
-most ``2 x workers`` chunks are in flight, never by the scan's length.
+most ``2 x workers`` chunks (plus the window read ahead) are in flight, never by the
+scan's length.
 """
 
 import json
