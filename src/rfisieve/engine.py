@@ -342,7 +342,8 @@ class _Scheduler:
     def put(self, data):
         """Hand a task's input to the scheduler: as is locally, scattered to a cluster."""
         if self.client is not None:
-            return self.client.scatter(data, direct=False)
+            # a list, not the dict itself: scatter would use a dict's keys as data keys
+            return self.client.scatter([data], direct=False, hash=False)[0]
         return data
 
 
