@@ -24,7 +24,7 @@ BAND_DEFAULTS = {
         "chi1": 8.0,             # first threshold chi_1, in robust noise sigma
         "rho": 1.5,              # window threshold ratio: chi_M = chi_1 / rho**log2(M)
         "max_window_time": 32,   # largest window along time, dumps (a power of two)
-        "max_window_freq": 32,   # largest window along frequency, channels (power of two)
+        "max_window_freq": 128,  # largest window along frequency, channels (power of two)
         "iterations": 3,         # background fits; the threshold is lowered step by step
         "first_factor": 4.0,     # threshold factor of the first iteration, falling to 1
         "background_time": 15.0, # smoothing scale of the background along time, dumps
