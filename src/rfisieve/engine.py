@@ -232,15 +232,21 @@ def _prior(planes, meta, values, auto):
     return invalid, excluded
 
 
-def _detect_product(planes, p, detector, band, meta, t0, core):
-    """One (chunk x product) task on rows with halo starting at dump ``t0``.
-
-    Returns (uint8 (core rows, chan) with that detector's bit and the invalid bit,
-    SK histogram counts of the core rows or None).
-    """
+def _prepare(planes, p, meta):
+    """What both detectors need of one (chunk x product) plane, computed once."""
     auto = meta["autos"][p]
     values = amplitude(planes["data"], auto)
     invalid, excluded = _prior(planes, meta, values, auto)
+    return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
+
+
+def _detect_product(prep, p, detector, band, meta, t0, core):
+    """One detector on one (chunk x product) plane with halo rows from dump ``t0``.
+
+    ``prep`` is :func:`_prepare`'s result.  Returns (uint8 (core rows, chan) with that
+    detector's bit and the invalid bit, SK histogram counts of the core rows or None).
+    """
+    values, invalid, excluded = prep["values"], prep["invalid"], prep["excluded"]
     out = np.where(invalid, np.uint8(bits.INVALID), np.uint8(0))
     hist = None
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
@@ -249,19 +255,19 @@ def _detect_product(planes, p, detector, band, meta, t0, core):
         hit = sumthreshold_flagger(values, invalid=excluded, sigma=meta["sigma"][p], t0=t0,
                                    **_sumthreshold_settings(band))
         out[hit & ~excluded] |= bits.SUMTHRESHOLD
-    elif detector == "sk" and auto and "sk" in meta:
-        hit, hist = _kurtosis(planes, values, excluded, meta["sk"], t0, core)
+    elif detector == "sk" and meta["autos"][p] and "sk" in meta:
+        hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)
         out[hit & ~excluded] |= bits.SK
     return out[core[0]:core[1]], hist
 
 
-def _kurtosis(planes, values, excluded, sk, t0, core):
+def _kurtosis(prep, values, excluded, sk, t0, core):
     from .sk import sk_estimator, sk_flag_blocks, sk_flag_dumps
 
     m, n, d = sk["m"], sk["n"], sk["d"]
     valid = ~excluded
     if sk["mode"] == "s2":
-        s2 = planes["s2"]
+        s2 = prep["s2"]
         hit = sk_flag_dumps(values, s2, m, n, d, sk["lower"], sk["upper"], valid)
         rows = slice(core[0], core[1])
         with np.errstate(all="ignore"):
@@ -352,6 +358,29 @@ def _windows(chunks, size):
         yield chunks[i:i + size]
 
 
+#: Share of the machine's memory that the chunks in flight may use.
+MEMORY_SHARE = 0.25
+
+
+def _window_chunks(scan, rows, wanted):
+    """Chunks per window: ``wanted`` (2 x workers), fewer when memory would not hold them.
+
+    A chunk of ``rows`` dumps costs its stored samples plus about 16 bytes per sample of
+    working arrays (float32 values, masks, background and residual) per product in work.
+    """
+    import psutil
+
+    itemsize = scan.dtype.itemsize + (1 if scan.has_flags else 0) + (4 if scan.has_s2 else 0)
+    per_chunk = rows * scan.nchan * scan.nprod * (itemsize + 16)
+    budget = MEMORY_SHARE * psutil.virtual_memory().total
+    if per_chunk > budget:
+        raise RfisieveError(
+            f"{scan.path}: one chunk of {rows} dumps (with halos) x {scan.nchan} channels x {scan.nprod} "
+            f"products needs ~{per_chunk / 2**30:.1f} GiB, more than {MEMORY_SHARE:.0%} of this machine's "
+            "memory; lower chunk_dumps in the run config")
+    return max(1, min(int(wanted), int(budget // per_chunk)))
+
+
 def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
     """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
 
@@ -368,7 +397,8 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
         meta["sigma"] = _noise_prepass(scan, band, meta, sched, what)
     halo = plan["halo"] if plan else detect_halo(band, scan)
     chunks = plan["chunks"] if plan else _chunks(scan.ntime, int(run["chunk_dumps"]))
-    windows = list(_windows(chunks, sched.window))
+    rows = max(c1 - c0 for c0, c1 in chunks) + 2 * halo
+    windows = list(_windows(chunks, _window_chunks(scan, rows, sched.window)))
     spans = [(max(0, w[0][0] - halo), min(scan.ntime, w[-1][1] + halo)) for w in windows]
     done = 0
     with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
@@ -381,10 +411,11 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
             graph = []
             for c0, c1 in window:
                 a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
+                preps = [dask.delayed(_prepare)(sched.put(_planes(block, a - base, b - base, p)), p, meta)
+                         for p in range(scan.nprod)]
                 per_det = []
                 for det in detectors:
-                    parts = [dask.delayed(_detect_product)(sched.put(_planes(block, a - base, b - base, p)),
-                                                           p, det, band, meta, a, (c0 - a, c1 - a))
+                    parts = [dask.delayed(_detect_product)(preps[p], p, det, band, meta, a, (c0 - a, c1 - a))
                              for p in range(scan.nprod)]
                     per_det.append(dask.delayed(_assemble)(parts, scan.nprod))
                 graph.append(per_det)
