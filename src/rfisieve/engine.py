@@ -22,14 +22,14 @@ the whole scan's counts, so it is applied in a second pass over the finished mas
 
 Parallelism
 -----------
-Chunks go in windows of ``2 x workers``.  The driver reads each window (with halos)
+Chunks go in windows of ``workers`` chunks.  The driver reads each window (with halos)
 in one read, one window ahead in a reader thread, and hands every
 (chunk x product) plane to dask as one task: the threaded scheduler by default, or
 processes, or a dask.distributed scheduler address (planes are scattered to it).
 
 Memory is bounded by ``chunk_dumps x nchan x nprod x (in-flight chunks)``, where at
-most ``2 x workers`` chunks (plus the window read ahead) are in flight, never by the
-scan's length.
+most ``2 x workers`` chunks (a window and the one read ahead) are in memory, never by
+the scan's length.
 """
 
 import json
@@ -343,7 +343,9 @@ class _Scheduler:
 
     @property
     def window(self):
-        return max(2, 2 * self.workers)
+        # chunks per window: one per worker (each gives nprod x detectors tasks); with
+        # the window read ahead, at most 2 x workers chunks are in memory at once
+        return max(2, self.workers)
 
     def put(self, data):
         """Hand a task's input to the scheduler: as is locally, scattered to a cluster."""
@@ -363,7 +365,7 @@ MEMORY_SHARE = 0.25
 
 
 def _window_chunks(scan, rows, wanted):
-    """Chunks per window: ``wanted`` (2 x workers), fewer when memory would not hold them.
+    """Chunks per window: ``wanted`` (one per worker), fewer when memory would not hold them.
 
     A chunk of ``rows`` dumps costs its stored samples plus about 16 bytes per sample of
     working arrays (float32 values, masks, background and residual) per product in work.
@@ -373,18 +375,18 @@ def _window_chunks(scan, rows, wanted):
     itemsize = scan.dtype.itemsize + (1 if scan.has_flags else 0) + (4 if scan.has_s2 else 0)
     per_chunk = rows * scan.nchan * scan.nprod * (itemsize + 16)
     budget = MEMORY_SHARE * psutil.virtual_memory().total
-    if per_chunk > budget:
+    if 2 * per_chunk > budget:  # a window and the one read ahead
         raise RfisieveError(
             f"{scan.path}: one chunk of {rows} dumps (with halos) x {scan.nchan} channels x {scan.nprod} "
             f"products needs ~{per_chunk / 2**30:.1f} GiB, more than {MEMORY_SHARE:.0%} of this machine's "
             "memory; lower chunk_dumps in the run config")
-    return max(1, min(int(wanted), int(budget // per_chunk)))
+    return max(1, min(int(wanted), int(budget // (2 * per_chunk))))
 
 
 def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
     """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
 
-    Chunks go in windows of ``2 x workers``: the driver reads each window's dumps (with
+    Chunks go in windows of ``workers`` chunks: the driver reads each window's dumps (with
     halos) in one read, one window ahead in a reader thread, and sends each
     (chunk x product) plane to the dask scheduler.  Returns the scan metadata used,
     including the pre-pass noise sigmas (``sigma``).
