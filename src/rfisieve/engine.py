@@ -42,7 +42,7 @@ import numpy as np
 
 from . import __version__, bits
 from .errors import RfisieveError, ScanError
-from .io import atomic_output, file_identity, open_scan, scan_name
+from .io import atomic_output, file_identity, open_scan
 from .masks import amplitude, bit_attrs, channel_cut, dump_cut, invalid_mask, static_channels
 
 DETECTORS = ("sk", "sumthreshold")
@@ -682,10 +682,5 @@ def _detect_both(scan_path, partials, band, run, progress):
                 f.close()
 
 
-def scan_output_name(scan_path):
-    """``<scan>.h5``: the mask file name for a scan (DESIGN.md 2.2)."""
-    return f"{scan_name(scan_path)}.h5"
-
-
-__all__ = ["plan_scan", "detect", "merge", "flag_scan", "detect_halo", "SIR_HALO", "DETECTORS",
-           "scan_output_name"]
+__all__ = ["plan_scan", "detect", "merge", "flag_scan", "detect_halo", "merge_halo", "noise_windows",
+           "SIR_HALO", "DETECTORS"]

@@ -493,7 +493,6 @@ def _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv):
     B = v.shape[1]
     L8 = L // 8 * 8
     n8 = nb // 8 * 8
-    one = np.uint8(LEV_INPUT)
     zero = np.uint8(0)
     inv = np.uint8(LEV_INVALID)
     fz = np.float32(0.0)

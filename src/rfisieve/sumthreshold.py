@@ -19,7 +19,6 @@ Conventions shared by every function here:
 * the result is the mask of new detections only (never the input mask).
 """
 
-import math
 
 import numpy as np
 
