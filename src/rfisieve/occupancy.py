@@ -100,6 +100,7 @@ import numpy as np
 
 from . import bits as _bits
 from .errors import ScanError
+from .io import atomic_output
 
 BIT_NAMES = tuple(_bits.NAMES)
 BIT_VALUES = tuple(row[1] for row in _bits.BIT_TABLE)
@@ -396,15 +397,6 @@ def occupied_ranges(freq_hz, flagged, samples, threshold=0.25, primary=None):
 # files
 # ---------------------------------------------------------------------------
 
-def _tmp_name(path):
-    d, b = os.path.split(os.path.abspath(path))
-    return os.path.join(d, f".{b}.tmp{os.getpid()}")
-
-
-def _publish(tmp, path):
-    os.replace(tmp, path)
-
-
 def _strings(ds):
     return [x.decode() if isinstance(x, bytes) else str(x) for x in ds[()]]
 
@@ -549,14 +541,8 @@ def run_table(bands):
 
 def write_csv(path, rows):
     """Write ``rows`` to CSV ``path`` via a temporary name and a rename."""
-    tmp = _tmp_name(path)
-    try:
-        with open(tmp, "w", newline="") as fh:
-            csv.writer(fh).writerows(rows)
-        _publish(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with atomic_output(path) as tmp, open(tmp, "w", newline="") as fh:
+        csv.writer(fh).writerows(rows)
 
 
 def _write_sk(h5, sk):
@@ -578,23 +564,17 @@ def write_scan_h5(path, counts):
     """Write the per-scan occupancy HDF5 (layout in the module docstring) via temp + rename."""
     import h5py
 
-    tmp = _tmp_name(path)
-    try:
-        with h5py.File(tmp, "w") as h5:
-            h5.create_dataset("freq", data=counts["freq"])
-            h5.create_dataset("time", data=counts["time"])
-            h5.create_dataset("products", data=np.array(counts["products"], dtype=h5py.string_dtype()))
-            for key, arr in counts.items():
-                if "/" in key:
-                    h5.create_dataset(key, data=arr, compression="gzip" if np.size(arr) > 4096 else None)
-            for k, v in counts["attrs"].items():
-                h5.attrs[k] = v
-            h5.attrs["bit_names"] = json.dumps(list(BIT_NAMES))
-            _write_sk(h5, counts.get("sk"))
-        _publish(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with atomic_output(path) as tmp, h5py.File(tmp, "w") as h5:
+        h5.create_dataset("freq", data=counts["freq"])
+        h5.create_dataset("time", data=counts["time"])
+        h5.create_dataset("products", data=np.array(counts["products"], dtype=h5py.string_dtype()))
+        for key, arr in counts.items():
+            if "/" in key:
+                h5.create_dataset(key, data=arr, compression="gzip" if np.size(arr) > 4096 else None)
+        for k, v in counts["attrs"].items():
+            h5.attrs[k] = v
+        h5.attrs["bit_names"] = json.dumps(list(BIT_NAMES))
+        _write_sk(h5, counts.get("sk"))
 
 
 def read_scan_h5(path):
@@ -671,32 +651,26 @@ def write_run_h5(path, bands, overview, attrs=None):
     """Write run.h5 (layout in the module docstring) via temp + rename."""
     import h5py
 
-    tmp = _tmp_name(path)
     sdt = h5py.string_dtype()
-    try:
-        with h5py.File(tmp, "w") as h5:
-            h5.attrs["bit_names"] = json.dumps(list(BIT_NAMES))
-            for k, v in (attrs or {}).items():
-                h5.attrs[k] = v
-            for band, agg in bands.items():
-                g = h5.create_group(f"bands/{band}")
-                for k, v in agg.items():
-                    if k == "products":
-                        g.create_dataset(k, data=np.array(v, dtype=sdt))
-                    else:
-                        g.create_dataset(k, data=v)
-            g = h5.create_group("scans")
-            for k in ("name", "band"):
-                g.create_dataset(k, data=np.array([r[k] for r in overview], dtype=sdt))
-            for k in ("ntime", "nchan", "nprod", "samples", "flagged"):
-                g.create_dataset(k, data=np.array([r[k] for r in overview], np.int64))
-            for k in ("hours", "start_time", "stop_time"):
-                g.create_dataset(k, data=np.array([r[k] for r in overview], float))
-            g.create_dataset("bits", data=np.array([r["bits"] for r in overview], np.int64).reshape(-1, NBITS))
-        _publish(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with atomic_output(path) as tmp, h5py.File(tmp, "w") as h5:
+        h5.attrs["bit_names"] = json.dumps(list(BIT_NAMES))
+        for k, v in (attrs or {}).items():
+            h5.attrs[k] = v
+        for band, agg in bands.items():
+            g = h5.create_group(f"bands/{band}")
+            for k, v in agg.items():
+                if k == "products":
+                    g.create_dataset(k, data=np.array(v, dtype=sdt))
+                else:
+                    g.create_dataset(k, data=v)
+        g = h5.create_group("scans")
+        for k in ("name", "band"):
+            g.create_dataset(k, data=np.array([r[k] for r in overview], dtype=sdt))
+        for k in ("ntime", "nchan", "nprod", "samples", "flagged"):
+            g.create_dataset(k, data=np.array([r[k] for r in overview], np.int64))
+        for k in ("hours", "start_time", "stop_time"):
+            g.create_dataset(k, data=np.array([r[k] for r in overview], float))
+        g.create_dataset("bits", data=np.array([r["bits"] for r in overview], np.int64).reshape(-1, NBITS))
 
 
 def read_run_h5(path):

@@ -30,6 +30,7 @@ import numpy as np
 from . import occupancy as occ
 from .emitters import load_emitters, match_emitters
 from .errors import ConfigError, ScanError
+from .io import atomic_output
 from .occupancy import BIT_NAMES, fraction
 
 RANGE_FRACTION = 0.2   # a channel belongs to an occupied range at this flagged fraction
@@ -187,14 +188,8 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     page = render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev,
                        threshold, previous)
     index = os.path.join(rep_dir, "index.html")
-    tmp = os.path.join(rep_dir, f".index.html.tmp{os.getpid()}")
-    try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(page)
-        os.replace(tmp, index)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with atomic_output(index) as tmp, open(tmp, "w", encoding="utf-8") as fh:
+        fh.write(page)
     return index
 
 

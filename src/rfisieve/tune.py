@@ -38,6 +38,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import ConfigError, RfisieveError
+from .io import atomic_output
 
 #: (section, key, label, step, sensitive direction) of the swept thresholds.
 PARAMETERS = (
@@ -270,10 +271,9 @@ def plot_rows(rows, suggestion, path, band_name):
         ax.set_title(f"{label} (dotted: current, solid: suggested)", fontsize=8)
     fig.suptitle(f"band {band_name}: threshold sweep")
     fig.tight_layout()
-    tmp = Path(path).with_name(f".{Path(path).name}.partial.png")
-    fig.savefig(tmp, dpi=110)
+    with atomic_output(path, suffix=".png") as tmp:
+        fig.savefig(tmp, dpi=110)
     plt.close(fig)
-    os.replace(tmp, path)
 
 
 def write_suggestion(bands_dir, band_name, source, suggestion, meta, rows):
@@ -316,10 +316,8 @@ def write_suggestion(bands_dir, band_name, source, suggestion, meta, rows):
                           f"{cur[0]['recall'] or 0:.4f} -> {pick[0]['recall'] or 0:.4f})")
     header.append(f"# To use it: review, then copy over {Path(source['path']).name} yourself.")
     text = "\n".join(header) + "\n\n" + yaml.safe_dump(data, sort_keys=False, allow_unicode=True)
-    tmp = path.with_name(f".{path.name}.partial")
-    with open(tmp, "w", encoding="utf-8") as fh:
+    with atomic_output(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
         fh.write(text)
-    os.replace(tmp, path)
     return path
 
 
