@@ -577,20 +577,28 @@ def write_scan_h5(path, counts):
         _write_sk(h5, counts.get("sk"))
 
 
-def read_scan_h5(path):
-    """Read a per-scan occupancy HDF5 back into the dict of :func:`count_mask_file`."""
+def _open_h5(path, missing, required, wrong):
+    """Open an occupancy HDF5 file read-only; ScanError with ``missing`` / ``wrong`` otherwise."""
     import h5py
 
-    path = str(path)
     if not os.path.isfile(path):
-        raise ScanError(path, "occupancy file not found")
+        raise ScanError(path, missing)
     try:
         fh = h5py.File(path, "r")
     except OSError as err:
         raise ScanError(path, f"cannot open as HDF5 ({err.__class__.__name__})") from None
-    with fh:
-        if "channel" not in fh or "freq" not in fh:
-            raise ScanError(path, "not a per-scan occupancy file (no /channel group)")
+    if any(name not in fh for name in required):
+        fh.close()
+        raise ScanError(path, wrong)
+    return fh
+
+
+def read_scan_h5(path):
+    """Read a per-scan occupancy HDF5 back into the dict of :func:`count_mask_file`."""
+
+    path = str(path)
+    with _open_h5(path, "occupancy file not found", ("channel", "freq"),
+                  "not a per-scan occupancy file (no /channel group)") as fh:
         out = {"freq": fh["freq"][()], "time": fh["time"][()], "products": _strings(fh["products"])}
         for grp in ("channel", "dump", "product", "image"):
             for k in fh[grp]:
@@ -675,18 +683,10 @@ def write_run_h5(path, bands, overview, attrs=None):
 
 def read_run_h5(path):
     """Read run.h5: returns (bands, overview, attrs) as written by :func:`write_run_h5`."""
-    import h5py
 
     path = str(path)
-    if not os.path.isfile(path):
-        raise ScanError(path, "run occupancy file not found (run `rfisieve review` first)")
-    try:
-        fh = h5py.File(path, "r")
-    except OSError as err:
-        raise ScanError(path, f"cannot open as HDF5 ({err.__class__.__name__})") from None
-    with fh:
-        if "bands" not in fh or "scans" not in fh:
-            raise ScanError(path, "not a run occupancy file (no /bands or /scans)")
+    with _open_h5(path, "run occupancy file not found (run `rfisieve review` first)", ("bands", "scans"),
+                  "not a run occupancy file (no /bands or /scans)") as fh:
         bands = {}
         for band in fh["bands"]:
             g = fh["bands"][band]
