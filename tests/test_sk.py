@@ -118,7 +118,8 @@ def test_m2_exact_thresholds():
 
 def test_threshold_arguments():
     assert sk.sk_thresholds(16, 64, 1.0, 1e-3, "auto") == sk.sk_thresholds(16, 64, 1.0, 1e-3, "exact")
-    assert sk.sk_thresholds_sigma(16, 64, 1.0, 3.0) == sk.sk_thresholds(16, 64, 1.0, P3SIGMA)
+    np.testing.assert_allclose(sk.sk_thresholds_sigma(16, 64, 1.0, 3.0), sk.sk_thresholds(16, 64, 1.0, P3SIGMA),
+                               rtol=1e-12)
     with pytest.raises(ValueError):
         sk.sk_thresholds(16, 1, 1.0, 1e-3, "nonsense")
     with pytest.raises(ValueError):
@@ -241,3 +242,34 @@ def test_block_refinement_keeps_clean_data():
     whole = sk.sk_flag_blocks(power, None, m, n, 1.0, pfa, refine=False).mean()
     assert refined < whole
     assert refined < 10 * 2 * pfa
+
+
+def test_gaussian_tail_equals_scipy():
+    # reference: scipy.stats.norm.sf, the standard normal upper tail
+    for sigma in (0.0, 1.0, 2.5, 3.0, 3.5, 4.0, 5.0, 6.5):
+        assert sk.gaussian_tail(sigma) == pytest.approx(float(stats.norm.sf(sigma)), rel=1e-14)
+
+
+def test_block_histogram_equals_numpy():
+    # brute force from the definition (Nita & Gary 2010, MNRAS 406, L60, eq. 8) and
+    # numpy.histogram, on gamma powers with invalid samples; blocks aligned to
+    # multiples of M in absolute dumps, counted where they start inside ``rows``
+    rng = np.random.default_rng(5)
+    m, n, d, t0 = 8, 64, 1.0, 13
+    power = rng.standard_gamma(n, size=(203, 17)).astype(np.float32) / n
+    valid = rng.random(power.shape) > 0.01
+    edges = np.linspace(0.0, 3.0, 301)
+    for rows in [(0, 203), (10, 150), (37, 38), (200, 203)]:
+        sks = []
+        for r in range(rows[0], rows[1]):
+            if (t0 + r) % m or r + m > power.shape[0]:
+                continue
+            v = power[r:r + m].astype(np.float64)
+            ok = valid[r:r + m].all(axis=0)
+            s1, s2 = v.sum(axis=0), (v * v).sum(axis=0)
+            ski = (m * n * d + 1.0) / (m - 1.0) * (m * s2 / (s1 * s1) - 1.0)
+            sks.append(ski[ok])
+        ski = np.concatenate(sks) if sks else np.empty(0)
+        want, _ = np.histogram(np.clip(ski, edges[0], edges[-1] - 1e-9), edges)
+        got = sk.sk_block_histogram(power, valid, m, n, d, edges, t0=t0, rows=rows)
+        np.testing.assert_array_equal(got, want)

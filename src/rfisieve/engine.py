@@ -157,9 +157,9 @@ def _meta(scan, band):
         "static": static_channels(scan.freq, band.get("static")),
     }
     if k["enabled"]:
-        from scipy.stats import norm
+        from .sk import gaussian_tail
 
-        pfa = k["pfa"] if k.get("pfa") is not None else float(norm.sf(k["sigma"]))
+        pfa = k["pfa"] if k.get("pfa") is not None else gaussian_tail(k["sigma"])
         if scan.has_s2:
             # Mode (a): SK per dump, M = accumulations, N = presum (DESIGN.md 3).
             m, n = scan.accumulations, scan.presum
@@ -240,12 +240,14 @@ def _prepare(planes, p, meta):
     return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
 
 
-def _detect_product(prep, p, detector, band, meta, t0, core):
+def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
     """One detector on one (chunk x product) plane with halo rows from dump ``t0``.
 
-    ``prep`` is :func:`_prepare`'s result.  Returns (uint8 (core rows, chan) with that
-    detector's bit and the invalid bit, SK histogram counts of the core rows or None).
+    ``prep`` is :func:`_prepare`'s result.  Returns (uint8 (rows, chan) with that
+    detector's bit and the invalid bit, SK histogram counts of the core rows or None);
+    ``rows`` (default ``core``) are the plane rows returned.
     """
+    rows = core if rows is None else rows
     values, invalid, excluded = prep["values"], prep["invalid"], prep["excluded"]
     out = np.where(invalid, np.uint8(bits.INVALID), np.uint8(0))
     hist = None
@@ -258,11 +260,11 @@ def _detect_product(prep, p, detector, band, meta, t0, core):
     elif detector == "sk" and meta["autos"][p] and "sk" in meta:
         hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)
         out[hit & ~excluded] |= bits.SK
-    return out[core[0]:core[1]], hist
+    return out[rows[0]:rows[1]], hist
 
 
 def _kurtosis(prep, values, excluded, sk, t0, core):
-    from .sk import sk_estimator, sk_flag_blocks, sk_flag_dumps
+    from .sk import sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
 
     m, n, d = sk["m"], sk["n"], sk["d"]
     valid = ~excluded
@@ -273,27 +275,34 @@ def _kurtosis(prep, values, excluded, sk, t0, core):
         with np.errstate(all="ignore"):
             ski = sk_estimator(values[rows].astype(np.float64) * m, s2[rows].astype(np.float64), m, n, d)
         ski = ski[valid[rows]]
-    else:
-        hit = sk_flag_blocks(values, valid, m, n, d, thresholds=sk["table"], t0=t0)
-        ski = _block_sk_values(values, valid, m, n, d, t0, core)
-    counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], SK_EDGES[0], SK_EDGES[-1] - 1e-9), SK_EDGES)
-    return hit, counts.astype(np.int64)
+        counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], SK_EDGES[0], SK_EDGES[-1] - 1e-9), SK_EDGES)
+        return hit, counts.astype(np.int64)
+    hit = sk_flag_blocks(values, valid, m, n, d, thresholds=sk["table"], t0=t0)
+    return hit, sk_block_histogram(values, valid, m, n, d, SK_EDGES, t0=t0, rows=core)
 
 
-def _block_sk_values(values, valid, m, n, d, t0, core):
-    """SK of the complete, fully valid blocks of m dumps, aligned to absolute dump
-    numbers, that start in the core rows (each block counted once over the scan)."""
-    from .sk import sk_estimator
+def _flag_product(planes, p, band, meta, t0, core, grow):
+    """Both detectors, SIR growth and the dump cut on one (chunk x product) plane.
 
-    first = core[0] + (-(t0 + core[0])) % m
-    nb = max(0, min((core[1] - first + m - 1) // m, (values.shape[0] - first) // m))
-    if nb <= 0:
-        return np.empty(0)
-    v = values[first:first + nb * m].astype(np.float64).reshape(nb, m, -1)
-    ok = valid[first:first + nb * m].reshape(nb, m, -1).all(axis=1)
-    with np.errstate(all="ignore"):
-        ski = sk_estimator(v.sum(axis=1), (v * v).sum(axis=1), m, n, d)
-    return ski[ok]
+    The single-pass form of :func:`detect` + :func:`merge` (used by :func:`flag_scan`):
+    the plane carries the detection halo plus ``grow`` (the merge halo) rows on each
+    side, so the detections of the core rows +- ``grow`` are exact and the merge of
+    :func:`_merge_plane` sees exactly what it sees in the staged path.  Returns
+    (final uint8 (core rows, chan), SK histogram counts of the core rows or None).
+    """
+    prep = _prepare(planes, p, meta)
+    n = prep["values"].shape[0]
+    lo, hi = max(0, core[0] - grow), min(n, core[1] + grow)
+    det, hist = None, None
+    for detector in DETECTORS:
+        out, h = _detect_product(prep, p, detector, band, meta, t0, core, rows=(lo, hi))
+        det = out if det is None else det | out
+        hist = h if h is not None else hist
+    extra = np.zeros(det.shape, dtype=np.uint8)
+    if "flags" in planes:
+        extra[planes["flags"][lo:hi]] |= bits.INPUT
+    extra[:, meta["static"]] |= bits.STATIC
+    return _merge_plane(det, extra, band, (core[0] - lo, core[1] - lo)), hist
 
 
 def _assemble(parts, nprod):
@@ -306,6 +315,20 @@ def _assemble(parts, nprod):
 
 
 # -- dask -------------------------------------------------------------------------
+_LOCAL_SCHEDULERS = ("threads", "processes", "synchronous", "sync", "single-threaded")
+
+
+def _local_get(name):
+    """dask's get function for a local scheduler name."""
+    if name == "threads":
+        from dask.threaded import get
+    elif name == "processes":
+        from dask.multiprocessing import get
+    else:
+        from dask.local import get_sync as get
+    return get
+
+
 class _Scheduler:
     """dask compute options for the run config's ``scheduler`` and ``workers``."""
 
@@ -315,8 +338,10 @@ class _Scheduler:
         self.client = None
 
     def __enter__(self):
-        if self.name in ("threads", "processes", "synchronous", "sync", "single-threaded"):
-            self.kwargs = {"scheduler": self.name, "num_workers": self.workers}
+        if self.name in _LOCAL_SCHEDULERS:
+            # the get function itself: a scheduler *name* makes dask import
+            # dask.distributed to look for a default client (half a second per job)
+            self.kwargs = {"scheduler": _local_get(self.name), "num_workers": self.workers}
         elif "://" in self.name or ":" in self.name:
             try:
                 from distributed import Client
@@ -383,13 +408,15 @@ def _window_chunks(scan, rows, wanted):
     return max(1, min(int(wanted), int(budget // (2 * per_chunk))))
 
 
-def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
+def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None):
     """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
 
     Chunks go in windows of ``workers`` chunks: the driver reads each window's dumps (with
     halos) in one read, one window ahead in a reader thread, and sends each
-    (chunk x product) plane to the dask scheduler.  Returns the scan metadata used,
-    including the pre-pass noise sigmas (``sigma``).
+    (chunk x product) plane to the dask scheduler.  With ``grow`` (the merge halo) each
+    task runs both detectors and the merge (:func:`_flag_product`) on a halo widened by
+    ``grow``, and ``sink`` gets ``{"final": (mask, hist)}``.  Returns the scan metadata
+    used, including the pre-pass noise sigmas (``sigma``).
     """
     from concurrent.futures import ThreadPoolExecutor
 
@@ -398,6 +425,8 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
     if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
         meta["sigma"] = _noise_prepass(scan, band, meta, sched, what)
     halo = plan["halo"] if plan else detect_halo(band, scan)
+    if grow is not None:
+        halo += grow
     chunks = plan["chunks"] if plan else _chunks(scan.ntime, int(run["chunk_dumps"]))
     rows = max(c1 - c0 for c0, c1 in chunks) + 2 * halo
     windows = list(_windows(chunks, _window_chunks(scan, rows, sched.window)))
@@ -413,6 +442,12 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
             graph = []
             for c0, c1 in window:
                 a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
+                if grow is not None:
+                    parts = [dask.delayed(_flag_product)(sched.put(_planes(block, a - base, b - base, p)), p,
+                                                         band, meta, a, (c0 - a, c1 - a), grow)
+                             for p in range(scan.nprod)]
+                    graph.append([dask.delayed(_assemble)(parts, scan.nprod)])
+                    continue
                 preps = [dask.delayed(_prepare)(sched.put(_planes(block, a - base, b - base, p)), p, meta)
                          for p in range(scan.nprod)]
                 per_det = []
@@ -424,7 +459,7 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink):
             results = dask.compute(*graph, **sched.kwargs)
             del block
             for (c0, c1), per_det in zip(window, results):
-                sink(c0, c1, dict(zip(detectors, per_det)))
+                sink(c0, c1, dict(zip(["final"] if grow is not None else detectors, per_det)))
                 done += 1
                 if progress:
                     progress(done, len(chunks))
@@ -547,6 +582,7 @@ def _input_and_static(scan, a, b, meta):
 def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
     """Second pass: set the occupancy bit on channels flagged above ``limit`` over the scan."""
     cut = channel_cut(counts, ntime, limit)  # (chan, prod)
+    cut &= counts < ntime  # a channel flagged throughout gains nothing
     if not cut.any():
         return
     for c0 in range(0, ntime, chunk_dumps):
@@ -581,13 +617,13 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                     raise ScanError(pp, f"partial mask has shape {h['flags'].shape}, scan has {scan.shape}")
             with atomic_output(out_path) as tmp, h5py.File(tmp, "w") as f:
                 _create_mask_file(f, scan, chunk_dumps)
-                _write_attrs(f, band, band_source, partial_paths)
+                _write_attrs(f, band, band_source)
                 flags = f["flags"]
                 counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
                 chunks = _chunks(scan.ntime, chunk_dumps)
                 halo = merge_halo(band)
                 workers = max(1, int(run.get("workers") or 1))
-                local = "synchronous" if run.get("scheduler") == "synchronous" else "threads"
+                local = _local_get("synchronous" if run.get("scheduler") == "synchronous" else "threads")
                 done = 0
                 for window in _windows(chunks, max(2, 2 * workers)):
                     lo, hi = max(0, window[0][0] - halo), min(scan.ntime, window[-1][1] + halo)
@@ -626,7 +662,7 @@ def _copy_sk_diag(parts, f, meta, band):
     _write_sk_diag(f, np.zeros((len(meta["autos"]), len(SK_EDGES) - 1), dtype=np.int64), meta, band)
 
 
-def _write_attrs(f, band, band_source, partial_paths):
+def _write_attrs(f, band, band_source):
     for key, value in bit_attrs().items():
         f.attrs[key] = value
     f.attrs["bit_table"] = json.dumps([{"bit": b[0], "value": b[1], "name": b[2], "meaning": b[3]}
@@ -638,48 +674,55 @@ def _write_attrs(f, band, band_source, partial_paths):
 
 
 def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
-    """Both detectors and the merge in one call (tests, benchmarks, small jobs).
+    """Both detectors and the merge in one pass over the scan (no partial masks).
 
-    The detectors run side by side in one dask graph; their partial masks are kept in
-    temporary files beside ``out_path`` and removed afterwards.
+    Gives the same mask file as :func:`detect` for each detector followed by
+    :func:`merge` (tests/test_engine.py checks it), in one read of the scan: each
+    (chunk x product) task runs :func:`_flag_product` on its chunk with the detection
+    halo widened by the merge halo, and the driver writes the final mask (in a writer
+    thread, while the next window is flagged).  The per-channel occupancy cut is then
+    applied in a second pass over the finished mask, as in :func:`merge`.
     """
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    partials = [out_path.with_name(f".{out_path.name}.{det}.partial.h5") for det in DETECTORS]
-    try:
-        _detect_both(scan_path, partials, band, run, progress)
-        merge(scan_path, partials, out_path, band, run, band_source=band_source)
-    finally:
-        for p in partials:
-            p.unlink(missing_ok=True)
+    _flag_one_pass(scan_path, out_path, band, run, band_source, progress)
 
 
 @_fail_clean
-def _detect_both(scan_path, partials, band, run, progress):
+def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
+    from concurrent.futures import ThreadPoolExecutor
+
     _check_run(run)
+    chunk_dumps = int(run["chunk_dumps"])
     with open_scan(scan_path, run.get("layout")) as scan, _Scheduler(run) as sched:
         _check_band_matches(scan, band)
-        meta = _meta(scan, band)
-        files = [h5py.File(p, "w") for p in partials]
-        try:
-            for det, f in zip(DETECTORS, files):
-                _create_mask_file(f, scan, int(run["chunk_dumps"]))
-                f.attrs["detector"] = det
+        with atomic_output(out_path) as tmp, h5py.File(tmp, "w") as f:
+            _create_mask_file(f, scan, chunk_dumps)
+            _write_attrs(f, band, band_source)
+            flags = f["flags"]
+            counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
             hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
+            pending = []
 
-            def sink(c0, c1, res):
-                for det, f in zip(DETECTORS, files):
-                    out, h = res[det]
-                    f["flags"][c0:c1] = out
-                    if det == "sk":
-                        hist[...] += h
+            def write(c0, c1, out):
+                flags[c0:c1] = out
+                counts[...] += (out != 0).sum(axis=0)
 
-            used = _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink)
-            _write_sk_diag(files[0], hist, meta, band)
-            _write_noise(files[1], used)
-        finally:
-            for f in files:
-                f.close()
+            with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
+                def sink(c0, c1, res):
+                    out, h = res["final"]
+                    hist[...] += h
+                    while pending and pending[0].done():
+                        pending.pop(0).result()  # re-raise a failed write at once
+                    pending.append(writer.submit(write, c0, c1, out))
+
+                used = _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink,
+                                      grow=merge_halo(band))
+                for fut in pending:
+                    fut.result()
+            _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+            _write_sk_diag(f, hist, used, band)
+            _write_noise(f, used)
 
 
 __all__ = ["plan_scan", "detect", "merge", "flag_scan", "detect_halo", "merge_halo", "noise_windows",
