@@ -212,3 +212,35 @@ def test_other_layout_axis_order(tmp_path):
     flag_scan(other, tmp_path / "b.h5", BAND, run_settings({"chunk_dumps": 128, "layout": layout}))
     with h5py.File(tmp_path / "b.h5", "r") as f:
         np.testing.assert_array_equal(f["flags"][()], a)
+
+
+@pytest.mark.parametrize("dtype,auto", [("float32", True), ("float64", True), ("complex64", True),
+                                        ("complex64", False), ("complex128", False), ("float16", True)])
+def test_prepare_equals_numpy_definition(dtype, auto):
+    # the one-pass kernel against masks.amplitude / masks.invalid_mask and the OR of
+    # the static and input flags written out in numpy (DESIGN.md 2.2, bits 0-2)
+    from rfisieve.engine import _prepare
+    from rfisieve.masks import amplitude, invalid_mask
+
+    rng = np.random.default_rng(3)
+    block = rng.normal(1.0, 0.5, size=(40, 9, 3))
+    if np.dtype(dtype).kind == "c":
+        block = block + 1j * rng.normal(0.0, 0.5, size=block.shape)
+    block = block.astype(dtype)
+    block[3, 2, 1] = np.nan
+    block[4, 5, 1] = np.inf
+    block[5, 6, 1] = 0
+    block[6, 7, 1] = -1
+    flags = rng.random(block.shape) < 0.05
+    static = np.zeros(9, dtype=bool)
+    static[4] = True
+    planes = {"data": block[:, :, 1], "flags": flags[:, :, 1]}
+    meta = {"autos": [auto] * 3, "static": static}
+    got = _prepare(planes, 1, meta)
+    values = amplitude(block[:, :, 1], auto)
+    invalid = invalid_mask(values, auto)
+    np.testing.assert_array_equal(got["values"], values)
+    np.testing.assert_array_equal(got["invalid"], invalid)
+    np.testing.assert_array_equal(got["excluded"], invalid | static[None, :] | flags[:, :, 1])
+    del planes["flags"]
+    np.testing.assert_array_equal(_prepare(planes, 1, meta)["excluded"], invalid | static[None, :])

@@ -232,11 +232,37 @@ def _prior(planes, meta, values, auto):
     return invalid, excluded
 
 
+_KERNEL_DTYPES = tuple(np.dtype(t) for t in ("float32", "float64", "complex64", "complex128"))
+
+
 def _prepare(planes, p, meta):
-    """What both detectors need of one (chunk x product) plane, computed once."""
-    auto = meta["autos"][p]
-    values = amplitude(planes["data"], auto)
-    invalid, excluded = _prior(planes, meta, values, auto)
+    """What both detectors need of one (chunk x product) plane, computed once.
+
+    The one-pass kernel gives what :func:`_prior` gives (tests/test_engine.py checks it).
+    """
+    from .kernels_masks import prepare_plane
+
+    auto = bool(meta["autos"][p])
+    data = planes["data"]
+    if data.dtype not in _KERNEL_DTYPES or (data.dtype.kind == "c" and not auto):
+        # float16, or |V| of cross products (numba's complex abs differs from numpy's
+        # hypotf in the last bit): the numpy definition
+        values = amplitude(data, auto)
+        invalid, excluded = _prior(planes, meta, values, auto)
+        return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
+    shape = data.shape
+    values = np.empty(shape, np.float32)
+    invalid = np.empty(shape, np.bool_)
+    excluded = np.empty(shape, np.bool_)
+    flags = planes.get("flags")
+    prepare_plane(data, auto, np.ascontiguousarray(meta["static"], dtype=np.bool_),
+                  np.zeros((1, 1), np.bool_) if flags is None else np.asarray(flags, dtype=np.bool_),
+                  flags is not None, values, invalid, excluded)
+    if "s2" in planes and auto:
+        s2 = planes["s2"]
+        bad = ~np.isfinite(s2) | (s2 <= 0)
+        invalid |= bad
+        excluded |= bad
     return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
 
 
