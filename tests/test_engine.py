@@ -244,3 +244,35 @@ def test_prepare_equals_numpy_definition(dtype, auto):
     np.testing.assert_array_equal(got["excluded"], invalid | static[None, :] | flags[:, :, 1])
     del planes["flags"]
     np.testing.assert_array_equal(_prepare(planes, 1, meta)["excluded"], invalid | static[None, :])
+
+
+@pytest.mark.parametrize("limit,eta", [(0.3, 0.2), (1.0, 0.2), (0.5, 0.0)])
+def test_merge_plane_equals_numpy_definition(limit, eta):
+    # the compiled merge against the bit rules of DESIGN.md 2.2 written out in numpy:
+    # growth (bit 5) only where the SIR operator adds to the detectors' flags, the dump
+    # cut (bit 6) only on samples no other cause flagged
+    from rfisieve.engine import _merge_plane
+    from rfisieve.masks import dump_cut
+    from rfisieve.morphology import sir_grow
+
+    rng = np.random.default_rng(8)
+    det = np.zeros((60, 24), np.uint8)
+    det[rng.random(det.shape) < 0.15] |= bits.SK
+    det[rng.random(det.shape) < 0.15] |= bits.SUMTHRESHOLD
+    det[20:23, :20] |= bits.SUMTHRESHOLD
+    det[rng.random(det.shape) < 0.02] |= bits.INVALID
+    extra = np.zeros_like(det)
+    extra[:, 5] |= bits.STATIC
+    extra[rng.random(det.shape) < 0.03] |= bits.INPUT
+    band = band_settings({"band": "L", "growth": {"eta": eta, "reach_time": 6, "reach_freq": 3},
+                          "cuts": {"dump_limit": limit}})
+    core = (7, 50)
+    want = det | extra
+    detected = (det & bits.DETECTED) != 0
+    if eta > 0:
+        grown = sir_grow(detected, eta, reach_time=6, reach_freq=3)
+        want[grown & ~detected] |= bits.MORPHOLOGY
+    want = want[core[0]:core[1]]
+    cut = dump_cut(want != 0, limit)
+    want[cut[:, None] & (want == 0)] = bits.OCCUPANCY
+    np.testing.assert_array_equal(_merge_plane(det, extra, band, core), want)

@@ -20,6 +20,14 @@ flags with the bounded-reach SIR operator over chunks with its own halo
 (:func:`merge_halo`: reach + 1 dumps, exact), and the per-channel occupancy cut needs
 the whole scan's counts, so it is applied in a second pass over the finished mask.
 
+Two ways through
+----------------
+The workflow runs the stages as separate jobs: :func:`detect` once per detector
+(each writes a partial mask), then :func:`merge`.  :func:`flag_scan` does the same
+work in one pass: each (chunk x product) task runs both detectors and the merge on a
+halo widened by the merge halo (``detect_halo + merge_halo`` dumps), so no partial
+mask is written or read back; the two give identical masks (tests/test_engine.py).
+
 Parallelism
 -----------
 Chunks go in windows of ``workers`` chunks.  The driver reads each window (with halos)
@@ -34,6 +42,7 @@ the scan's length.
 
 import json
 import time as _time
+from functools import partial
 from pathlib import Path
 
 import dask
@@ -43,7 +52,7 @@ import numpy as np
 from . import __version__, bits
 from .errors import RfisieveError, ScanError
 from .io import atomic_output, file_identity, open_scan
-from .masks import amplitude, bit_attrs, channel_cut, dump_cut, invalid_mask, static_channels
+from .masks import amplitude, bit_attrs, channel_cut, invalid_mask, static_channels
 
 DETECTORS = ("sk", "sumthreshold")
 
@@ -207,10 +216,11 @@ def _noise_task(planes, band, meta, p, t0):
 def _noise_prepass(scan, band, meta, sched, what):
     """Per-product SumThreshold noise sigma: the median over the pre-pass windows."""
     tasks = []
+    task = dask.delayed(partial(_noise_task, band=band, meta=meta))
     for a, b in noise_windows(scan.ntime):
         block = scan.read(a, b, what)
         for p in range(scan.nprod):
-            tasks.append(dask.delayed(_noise_task)(sched.put(_planes(block, 0, b - a, p)), band, meta, p, a))
+            tasks.append(task(sched.put(_planes(block, 0, b - a, p)), p=p, t0=a))
     values = np.array(dask.compute(*tasks, **sched.kwargs), dtype=np.float64)
     values = values.reshape(-1, scan.nprod).T
     sigmas = []
@@ -458,6 +468,10 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
     windows = list(_windows(chunks, _window_chunks(scan, rows, sched.window)))
     spans = [(max(0, w[0][0] - halo), min(scan.ntime, w[-1][1] + halo)) for w in windows]
     done = 0
+    # band and meta bound once: dask would walk these nested dicts for every task
+    flag_task = dask.delayed(partial(_flag_product, band=band, meta=meta))
+    prep_task = dask.delayed(partial(_prepare, meta=meta))
+    det_task = dask.delayed(partial(_detect_product, band=band, meta=meta))
     with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
         ahead = reader.submit(scan.read, *spans[0], what) if windows else None
         for k, window in enumerate(windows):
@@ -469,16 +483,16 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
             for c0, c1 in window:
                 a, b = max(0, c0 - halo), min(scan.ntime, c1 + halo)
                 if grow is not None:
-                    parts = [dask.delayed(_flag_product)(sched.put(_planes(block, a - base, b - base, p)), p,
-                                                         band, meta, a, (c0 - a, c1 - a), grow)
+                    parts = [flag_task(sched.put(_planes(block, a - base, b - base, p)), p=p,
+                                       t0=a, core=(c0 - a, c1 - a), grow=grow)
                              for p in range(scan.nprod)]
                     graph.append([dask.delayed(_assemble)(parts, scan.nprod)])
                     continue
-                preps = [dask.delayed(_prepare)(sched.put(_planes(block, a - base, b - base, p)), p, meta)
+                preps = [prep_task(sched.put(_planes(block, a - base, b - base, p)), p=p)
                          for p in range(scan.nprod)]
                 per_det = []
                 for det in detectors:
-                    parts = [dask.delayed(_detect_product)(preps[p], p, det, band, meta, a, (c0 - a, c1 - a))
+                    parts = [det_task(preps[p], p=p, detector=det, t0=a, core=(c0 - a, c1 - a))
                              for p in range(scan.nprod)]
                     per_det.append(dask.delayed(_assemble)(parts, scan.nprod))
                 graph.append(per_det)
@@ -575,21 +589,23 @@ def _merge_plane(det, extra, band, core):
     ``det`` holds the partial masks' bits OR-ed, ``extra`` the input and static bits;
     returns the uint8 (core rows, chan) plane with growth (bit 5) and dump cuts (bit 6).
     """
+    from .kernels_masks import merge_bits
     from .morphology import sir_grow
 
     g = band["growth"]
-    out = det | extra
-    if g["enabled"] and g["eta"] > 0:
-        detected = (det & bits.DETECTED) != 0
-        grown = sir_grow(detected, g["eta"], time=g["time"], freq=g["freq"],
+    det = np.ascontiguousarray(det, dtype=np.uint8)
+    extra = np.ascontiguousarray(extra, dtype=np.uint8)
+    grown = np.zeros((1, 1), np.bool_)
+    use_grown = bool(g["enabled"] and g["eta"] > 0)
+    if use_grown:
+        grown = sir_grow((det & bits.DETECTED) != 0, g["eta"], time=g["time"], freq=g["freq"],
                          reach_time=g.get("reach_time"), reach_freq=g.get("reach_freq"))
-        out[grown & ~detected] |= bits.MORPHOLOGY
-    out = out[core[0]:core[1]]
-    limit = band["cuts"]["dump_limit"]
-    if limit < 1:
-        cut = dump_cut(out != 0, limit)
-        # the occupancy bit marks what the cut adds: the samples no other cause flagged
-        out[cut[:, None] & (out == 0)] = bits.OCCUPANCY
+    out = np.empty((core[1] - core[0], det.shape[1]), np.uint8)
+    # det | extra, the morphology bit where growth adds, and the dump cut (as
+    # masks.dump_cut: flagged fraction over channels > limit), whose occupancy bit
+    # marks what the cut adds: the samples no other cause flagged
+    merge_bits(det, extra, grown, use_grown, core[0], core[1], bits.DETECTED, bits.MORPHOLOGY,
+               float(band["cuts"]["dump_limit"]), bits.OCCUPANCY, out)
     return out
 
 

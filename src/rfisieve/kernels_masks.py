@@ -31,3 +31,26 @@ def prepare_plane(data, auto, static, flags, has_flags, values, invalid, exclude
             if has_flags:
                 ex = ex or flags[t, c]
             excluded[t, c] = ex
+
+
+@njit(nogil=True, cache=True)
+def merge_bits(det, extra, grown, use_grown, r0, r1, detected_bits, grown_bit, limit, cut_bit, out):
+    """The merge of one plane's rows r0:r1 into ``out``: det | extra, plus ``grown_bit``
+    where ``grown`` (when ``use_grown``) adds to samples without a ``detected_bits``
+    bit; then, when ``limit`` < 1, ``cut_bit`` on the still unflagged samples of each
+    row whose flagged fraction over channels exceeds ``limit``."""
+    m = det.shape[1]
+    for t in range(r0, r1):
+        count = 0
+        for c in range(m):
+            d = det[t, c]
+            v = d | extra[t, c]
+            if use_grown and grown[t, c] and (d & detected_bits) == 0:
+                v |= grown_bit
+            out[t - r0, c] = v
+            if v != 0:
+                count += 1
+        if limit < 1 and count / m > limit:
+            for c in range(m):
+                if out[t - r0, c] == 0:
+                    out[t - r0, c] = cut_bit
