@@ -243,7 +243,8 @@ def coarse_smooth(values, exclude, sigma_t, sigma_f, cell=None, work=None, t0=0)
     if x.size == 0:
         return out
     G = _coarse_grid(x, ex, ex, sigma_t, sigma_f, ct, cf, {} if work is None else work, t0)
-    kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, np.zeros((1, 1), np.uint8), out, False)
+    kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, np.zeros((1, 1), np.uint8), out, False,
+                          np.empty((G.shape[0], x.shape[1])))
     return out
 
 
@@ -252,7 +253,8 @@ def coarse_residual(x, ex1, ex2, lev0, sigma_t, sigma_f, out, work, t0=0):
     lev0 is invalid, into out (internal; x float32 C-contiguous, ex1 ex2 bool)."""
     ct, cf = cell_size(sigma_t), cell_size(sigma_f)
     G = _coarse_grid(x, ex1, ex2, sigma_t, sigma_f, ct, cf, work, t0)
-    kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, lev0, out, True)
+    H = _buf(work, "interp", np.float64, (G.shape[0], x.shape[1]))
+    kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, lev0, out, True, H)
 
 
 def _as_plane(values):

@@ -15,7 +15,7 @@ Loop shapes:
   one sweep down the dumps with a ring buffer of levels, so the plane is read
   about once per direction instead of once per window;
 * along axis 1 (channel, the contiguous axis): SumThreshold gathers tiles of
-  dumps transposed (8 x 8 blocks) into a cache-resident buffer and runs all
+  dumps transposed (8 dumps at a time) into a cache-resident buffer and runs all
   window passes on it in one sweep as along time (:func:`st_freq`,
   :func:`_tile_sweep`); the frequency pass takes the time pass's detections
   as flagged;
@@ -489,36 +489,36 @@ def _gather_one(x, lev0, det, cols, ident, merge, t, b, k, v, lv):
 @njit(**_opts)
 def _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv):
     """Tile gather: v[k, b], lv[k, b] from dump t0 + b, channel cols[k] (k when
-    ident); 8 x 8 blocks (in L1) where whole, zero lanes b >= nb."""
+    ident); zero lanes b >= nb.  Groups of 8 dumps are swept along the channels
+    (8 rows of each plane in L1, every cache line read once; rows of the
+    float32 plane are 4 KiB apart, so more than 8 of them at once would evict
+    each other from their one L1 set)."""
     B = v.shape[1]
-    L8 = L // 8 * 8
-    n8 = nb // 8 * 8
     zero = np.uint8(0)
     inv = np.uint8(LEV_INVALID)
     fz = np.float32(0.0)
     du = det.view(np.uint8)
     mflag = np.uint8(1 if merge else 0)
-    if ident:
-        for k0 in range(0, L8, 8):
-            for b0 in range(0, n8, 8):
+    for b0 in range(0, nb, 8):
+        bw = min(8, nb - b0)
+        if bw == 8:
+            for k in range(L):
+                c = k if ident else cols[k]
                 for i in range(8):
                     t = t0 + b0 + i
-                    for jj in range(8):
-                        c = k0 + jj
-                        a = lev0[t, c]
-                        a = a | (du[t, c] & mflag & np.uint8(a == zero))   # branch-free
-                        lv[c, b0 + i] = a
-                        v[c, b0 + i] = fz if a == inv else x[t, c]
-        for k in range(L8, L):
-            for b in range(n8):
-                _gather_one(x, lev0, det, cols, ident, merge, t0 + b, b, k, v, lv)
-    else:
-        for b in range(n8):
+                    a = lev0[t, c]
+                    a = a | (du[t, c] & mflag & np.uint8(a == zero))   # branch-free
+                    lv[k, b0 + i] = a
+                    v[k, b0 + i] = fz if a == inv else x[t, c]
+        else:
             for k in range(L):
-                _gather_one(x, lev0, det, cols, ident, merge, t0 + b, b, k, v, lv)
-    for b in range(n8, nb):
-        for k in range(L):
-            _gather_one(x, lev0, det, cols, ident, merge, t0 + b, b, k, v, lv)
+                c = k if ident else cols[k]
+                for i in range(bw):
+                    t = t0 + b0 + i
+                    a = lev0[t, c]
+                    a = a | (du[t, c] & mflag & np.uint8(a == zero))
+                    lv[k, b0 + i] = a
+                    v[k, b0 + i] = fz if a == inv else x[t, c]
     for k in range(L):
         for b in range(nb, B):
             lv[k, b] = zero
@@ -563,7 +563,7 @@ def st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge, B):
     :func:`st_time_pipe`, on the levels lev0 joined by det when ``merge`` (the
     samples det marks enter as flagged: the time pass's detections), then
     det |= d; when not ``merge``, det = d.  Tiles of B dumps are gathered
-    (transposed, in 8 x 8 blocks) over the channel list ``cols`` (channels not
+    (transposed, 8 dumps at a time) over the channel list ``cols`` (channels not
     wholly invalid) into a cache-resident buffer and run in one sweep by
     :func:`_tile_sweep`; dumps with ``partial`` True are redone line by line."""
     n, m = x.shape
@@ -748,16 +748,15 @@ def coarse_solve(mom, radii, cf, out):
 
 
 @njit(**_opts)
-def coarse_interp(G, ct, cf, off, x, lev0, out, resid):
+def coarse_interp(G, ct, cf, off, x, lev0, out, resid, H):
     """Bilinear interpolation of the coarse grid G (nodes at dump i ct - off + (ct - 1)/2,
     channel j cf + (cf - 1)/2; held constant beyond the outer nodes along time,
     extrapolated linearly along channels) to the full plane, rounded to float32
-    as B: first along channels for every node row (H, float64), then along time
-    per dump.  resid False: out = B.  resid True: out = x / B - 1 (float32), 0
-    where lev0 is invalid."""
+    as B: first along channels for every node row (into the float64 scratch H,
+    shape (G.shape[0], out.shape[1])), then along time per dump.  resid False:
+    out = B.  resid True: out = x / B - 1 (float32), 0 where lev0 is invalid."""
     n, m = out.shape
     ntc, nfc = G.shape
-    H = np.empty((ntc, m))
     hf = 0.5 * (cf - 1)
     kk = np.zeros(m, np.int64)
     ff = np.zeros(m)
@@ -967,15 +966,41 @@ def init_flagger(x, inv, has_inv, flg, has_flg, lev, ex):
 def taps_axis0(a, taps, out, lo, hi):
     """out[t] = sum_k taps[k] a[t - R + k] along axis 0 for rows lo <= t < hi
     (R = len(taps) // 2; the caller keeps t - R >= 0 and t + R < n): the
-    interior of a box cascade as one pass of its 2 R + 1 taps."""
+    interior of a box cascade as one pass of its 2 R + 1 taps.  The products
+    are added in order of k (((w0 a0 + w1 a1) + w2 a2) + ...), three taps per
+    sweep of the output row."""
     n, m = a.shape
-    R = taps.shape[0] // 2
+    T = taps.shape[0]
+    R = T // 2
     for t in range(lo, hi):
+        b = t - R
         w0 = taps[0]
-        for c in range(m):
-            out[t, c] = w0 * a[t - R, c]
-        for k in range(1, taps.shape[0]):
-            w = taps[k]
-            tk = t - R + k
+        if T >= 3:
+            w1 = taps[1]
+            w2 = taps[2]
             for c in range(m):
-                out[t, c] += w * a[tk, c]
+                out[t, c] = (w0 * a[b, c] + w1 * a[b + 1, c]) + w2 * a[b + 2, c]
+            k = 3
+        elif T == 2:
+            w1 = taps[1]
+            for c in range(m):
+                out[t, c] = w0 * a[b, c] + w1 * a[b + 1, c]
+            k = 2
+        else:
+            for c in range(m):
+                out[t, c] = w0 * a[b, c]
+            k = 1
+        while k + 3 <= T:
+            u0 = taps[k]
+            u1 = taps[k + 1]
+            u2 = taps[k + 2]
+            r0 = b + k
+            for c in range(m):
+                out[t, c] = ((out[t, c] + u0 * a[r0, c]) + u1 * a[r0 + 1, c]) + u2 * a[r0 + 2, c]
+            k += 3
+        while k < T:
+            u0 = taps[k]
+            r0 = b + k
+            for c in range(m):
+                out[t, c] += u0 * a[r0, c]
+            k += 1

@@ -20,10 +20,12 @@ Conventions shared by every function here:
 """
 
 
+import threading
+
 import numpy as np
 
 from . import kernels
-from .background import cell_size, coarse_reach, coarse_residual, robust_sigma2
+from .background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo"]
@@ -187,8 +189,10 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     Implementation: the residual is formed in the same pass as the background's
     interpolation; SumThreshold along time runs all window passes in one sweep
     down the dumps (no transpose), along frequency on cache-resident tiles of
-    dumps; buffers are reused between iterations.  Compiled with ``nogil`` (the
-    median too): threads flag planes in parallel.
+    dumps; buffers are reused between iterations and, per thread, between calls
+    on planes of one shape (about 15 bytes per sample of the last plane stay
+    allocated per thread).  Compiled with ``nogil`` (the median too): threads
+    flag planes in parallel.
 
     Parameters
     ----------
@@ -269,6 +273,19 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
     return _flag(values, mask, invalid=invalid, t0=t0, **s)[1]
 
 
+_local = threading.local()
+
+
+def _scratch():
+    """This thread's scratch buffers of the flagger, reused between calls of the same
+    plane shape (fresh pages cost a page fault each on first touch; the engine calls
+    the flagger once per chunk and product from a few threads)."""
+    work = getattr(_local, "work", None)
+    if work is None:
+        work = _local.work = {}
+    return work
+
+
 def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_freq=32,
           iterations=3, first_factor=4.0, background_time=15.0, background_freq=5.0,
           invalid=None, sigma=None, t0=0):
@@ -283,31 +300,35 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
     for name, a in (("invalid", invalid), ("mask", mask)):
         if a is not None and np.shape(a) != (n, m):
             raise ValueError("%s must have the shape of values %r" % (name, (n, m)))
-    det = np.empty((n, m), np.bool_)
     if n == 0 or m == 0:
         return np.zeros((n, m), np.bool_), float("nan")
     if sigma is not None:
         sigma = float(sigma)
         if not sigma > 0 or not np.isfinite(sigma):
             raise ValueError("sigma must be a positive finite number, not %r" % (sigma,))
-    lev0 = np.empty((n, m), np.uint8)
-    base_ex = np.empty((n, m), np.bool_)     # input-flagged or invalid
+    work = _scratch()
+    lev0 = _buf(work, "lev0", np.uint8, (n, m))
+    base_ex = _buf(work, "base_ex", np.bool_, (n, m))     # input-flagged or invalid
     rowbad, colbad = kernels.init_flagger(x, inv, invalid is not None, flagged, mask is not None,
                                           lev0, base_ex)
     some_dump_gone = bool(np.any(rowbad == m))   # the time pass does not write those dumps
-    prev = np.zeros((n, m), np.bool_)        # detections steering the next fit
-    work = {}
-    r = np.empty((n, m), np.float32)
+    prev = _buf(work, "prev", np.bool_, (n, m))  # detections steering the next fit
+    prev.fill(False)
+    det = _buf(work, "det", np.bool_, (n, m))
+    r = _buf(work, "resid", np.float32, (n, m))
     np_t = _npass(max_window_time)
     np_f = _npass(max_window_freq)
     bt, bf = float(background_time), float(background_freq)
     sig = float("nan")
-    for factor in threshold_factors(iterations, first_factor):
+    factors = threshold_factors(iterations, first_factor)
+    for i, factor in enumerate(factors):
         coarse_residual(x, base_ex, prev, lev0, bt, bf, r, work, int(t0))
         sig = robust_sigma2(r, base_ex, prev) if sigma is None else sigma
         if not np.isfinite(sig):
             return np.zeros((n, m), np.bool_), sig
         c1 = float(chi1) * factor * sig
+        if i == len(factors) - 1:
+            det = np.empty((n, m), np.bool_)     # the result: not a reused buffer
         if some_dump_gone:
             det.fill(False)
         _st_time(r, lev0, rowbad, colbad, c1, float(rho), np_t, det, False)
