@@ -193,3 +193,129 @@ def test_sir_reach_rejects_bad_reach():
         sir_operator(np.zeros(5, bool), 0.2, max_reach=-1)
     with pytest.raises(ValueError):
         sir_operator(np.zeros(5, bool), 0.2, max_reach=2.5)
+
+
+# ------------------------------------------------ fused kernel of sir_grow (both axes)
+def _grow_by_definition(m, eta, rt, rf, time=True, freq=True):
+    """sir_grow from brute_sir line by line: input | along time | along frequency."""
+    out = m.copy()
+    if time:
+        for c in range(m.shape[1]):
+            out[:, c] |= brute_sir(m[:, c], eta, rt)
+    if freq:
+        for r in range(m.shape[0]):
+            out[r] |= brute_sir(m[r], eta, rf)
+    return out
+
+
+def _grow_by_operator(m, eta, rt, rf, time=True, freq=True):
+    """sir_grow as composed from sir_operator (the per-line deque kernels)."""
+    out = m.copy()
+    if time:
+        out |= sir_operator(m, eta, axis=0, max_reach=rt)
+    if freq:
+        out |= sir_operator(m, eta, axis=1, max_reach=rf)
+    return out
+
+
+@st.composite
+def _run_masks(draw):
+    """2-D masks built from runs (lengths 1 .. 40, along time or along channels),
+    with scattered samples flipped: lines, bursts and gaps as in real flags."""
+    n = draw(st.integers(1, 36))
+    m = draw(st.integers(1, 36))
+    runs = draw(st.lists(st.integers(1, 40), min_size=1, max_size=60))
+    v = draw(st.booleans())
+    flat = []
+    for length in runs:
+        flat.extend([v] * length)
+        v = not v
+    flat = (flat * (n * m // len(flat) + 1))[:n * m]
+    f = np.array(flat, bool).reshape((n, m), order=draw(st.sampled_from("CF")))
+    flips = draw(hnp.arrays(np.bool_, (n, m), elements=st.booleans()))
+    if draw(st.booleans()):
+        f ^= flips & draw(hnp.arrays(np.bool_, (n, m), elements=st.booleans()))
+    return f
+
+
+_reaches = st.one_of(st.none(), st.integers(0, 6), st.integers(0, 80))
+
+
+@hsettings(max_examples=250, deadline=None)
+@given(_run_masks(), st.integers(0, 1000).map(lambda i: i / 1000), _reaches, _reaches)
+def test_sir_grow_fused_equals_definition(f, eta, rt, rf):
+    # the fused kernel (rfisieve.kernels_morph.sir_grow_reach with its candidate
+    # skip) against the definition along each axis, OR-ed with the input
+    np.testing.assert_array_equal(sir_grow(f, eta, reach_time=rt, reach_freq=rf),
+                                  _grow_by_definition(f, eta, rt, rf))
+
+
+@hsettings(max_examples=150, deadline=None)
+@given(_run_masks(), st.floats(0.0, 1.0), _reaches, _reaches, st.booleans(), st.booleans())
+def test_sir_grow_fused_bit_identical_to_operator(f, eta, rt, rf, time, freq):
+    # any float eta (near-ties of the 1e-9 tolerance included): the same bits as
+    # composing sir_operator, which the fused kernel replaces
+    np.testing.assert_array_equal(sir_grow(f, eta, time=time, freq=freq, reach_time=rt, reach_freq=rf),
+                                  _grow_by_operator(f, eta, rt, rf, time, freq))
+
+
+def test_sir_grow_fused_planes():
+    # larger planes: dense and sparse dumps (vectorised and one-by-one decisions),
+    # lines, bursts and gaps; compared with sir_operator composed
+    rng = np.random.default_rng(5)
+    n, m = 150, 130
+    f = rng.random((n, m)) < 0.01
+    f[:, 7] = True                       # a channel flagged throughout
+    f[40, :] = True                      # a whole dump
+    for s in range(10, 140, 9):          # an intermittent emitter: 6 on, 3 off
+        f[s:s + 6, 20] = True
+    f[60:75, 50:54] = True               # a burst
+    f[90:, 100:] = rng.random((60, 30)) < 0.5   # a dense corner
+    for eta in (0.05, 0.1, 0.2, 0.3, 0.5, 0.9, 1.0):
+        for rt, rf in ((16, 4), (1, 1), (8, 16), (64, 64), (65, 3), (0, 0), (None, 4), (16, None)):
+            np.testing.assert_array_equal(sir_grow(f, eta, reach_time=rt, reach_freq=rf),
+                                          _grow_by_operator(f, eta, rt, rf))
+
+
+def test_sir_grow_tolerance_ties_and_skip_threshold():
+    from rfisieve.morphology import _skip_threshold
+    # eta = 0.1, R = 16: an interval of L samples needs ceil(0.9 L - 1e-9)
+    # flagged ones; a clean sample needs L >= 10, so >= 9 flagged ones within 16
+    # (from the definition); R = 4 adds nothing (floor(eta (R + 1)) = 0)
+    assert _skip_threshold(0.1, 16, 2082) == 9
+    assert _skip_threshold(0.1, 4, 1024) == -1
+    assert _skip_threshold(0.0, 16, 100) == -1       # eta = 0: the input
+    assert _skip_threshold(1.0, 3, 100) == 0         # eta = 1: everything
+    # (1 - eta) L within the float64 error bound of an integer + 1e-9: no skip
+    # (every clean sample is decided), results still those of sir_operator
+    eta = 1.0 - (3.0 + 1e-9) / 4.0
+    assert _skip_threshold(eta, 4, 50) == 0
+    rng = np.random.default_rng(6)
+    f = rng.random((40, 50)) < 0.6
+    np.testing.assert_array_equal(sir_grow(f, eta, reach_time=4, reach_freq=4),
+                                  _grow_by_operator(f, eta, 4, 4))
+
+
+def test_sir_grow_input_forms():
+    rng = np.random.default_rng(7)
+    f = rng.random((60, 40)) < 0.3
+    ref = _grow_by_operator(f, 0.2, 16, 4)
+    # non-contiguous and non-bool inputs give the same result, C-contiguous bool out
+    np.testing.assert_array_equal(sir_grow(np.asfortranarray(f), 0.2, reach_time=16, reach_freq=4), ref)
+    g = sir_grow(f.T.copy().T, 0.2, reach_time=16, reach_freq=4)
+    assert g.dtype == np.bool_ and g.flags.c_contiguous
+    np.testing.assert_array_equal(g, ref)
+    np.testing.assert_array_equal(sir_grow(f.astype(np.uint8) * 7, 0.2, reach_time=16, reach_freq=4), ref)
+    v = f[::2, ::3]
+    np.testing.assert_array_equal(sir_grow(v, 0.2, reach_time=16, reach_freq=4), _grow_by_operator(v, 0.2, 16, 4))
+    # empty and 1-D masks
+    for shape in ((0, 5), (5, 0), (0, 0)):
+        assert sir_grow(np.zeros(shape, bool), 0.2, reach_time=16, reach_freq=4).shape == shape
+    line = rng.random(30) < 0.4
+    np.testing.assert_array_equal(sir_grow(line, 0.3, reach_time=2, reach_freq=5),
+                                  line | sir_operator(line, 0.3, max_reach=2) | sir_operator(line, 0.3, max_reach=5))
+    import pytest
+    with pytest.raises(ValueError):
+        sir_grow(f, 1.5, reach_time=16)
+    with pytest.raises(ValueError):
+        sir_grow(f, 0.2, reach_freq=-1)

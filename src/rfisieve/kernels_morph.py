@@ -1,10 +1,25 @@
-"""Compiled (numba) inner loop of the bounded-reach SIR operator.
+"""Compiled (numba) inner loops of the bounded-reach SIR operator.
 
-Works on C-contiguous 2-D bool planes and runs along axis 1 (the contiguous
-axis); :mod:`rfisieve.morphology` transposes for the time axis.  Compiled with
+Work on C-contiguous 2-D bool planes ``(time, channel)``.  Compiled with
 ``nogil=True`` (dask threads run in parallel) and ``cache=True``.  The public,
-documented entry point is :func:`rfisieve.morphology.sir_operator`; the function
-here checks nothing and overwrites its output argument.
+documented entry points are :func:`rfisieve.morphology.sir_operator` and
+:func:`rfisieve.morphology.sir_grow`; the functions here check nothing and
+overwrite their output arguments.
+
+* :func:`sir_rows_reach`: one direction along axis 1 (the contiguous axis) with
+  monotonic deques, every sample decided; :func:`rfisieve.morphology.sir_operator`
+  transposes for the time axis.
+* :func:`sir_grow_reach`: both directions of :func:`rfisieve.morphology.sir_grow`
+  in one sweep down the dumps, OR-ed into the output, without transposes.  Only
+  *candidates* need deciding (dumps with many decide every channel, vectorised):
+  clean samples with at least ``k`` flagged samples
+  within the reach (a running count per channel along time, a prefix count per
+  dump along frequency).  A flagged sample is always in the output, and
+  :func:`rfisieve.morphology._skip_threshold` gives the least ``k`` for which no
+  clean sample with fewer flagged neighbours can be added.  A candidate is
+  decided from the same prefix values W(k) = C(k) - (1 - eta) k as in
+  :func:`sir_rows_reach` (C(k) the number of flagged samples before k in the
+  whole line, kept as an exact integer), so each decision is bit-identical.
 """
 
 import numpy as np
@@ -68,3 +83,186 @@ def sir_rows_reach(mask, eta, reach, out):
             while dq_min[hmin] < y - reach:
                 hmin += 1
             out[t, y] = W[dq_max[hmax]] - W[dq_min[hmin]] >= -tol
+
+
+@njit(**_opts)
+def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
+    """out = mask | T | F for a C-contiguous bool (n, m) plane, in one sweep down
+    the dumps.
+
+    T is the bounded-reach SIR operator along time (axis 0) with reach ``rt``
+    (rt < 0: T not computed, treated as empty; else 0 <= rt < n < 2**31), F the
+    same along frequency (axis 1) with reach ``rf`` (rf < 0: not computed; else
+    0 <= rf < m).  ``kt``, ``kf`` (>= 0): a clean sample is decided only when at
+    least that many samples are flagged within the reach along the axis
+    ([t - rt, t + rt] by dumps, [c - rf, c + rf] by channels); the caller
+    guarantees that no clean sample with fewer is added
+    (:func:`rfisieve.morphology._skip_threshold`).
+
+    A decision is max_{y < Y2 <= min(N, y + 1 + R)} W(Y2)
+    - min_{max(0, y - R) <= Y1 <= y} W(Y1) >= -1e-9 over the prefix values
+    W(Y) = C(Y) - (1 - eta) Y of the line (N samples, C(Y) flagged before Y, an
+    exact integer), computed with the same operands and operations as
+    :func:`sir_rows_reach`, so bit-identical to it.  Along time the W of dumps
+    t - rt .. t + 1 + rt live in a ring buffer of rows; along frequency W of the
+    dump is one row (padded with -inf / +inf beyond its ends for the maxima /
+    minima).
+
+    Per dump t, vectorised over channels: the running window count of flagged
+    samples (add dump t + rt, remove dump t - rt - 1), the next ring row, and a
+    branch-free count of the candidates.  Dumps with few candidates decide them
+    one by one (stopping as soon as the interval sums suffice); dumps with many
+    decide every channel with the window extrema computed row-wise over the
+    ring (2 R + 2 vectorised passes), which bounds the cost on dense masks."""
+    n, m = mask.shape
+    q = 1.0 - eta
+    tol = 1e-9
+    do_t = rt >= 0
+    do_f = rf >= 0
+    one = np.int32(1)
+    zero = np.int32(0)
+    cnt = np.zeros(m, np.int32)         # flagged in dumps [t - rt, t + rt], per channel
+    cum = np.zeros(m, np.int32)         # C(Y) of the next ring row Y, per channel
+    S = 1
+    while do_t and S < 2 * rt + 2:
+        S *= 2
+    MS = S - 1
+    ring = np.empty((S if do_t else 1, m))
+    mx = np.empty(m)
+    mn = np.empty(m)
+    rf2 = rf if do_f else 0
+    ppad = np.zeros(m + 1 + 2 * rf2, np.int64)   # along a dump: flagged in channels < k
+    wmax = np.full(m + 1 + 2 * rf2, -np.inf)
+    wmin = np.full(m + 1 + 2 * rf2, np.inf)
+    if do_t:
+        for t in range(rt):
+            for c in range(m):
+                cnt[c] += one if mask[t, c] else zero
+        for y in range(rt + 1):          # rt < n: rows W(0) .. W(rt); then cum = C(rt)
+            k = y & MS
+            for c in range(m):
+                ring[k, c] = cum[c] - q * y
+            if y < rt:
+                for c in range(m):
+                    cum[c] += one if mask[y, c] else zero
+    for t in range(n):
+        for c in range(m):
+            out[t, c] = mask[t, c]
+        if do_t:
+            ad = t + rt
+            su = t - rt - 1
+            if ad < n:                   # cum: C(ad) -> C(ad + 1), the ring row W(ad + 1)
+                y = ad + 1
+                k = y & MS
+                qy = q * y
+                for c in range(m):
+                    a = one if mask[ad, c] else zero
+                    cnt[c] += a
+                    cum[c] += a
+                    ring[k, c] = cum[c] - qy
+            if su >= 0:
+                for c in range(m):
+                    cnt[c] -= one if mask[su, c] else zero
+            nc = 0
+            for c in range(m):
+                nc += 1 if (cnt[c] >= kt) & (not mask[t, c]) else 0
+            hi = min(n, t + 1 + rt)
+            lo = max(0, t - rt)
+            if nc * 8 > m:
+                # (row views: shifted indexing in the inner loops defeats vectorisation)
+                rw = ring[(t + 1) & MS]
+                for c in range(m):
+                    mx[c] = rw[c]
+                for y2 in range(t + 2, hi + 1):
+                    rw = ring[y2 & MS]
+                    for c in range(m):
+                        v = rw[c]
+                        mx[c] = v if v > mx[c] else mx[c]
+                rw = ring[t & MS]
+                for c in range(m):
+                    mn[c] = rw[c]
+                for y1 in range(lo, t):
+                    rw = ring[y1 & MS]
+                    for c in range(m):
+                        v = rw[c]
+                        mn[c] = v if v < mn[c] else mn[c]
+                for c in range(m):
+                    out[t, c] = mask[t, c] | (mx[c] - mn[c] >= -tol)
+            elif nc > 0:
+                for c in range(m):
+                    if cnt[c] >= kt and not mask[t, c]:
+                        best2 = ring[(t + 1) & MS, c]
+                        for y2 in range(t + 2, hi + 1):
+                            v = ring[y2 & MS, c]
+                            if v > best2:
+                                best2 = v
+                        lo1 = ring[t & MS, c]
+                        hit = best2 - lo1 >= -tol
+                        if not hit:
+                            for y1 in range(t - 1, lo - 1, -1):
+                                v = ring[y1 & MS, c]
+                                if v < lo1:
+                                    lo1 = v
+                                    # fl(best2 - lo1) only grows as lo1 falls
+                                    if best2 - lo1 >= -tol:
+                                        hit = True
+                                        break
+                        out[t, c] = hit
+        if do_f:
+            # ppad[rf + k] = C(k) for 0 <= k <= m, C(0) to the left, C(m) to the right
+            s = 0
+            for c in range(m):
+                s += 1 if mask[t, c] else 0
+                ppad[rf + c + 1] = s
+            if s >= kf:
+                for c in range(rf):
+                    ppad[rf + m + 1 + c] = s
+                # candidates: clean (and not yet added), >= kf flagged in [c - rf, c + rf]
+                phi = ppad[2 * rf + 1:]
+                nc = 0
+                for c in range(m):
+                    nc += 1 if (phi[c] - ppad[c] >= kf) & (not out[t, c]) else 0
+                if nc > 0:
+                    for c in range(m + 1):
+                        w = ppad[rf + c] - q * c
+                        wmax[rf + c] = w
+                        wmin[rf + c] = w
+                if nc * 8 > m:
+                    wv = wmax[rf + 1:]
+                    for c in range(m):
+                        mx[c] = wv[c]
+                    wv = wmin[rf:]
+                    for c in range(m):
+                        mn[c] = wv[c]
+                    for j in range(1, rf + 1):
+                        wv = wmax[rf + 1 + j:]
+                        for c in range(m):
+                            v = wv[c]
+                            mx[c] = v if v > mx[c] else mx[c]
+                        wv = wmin[rf - j:]
+                        for c in range(m):
+                            v = wv[c]
+                            mn[c] = v if v < mn[c] else mn[c]
+                    for c in range(m):
+                        out[t, c] = out[t, c] | (mx[c] - mn[c] >= -tol)
+                elif nc > 0:
+                    for c in range(m):
+                        if not out[t, c] and phi[c] - ppad[c] >= kf:
+                            hi = min(c + rf + 1, m)
+                            lo = max(c - rf, 0)
+                            best2 = wmax[rf + c + 1]
+                            for y2 in range(c + 2, hi + 1):
+                                v = wmax[rf + y2]
+                                if v > best2:
+                                    best2 = v
+                            lo1 = wmin[rf + c]
+                            hit = best2 - lo1 >= -tol
+                            if not hit:
+                                for y1 in range(c - 1, lo - 1, -1):
+                                    v = wmin[rf + y1]
+                                    if v < lo1:
+                                        lo1 = v
+                                        if best2 - lo1 >= -tol:
+                                            hit = True
+                                            break
+                            out[t, c] = hit
