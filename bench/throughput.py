@@ -139,7 +139,7 @@ def main():
     ap.add_argument("--channels", type=int, default=1024, help="channels (default 1024)")
     ap.add_argument("--products", type=int, default=4, help="auto products (default 4)")
     ap.add_argument("--workers", type=int, default=2, help="dask workers (default 2)")
-    ap.add_argument("--chunk-dumps", type=int, default=2048, help="dumps per chunk (default 2048, as the run config)")
+    ap.add_argument("--chunk-dumps", type=int, default=4096, help="dumps per chunk (default 4096, as the run config)")
     ap.add_argument("--memory-check", action="store_true", help="also flag a scan 4x longer")
     ap.add_argument("--no-sigmaclip", action="store_true", help="skip the astropy sigma_clip comparison")
     ap.add_argument("--tmpdir", default=None, help="where to build scans (default: a temporary directory)")

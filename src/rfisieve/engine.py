@@ -30,14 +30,15 @@ mask is written or read back; the two give identical masks (tests/test_engine.py
 
 Parallelism
 -----------
-Chunks go in windows of ``workers`` chunks.  The driver reads each window (with halos)
-in one read, one window ahead in a reader thread, and hands every
-(chunk x product) plane to dask as one task: the threaded scheduler by default, or
-processes, or a dask.distributed scheduler address (planes are scattered to it).
+Chunks go in windows of a few chunks (:meth:`_Scheduler.window`: enough for two
+(chunk x product) tasks per worker).  The driver reads each window (with halos) in one
+read, one window ahead in a reader thread, and hands every (chunk x product) plane to
+dask as one task: the threaded scheduler by default, or processes, or a
+dask.distributed scheduler address (planes are scattered to it).
 
 Memory is bounded by ``chunk_dumps x nchan x nprod x (in-flight chunks)``, where at
-most ``2 x workers`` chunks (a window and the one read ahead) are in memory, never by
-the scan's length.
+most two windows (one flagged, one read ahead; at most ``2 x workers`` chunks) are in
+memory, never by the scan's length.
 """
 
 import json
@@ -402,11 +403,11 @@ class _Scheduler:
             self.client.close()
         return False
 
-    @property
-    def window(self):
-        # chunks per window: one per worker (each gives nprod x detectors tasks); with
-        # the window read ahead, at most 2 x workers chunks are in memory at once
-        return max(2, self.workers)
+    def window(self, nprod):
+        """Chunks per window: enough for two (chunk x product) tasks per worker (each
+        window ends in a barrier; two tasks each keep the workers busy to its end).
+        With the window read ahead, 2 x window chunks are in memory at once."""
+        return max(1, -(-2 * self.workers // max(1, int(nprod))))
 
     def put(self, data):
         """Hand a task's input to the scheduler: as is locally, scattered to a cluster."""
@@ -426,7 +427,7 @@ MEMORY_SHARE = 0.25
 
 
 def _window_chunks(scan, rows, wanted):
-    """Chunks per window: ``wanted`` (one per worker), fewer when memory would not hold them.
+    """Chunks per window: ``wanted``, fewer when memory would not hold them.
 
     A chunk of ``rows`` dumps costs its stored samples plus about 16 bytes per sample of
     working arrays (float32 values, masks, background and residual) per product in work.
@@ -447,7 +448,7 @@ def _window_chunks(scan, rows, wanted):
 def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None):
     """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
 
-    Chunks go in windows of ``workers`` chunks: the driver reads each window's dumps (with
+    Chunks go in windows (:meth:`_Scheduler.window`): the driver reads each window's dumps (with
     halos) in one read, one window ahead in a reader thread, and sends each
     (chunk x product) plane to the dask scheduler.  With ``grow`` (the merge halo) each
     task runs both detectors and the merge (:func:`_flag_product`) on a halo widened by
@@ -458,22 +459,23 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
 
     meta = _meta(scan, band)
     what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
-    if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
-        meta["sigma"] = _noise_prepass(scan, band, meta, sched, what)
     halo = plan["halo"] if plan else detect_halo(band, scan)
     if grow is not None:
         halo += grow
     chunks = plan["chunks"] if plan else _chunks(scan.ntime, int(run["chunk_dumps"]))
     rows = max(c1 - c0 for c0, c1 in chunks) + 2 * halo
-    windows = list(_windows(chunks, _window_chunks(scan, rows, sched.window)))
+    windows = list(_windows(chunks, _window_chunks(scan, rows, sched.window(scan.nprod))))
     spans = [(max(0, w[0][0] - halo), min(scan.ntime, w[-1][1] + halo)) for w in windows]
     done = 0
-    # band and meta bound once: dask would walk these nested dicts for every task
-    flag_task = dask.delayed(partial(_flag_product, band=band, meta=meta))
-    prep_task = dask.delayed(partial(_prepare, meta=meta))
-    det_task = dask.delayed(partial(_detect_product, band=band, meta=meta))
     with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
+        # the first window is read while the noise pre-pass runs
         ahead = reader.submit(scan.read, *spans[0], what) if windows else None
+        if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
+            meta["sigma"] = _noise_prepass(scan, band, meta, sched, what)
+        # band and meta bound once: dask would walk these nested dicts for every task
+        flag_task = dask.delayed(partial(_flag_product, band=band, meta=meta))
+        prep_task = dask.delayed(partial(_prepare, meta=meta))
+        det_task = dask.delayed(partial(_detect_product, band=band, meta=meta))
         for k, window in enumerate(windows):
             block = ahead.result()
             if k + 1 < len(windows):

@@ -51,7 +51,7 @@ BAND_DEFAULTS = {
 RUN_DEFAULTS = {
     "inputs": [],
     "outdir": "results",
-    "chunk_dumps": 2048,
+    "chunk_dumps": 4096,
     "workers": 2,
     "scheduler": "threads",      # threads | processes | synchronous | tcp://host:port
     "bands_dir": "config/bands",
