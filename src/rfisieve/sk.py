@@ -818,11 +818,13 @@ def _flag_blocks_kernel(power, valid, t0, m, step, k, lo, hi, min_valid, refine,
         cnt[:] = 0
         for r in range(r0, r1):
             for c in range(nc):
-                if valid[r, c]:
-                    p = np.float64(power[r, c])
-                    s1[c] += p
-                    s2[c] += p * p
-                    cnt[c] += 1
+                # branch-free (vectorises); adding 0.0 for an invalid sample leaves
+                # the sums exactly as skipping it would
+                ok = valid[r, c]
+                p = np.float64(power[r, c]) if ok else 0.0
+                s1[c] += p
+                s2[c] += p * p
+                cnt[c] += np.int64(ok)
         for c in range(nc):
             mm = cnt[c]
             if mm < min_valid or not (s1[c] > 0.0):
