@@ -13,7 +13,8 @@ each step in its own child process so that peak resident memory is its own:
 4. with ``--memory-check``: ``flag`` again on a scan four times longer, to show that
    peak memory does not grow with scan length.
 
-Prints samples per second, wall time, peak RSS and the ratio to the I/O floor.
+Prints samples per second, wall time, peak RSS and the ratio to the I/O floor; ``io`` and
+``flag`` run ``--repeat`` times (default 3) and the best is tabled, all times printed.
 
     .venv/bin/python bench/throughput.py                 # 50.3 M samples
     .venv/bin/python bench/throughput.py --memory-check  # plus a 4x longer scan
@@ -141,6 +142,8 @@ def main():
     ap.add_argument("--workers", type=int, default=2, help="dask workers (default 2)")
     ap.add_argument("--chunk-dumps", type=int, default=4096, help="dumps per chunk (default 4096, as the run config)")
     ap.add_argument("--memory-check", action="store_true", help="also flag a scan 4x longer")
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="fresh-process runs of io and flag; the best is tabled (default 3)")
     ap.add_argument("--no-sigmaclip", action="store_true", help="skip the astropy sigma_clip comparison")
     ap.add_argument("--tmpdir", default=None, help="where to build scans (default: a temporary directory)")
     args = ap.parse_args()
@@ -154,17 +157,22 @@ def main():
         build_scan(scan, args.dumps, args.channels, args.products)
         warm_up(tmp, args.workers, args.chunk_dumps)
         rows = []
-        for step in ["io", "flag"] + ([] if args.no_sigmaclip else ["sigmaclip"]):
-            r = run_child(step, scan, tmp / f"{step}_mask.h5", args.workers, args.chunk_dumps)
-            r["samples"] = n
+
+        def timed(step, path, out, label, samples, repeat):
+            # best of `repeat` fresh processes (the others are printed): a shared or
+            # virtual machine's speed varies from run to run, the work does not
+            runs = [run_child(step, path, out, args.workers, args.chunk_dumps) for _ in range(repeat)]
+            r = dict(min(runs, key=lambda x: x["seconds"]))
+            r["step"], r["samples"], r["peak_mib"] = label, samples, max(x["peak_mib"] for x in runs)
+            print(f"  {label:<10} " + " ".join(f"{x['seconds']:6.2f}" for x in runs) + " s", flush=True)
             rows.append(r)
-            print(f"  {step:<10} {r['seconds']:8.2f} s", flush=True)
+
+        for step in ["io", "flag"] + ([] if args.no_sigmaclip else ["sigmaclip"]):
+            timed(step, scan, tmp / f"{step}_mask.h5", step, n, 1 if step == "sigmaclip" else args.repeat)
         if args.memory_check:
             long_scan = tmp / "bench_scan_long.h5"
             build_scan(long_scan, 4 * args.dumps, args.channels, args.products, seed=2)
-            r = run_child("flag", long_scan, tmp / "flag_long_mask.h5", args.workers, args.chunk_dumps)
-            r["step"], r["samples"] = "flag (4x)", 4 * n
-            rows.append(r)
+            timed("flag", long_scan, tmp / "flag_long_mask.h5", "flag (4x)", 4 * n, args.repeat)
         floor = rows[0]["seconds"] / rows[0]["samples"]  # I/O floor, seconds per sample
         print()
         print(f"{'step':<12}{'samples':>12}{'seconds':>10}{'Msamples/s':>12}{'peak MiB':>10}{'x I/O floor':>13}")
@@ -173,7 +181,8 @@ def main():
                   f"{r['samples'] / r['seconds'] / 1e6:>12.1f}{r['peak_mib']:>10.0f}{r['seconds'] / r['samples'] / floor:>13.2f}")
         flags = [r for r in rows if r["step"].startswith("flag")]
         print(f"\nworkers={args.workers} chunk_dumps={args.chunk_dumps} cores={os.cpu_count()}")
-        print("each step runs in a fresh process; flag's time includes importing rfisieve ("
+        print(f"best of {args.repeat} runs (sigmaclip: 1), each in a fresh process; peak MiB is the largest "
+              "of the runs; flag's time includes importing rfisieve ("
               + ", ".join(f"{r['imports']:.2f} s" for r in flags) + ") and loading its compiled kernels")
 
 
