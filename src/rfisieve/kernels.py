@@ -528,33 +528,38 @@ def _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv):
 @njit(**_opts)
 def _scatter(lv, det, cols, ident, merge, partial, t0, nb, L):
     """Tile scatter: the detections of lv (levels 2 .. 254) into det (|= when
-    merge), skipping dumps with ``partial`` True; 8 x 8 blocks where whole."""
+    merge), skipping dumps with ``partial`` True.  Groups of 8 dumps are swept
+    along the channels, as in :func:`_gather` (8 rows of det in L1, each row of
+    lv read 8 bytes at a time); branch-free."""
     inv = np.uint8(LEV_INVALID)
     two = np.uint8(2)
-    L8 = L // 8 * 8 if ident else 0
-    n8 = nb // 8 * 8
     du = det.view(np.uint8)
     keep = np.uint8(1 if merge else 0)
-    for b0 in range(0, n8, 8):
-        for k0 in range(0, L8, 8):
+    for b0 in range(0, nb, 8):
+        bw = min(8, nb - b0)
+        whole = bw == 8
+        if whole:
             for i in range(8):
-                t = t0 + b0 + i
-                if partial[t]:
-                    continue
-                for jj in range(8):
-                    c = k0 + jj
-                    a = lv[c, b0 + i]
+                if partial[t0 + b0 + i]:
+                    whole = False
+        if whole:
+            for k in range(L):
+                c = k if ident else cols[k]
+                for i in range(8):
+                    t = t0 + b0 + i
+                    a = lv[k, b0 + i]
                     d = np.uint8(a >= two) & np.uint8(a != inv)
                     du[t, c] = (du[t, c] & keep) | d
-    for b in range(nb):
-        t = t0 + b
-        if partial[t]:
-            continue
-        for k in range(L8 if b < n8 else 0, L):
-            c = k if ident else cols[k]
-            a = lv[k, b]
-            d = a >= two and a != inv
-            det[t, c] = (det[t, c] | d) if merge else d
+        else:
+            for k in range(L):
+                c = k if ident else cols[k]
+                for i in range(bw):
+                    t = t0 + b0 + i
+                    if partial[t]:
+                        continue
+                    a = lv[k, b0 + i]
+                    d = np.uint8(a >= two) & np.uint8(a != inv)
+                    du[t, c] = (du[t, c] & keep) | d
 
 
 @njit(**_opts)
