@@ -37,8 +37,8 @@ dask as one task: the threaded scheduler by default, or processes, or a
 dask.distributed scheduler address (planes are scattered to it).
 
 Memory is bounded by ``chunk_dumps x nchan x nprod x (in-flight chunks)``, where at
-most two windows (one flagged, one read ahead; at most ``2 x workers`` chunks) are in
-memory, never by the scan's length.
+most two windows (one flagged, one read ahead; each about ``2 x workers`` (chunk x
+product) planes, at least one chunk) are in memory, never by the scan's length.
 """
 
 import json
