@@ -206,12 +206,11 @@ def noise_windows(ntime):
 def _noise_task(planes, band, meta, p, t0):
     from .sumthreshold import sumthreshold_noise
 
-    auto = meta["autos"][p]
-    values = amplitude(planes["data"], auto)
-    _, excluded = _prior(planes, meta, values, auto)
-    if excluded.all():
+    prep = _prepare(planes, p, meta)
+    if prep["excluded"].all():
         return np.nan
-    return float(sumthreshold_noise(values, invalid=excluded, t0=t0, **_sumthreshold_settings(band)))
+    return float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0,
+                                    **_sumthreshold_settings(band)))
 
 
 def _noise_prepass(scan, band, meta, sched, what):
@@ -231,12 +230,16 @@ def _noise_prepass(scan, band, meta, sched, what):
     return sigmas
 
 
+def _s2_invalid(s2):
+    """Samples whose recorded S2 no statistic may use: NaN, Inf, zero or negative."""
+    return ~np.isfinite(s2) | (s2 <= 0)
+
+
 def _prior(planes, meta, values, auto):
     """(invalid, excluded): samples no statistic may use, and those plus input/static flags."""
     invalid = invalid_mask(values, auto)
     if "s2" in planes and auto:
-        s2 = planes["s2"]
-        invalid |= ~np.isfinite(s2) | (s2 <= 0)
+        invalid |= _s2_invalid(planes["s2"])
     excluded = invalid | meta["static"][np.newaxis, :]
     if "flags" in planes:
         excluded |= planes["flags"]
@@ -270,8 +273,7 @@ def _prepare(planes, p, meta):
                   np.zeros((1, 1), np.bool_) if flags is None else np.asarray(flags, dtype=np.bool_),
                   flags is not None, values, invalid, excluded)
     if "s2" in planes and auto:
-        s2 = planes["s2"]
-        bad = ~np.isfinite(s2) | (s2 <= 0)
+        bad = _s2_invalid(planes["s2"])
         invalid |= bad
         excluded |= bad
     return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
@@ -284,20 +286,20 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
     detector's bit and the invalid bit, SK histogram counts of the core rows or None);
     ``rows`` (default ``core``) are the plane rows returned.
     """
-    rows = core if rows is None else rows
+    r = slice(*(core if rows is None else rows))
     values, invalid, excluded = prep["values"], prep["invalid"], prep["excluded"]
-    out = np.where(invalid, np.uint8(bits.INVALID), np.uint8(0))
+    out = np.where(invalid[r], np.uint8(bits.INVALID), np.uint8(0))
     hist = None
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
         from .sumthreshold import sumthreshold_flagger
 
         hit = sumthreshold_flagger(values, invalid=excluded, sigma=meta["sigma"][p], t0=t0,
                                    **_sumthreshold_settings(band))
-        out[hit & ~excluded] |= bits.SUMTHRESHOLD
+        out[hit[r] & ~excluded[r]] |= bits.SUMTHRESHOLD
     elif detector == "sk" and meta["autos"][p] and "sk" in meta:
         hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)
-        out[hit & ~excluded] |= bits.SK
-    return out[rows[0]:rows[1]], hist
+        out[hit[r] & ~excluded[r]] |= bits.SK
+    return out, hist
 
 
 def _kurtosis(prep, values, excluded, sk, t0, core):
@@ -335,10 +337,8 @@ def _flag_product(planes, p, band, meta, t0, core, grow):
         out, h = _detect_product(prep, p, detector, band, meta, t0, core, rows=(lo, hi))
         det = out if det is None else det | out
         hist = h if h is not None else hist
-    extra = np.zeros(det.shape, dtype=np.uint8)
-    if "flags" in planes:
-        extra[planes["flags"][lo:hi]] |= bits.INPUT
-    extra[:, meta["static"]] |= bits.STATIC
+    flags = planes.get("flags")
+    extra = _extra_bits(det.shape, None if flags is None else flags[lo:hi], meta["static"])
     return _merge_plane(det, extra, band, (core[0] - lo, core[1] - lo)), hist
 
 
@@ -615,12 +615,19 @@ def _stack(planes):
     return np.stack(planes, axis=-1)
 
 
-def _input_and_static(scan, a, b, meta):
-    extra = np.zeros((b - a, scan.nchan, scan.nprod), dtype=np.uint8)
-    if scan.has_flags:
-        extra[scan.read(a, b, ("flags",))["flags"]] |= bits.INPUT
-    extra[:, meta["static"], :] |= bits.STATIC
+def _extra_bits(shape, flags, static):
+    """The input bit where ``flags`` (or nothing when None) and the static bit on the
+    ``static`` channels (axis 1), as uint8 of ``shape`` (time, chan[, prod])."""
+    extra = np.zeros(shape, dtype=np.uint8)
+    if flags is not None:
+        extra[flags] |= bits.INPUT
+    extra[:, static] |= bits.STATIC
     return extra
+
+
+def _input_and_static(scan, a, b, meta):
+    flags = scan.read(a, b, ("flags",))["flags"] if scan.has_flags else None
+    return _extra_bits((b - a, scan.nchan, scan.nprod), flags, meta["static"])
 
 
 def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
