@@ -10,8 +10,8 @@ from hypothesis.extra import numpy as hnp
 from rfisieve.background import fit_background, robust_sigma
 from rfisieve.settings import BAND_DEFAULTS
 from rfisieve.sumthreshold import (sumthreshold, sumthreshold_1d, sumthreshold_flagger,
-                                   sumthreshold_halo, sumthreshold_noise, threshold_factors,
-                                   window_sizes)
+                                   grid_unit, sumthreshold_halo, sumthreshold_noise,
+                                   threshold_factors, to_grid, window_sizes)
 
 
 def brute_sumthreshold(x, flagged, invalid, chi1, rho, max_window):
@@ -61,6 +61,47 @@ def test_sumthreshold_equals_definition(data, max_window, axis):
     else:
         want = brute_sumthreshold(x.T, flagged.T, invalid.T, 8.0, 2.0, max_window).T
     np.testing.assert_array_equal(got, want)
+
+
+clipped_planes = st.integers(1, 40).flatmap(lambda n: st.integers(1, 4).flatmap(lambda m: st.tuples(
+    hnp.arrays(np.float32, (n, m), elements=st.sampled_from(
+        [-1e30, -1e6, -300.0, -129.0, -3.0, -1.0, 0.0, 1.0, 3.0, 5.0, 7.0, 9.0, 12.0, 17.0, 1e6, 1e30])),
+    hnp.arrays(np.bool_, (n, m), elements=st.booleans()),
+)))
+
+
+@hsettings(max_examples=150, deadline=None)
+@given(clipped_planes, st.sampled_from([2, 4, 16, 128]))
+def test_grid_clip_changes_no_result(data, max_window):
+    # grid_unit's claim: values clipped to [-M_max chi_1, 2 chi_1] before the integer
+    # sums decide every window as the unclipped float64 definition does.  chi1 = 8,
+    # rho = 2: the unclipped values and every chi_M are exact on the grid, so only
+    # the clip is under test (windows to 16: -129 and -300 lie below -16 chi_1 =
+    # -128; always: 17, 1e6 and 1e30 above 2 chi_1 = 16, -1e6 and -1e30 below).
+    x, flagged = data
+    none = np.zeros(x.shape, bool)
+    got = sumthreshold(x, flagged, chi1=8.0, rho=2.0, max_window=max_window)
+    want = brute_sumthreshold(x, flagged, none, 8.0, 2.0, max_window)
+    np.testing.assert_array_equal(got, want)
+
+
+def test_grid_unit_and_rounding():
+    # 32-bit grid up to windows of 128 (no sum of 128 samples of magnitude <= 128
+    # chi_1 can pass 2**31), 64-bit beyond; a value is rounded to the nearest step.
+    assert grid_unit(32) == (1 << 16, np.int32)
+    assert grid_unit(128) == (1 << 16, np.int32)
+    assert grid_unit(256) == (1 << 42, np.int64)
+    assert grid_unit(1024) == (1 << 42, np.int64)
+    assert 128 * 128 * grid_unit(128)[0] <= 2 ** 30
+    assert 1024 * 1024 * grid_unit(1024)[0] <= 2 ** 62
+    x = np.array([[1.0, 0.5, -2.0, 3.0, np.nan, 1.0 + 2 ** -17, 1.0 + 2 ** -15]], np.float32)
+    g, unit = to_grid(x, 1.0, 4)
+    assert unit == 1 << 16
+    np.testing.assert_array_equal(g[0], [65536, 32768, -131072, 131072, -4 * 65536, 65536, 65538])
+    g, unit = to_grid(np.zeros((2, 2), np.float32), 0.0, 4)      # no noise: thresholds 0
+    assert unit == 0
+    with pytest.raises(ValueError):
+        to_grid(x, -1.0, 4)
 
 
 def test_sumthreshold_random_floats_rho_1_5():
@@ -263,7 +304,8 @@ def test_frequency_tiles_equal_definition():
         flagged &= ~invalid
         lev, rowbad, colbad = _levels((n, m), flagged, invalid)
         got = np.zeros((n, m), bool)
-        _st_freq(x, lev, rowbad, colbad, 3.0, 1.5, 6, got, True)
+        xg, unit = to_grid(x, 3.0, 32)
+        _st_freq(xg, lev, rowbad, colbad, unit, 1.5, 6, got, True)
         want = brute_sumthreshold(x.T, flagged.T, invalid.T, 3.0, 1.5, 32).T
         np.testing.assert_array_equal(got, want)
 

@@ -429,13 +429,14 @@ MEMORY_SHARE = 0.25
 def _window_chunks(scan, rows, wanted):
     """Chunks per window: ``wanted``, fewer when memory would not hold them.
 
-    A chunk of ``rows`` dumps costs its stored samples plus about 16 bytes per sample of
-    working arrays (float32 values, masks, background and residual) per product in work.
+    A chunk of ``rows`` dumps costs its stored samples plus about 20 bytes per sample of
+    working arrays (float32 values, masks, background, residual and its integer grid) per
+    product in work.
     """
     import psutil
 
     itemsize = scan.dtype.itemsize + (1 if scan.has_flags else 0) + (4 if scan.has_s2 else 0)
-    per_chunk = rows * scan.nchan * scan.nprod * (itemsize + 16)
+    per_chunk = rows * scan.nchan * scan.nprod * (itemsize + 20)
     budget = MEMORY_SHARE * psutil.virtual_memory().total
     if 2 * per_chunk > budget:  # a window and the one read ahead
         raise RfisieveError(

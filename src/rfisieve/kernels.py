@@ -204,23 +204,49 @@ def init_levels(flagged, invalid, lev):
 
 
 @njit(**_opts)
-def st_line(v, lv, nv, chi1, rho, npass, q0):
-    """SumThreshold passes q0 .. npass on one gathered line v[:nv], levels lv[:nv]
-    (no invalid samples in it), updating lv in place."""
+def to_grid(x, scale, lo, hi, out):
+    """SumThreshold's integer grid: out = rint(clip(x * scale, lo, hi)) in
+    float64 (NaN to lo), into the integer plane out."""
+    n, m = x.shape
+    for t in range(n):
+        for c in range(m):
+            v = np.float64(x[t, c]) * scale
+            v = v if v > lo else lo
+            v = v if v < hi else hi
+            out[t, c] = np.rint(v)
+
+
+@njit(**_opts)
+def grid_thresholds(unit, rho, npass, thrs, lims):
+    """thrs[q] = rint(unit / rho**(q - 1)) (chi_M on the grid, M = 2**(q - 1)) and
+    lims[q] = M thrs[q], q = 1 .. npass (integer arrays of length npass + 1)."""
+    thrs[0] = 0
+    lims[0] = 0
+    for q in range(1, npass + 1):
+        thrs[q] = np.rint(unit / rho ** (q - 1))
+        lims[q] = (1 << (q - 1)) * thrs[q]
+
+
+@njit(**_opts)
+def st_line(v, lv, nv, thrs, npass, q0):
+    """SumThreshold passes q0 .. npass on one gathered line v[:nv] (on the grid of
+    :func:`to_grid`, thresholds thrs[q] from :func:`grid_thresholds`), levels
+    lv[:nv] (no invalid samples in it), updating lv in place.  Sums in int64:
+    exact, so equal to the 32-bit sums of the sweeps (which cannot overflow)."""
     for q in range(q0, npass + 1):
         M = 1 << (q - 1)
-        thr = chi1 / rho ** (q - 1)
+        thr = np.int64(thrs[q])
         lim = M * thr
-        s = 0.0
+        s = np.int64(0)
         last = -1
         for k in range(nv + M - 1):
             j = k - M + 1
             if k < nv:
                 a = lv[k]
-                s += thr if (a != 0 and a <= q) else np.float64(v[k])
+                s += thr if (a != 0 and a <= q) else np.int64(v[k])
             if k >= M:
                 a = lv[k - M]
-                s -= thr if (a != 0 and a <= q) else np.float64(v[k - M])
+                s -= thr if (a != 0 and a <= q) else np.int64(v[k - M])
             if j >= 0 and k < nv and s > lim:
                 last = k
             if j >= 0 and last >= j and lv[j] == LEV_FREE:
@@ -379,12 +405,14 @@ def _pipe_lags(npass):
 
 
 @njit(**_opts)
-def _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last):
+def _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last):
     """All SumThreshold passes q = 1 .. npass along axis 0 of the tile v[:L, :B]
     (lines are the B columns, no invalid sample) in one sweep, as
     :func:`st_time_pipe` does on a plane; the final levels are written back to
-    lv[:L] (0 free, 1 input-flagged, q + 1 detected by pass q).  ring (R, B)
-    uint8, s (npass + 1, B) float64, last (npass + 1, B) int64 are scratch.
+    lv[:L] (0 free, 1 input-flagged, q + 1 detected by pass q).  v is on the
+    grid of :func:`to_grid`, thrs and lims (M thrs) from :func:`grid_thresholds`;
+    ring (R, B) uint8, s (npass + 1, B) of v's dtype, last (npass + 1, B) int32
+    are scratch.
     Plain 2-D indexing (no row views: their reference counting would cost more
     than the B-wide loops)."""
     B = v.shape[1]
@@ -392,13 +420,10 @@ def _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last):
     two = np.uint8(2)
     one = np.uint8(1)
     zero = np.uint8(0)
-    c1 = np.float64(chi1)
-    thrs = np.empty(npass + 1)
-    for q in range(1, npass + 1):
-        thrs[q] = chi1 / rho ** (q - 1)
+    c1 = thrs[1]
     for q in range(npass + 1):
         for b in range(B):
-            s[q, b] = 0.0
+            s[q, b] = 0
             last[q, b] = -1
     for K in range(L + final_lag):
         if K < L:
@@ -406,7 +431,7 @@ def _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last):
             for b in range(B):
                 a = lv[K, b]
                 if npass >= 1:
-                    a = two if (a == zero and np.float64(v[K, b]) > c1) else a
+                    a = two if (a == zero and v[K, b] > c1) else a
                 ring[kr, b] = a
         for q in range(2, npass + 1):
             kq = K - lag[q]
@@ -414,35 +439,36 @@ def _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last):
             if kq < 0 or kq >= L + M - 1:
                 continue
             thr = thrs[q]
-            lim = M * thr
+            lim = lims[q]
             qm = np.uint8(q - 1)
             newlev = np.uint8(q + 1)
             j = kq - M + 1
+            kq32 = np.int32(kq)
+            j32 = np.int32(j)
             if kq < L and kq >= M:
                 ka = kq & RM
                 ko = (kq - M) & RM
                 kx = kq - M
                 for b in range(B):
                     a = ring[ka, b]
-                    u = thr if np.uint8(a - one) <= qm else np.float64(v[kq, b])
+                    u = thr if np.uint8(a - one) <= qm else v[kq, b]
                     a2 = ring[ko, b]
-                    o = thr if np.uint8(a2 - one) <= qm else np.float64(v[kx, b])
-                    sv = s[q, b] + u - o
-                    s[q, b] = sv
-                    last[q, b] = kq if sv > lim else last[q, b]
+                    o = thr if np.uint8(a2 - one) <= qm else v[kx, b]
+                    s[q, b] = s[q, b] + u - o          # stored at s's width: exact
+                    last[q, b] = kq32 if s[q, b] > lim else last[q, b]
             elif kq < L:
                 ka = kq & RM
                 for b in range(B):
                     a = ring[ka, b]
-                    s[q, b] += thr if np.uint8(a - one) <= qm else np.float64(v[kq, b])
+                    s[q, b] = s[q, b] + (thr if np.uint8(a - one) <= qm else v[kq, b])
                 if j >= 0:
                     for b in range(B):
-                        last[q, b] = kq if s[q, b] > lim else last[q, b]
+                        last[q, b] = kq32 if s[q, b] > lim else last[q, b]
             if j >= 0:
                 kj = j & RM
                 for b in range(B):
                     a = ring[kj, b]
-                    ring[kj, b] = newlev if (last[q, b] >= j and a == zero) else a
+                    ring[kj, b] = newlev if (last[q, b] >= j32 and a == zero) else a
         r = K - final_lag
         if r >= 0:
             kr = r & RM
@@ -451,7 +477,7 @@ def _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last):
 
 
 @njit(**_opts)
-def _line_scalar(x, lev0, line, along_time, chi1, rho, npass, v, lvl, idx):
+def _line_scalar(x, lev0, line, along_time, thrs, npass, v, lvl, idx):
     """SumThreshold of one line holding invalid samples (left out): returns the
     count nv; idx[:nv] the positions, lvl[:nv] the final levels."""
     nv = 0
@@ -473,17 +499,8 @@ def _line_scalar(x, lev0, line, along_time, chi1, rho, npass, v, lvl, idx):
                 lvl[nv] = a
                 idx[nv] = c
                 nv += 1
-    st_line(v, lvl, nv, chi1, rho, npass, 1)
+    st_line(v, lvl, nv, thrs, npass, 1)
     return nv
-
-
-@njit(**_opts)
-def _gather_one(x, lev0, det, cols, ident, merge, t, b, k, v, lv):
-    c = k if ident else cols[k]
-    a = lev0[t, c]
-    a = np.uint8(LEV_INPUT) if (merge and det[t, c] and a == 0) else a
-    lv[k, b] = a
-    v[k, b] = np.float32(0.0) if a == LEV_INVALID else x[t, c]
 
 
 @njit(**_opts)
@@ -496,7 +513,6 @@ def _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv):
     B = v.shape[1]
     zero = np.uint8(0)
     inv = np.uint8(LEV_INVALID)
-    fz = np.float32(0.0)
     du = det.view(np.uint8)
     mflag = np.uint8(1 if merge else 0)
     for b0 in range(0, nb, 8):
@@ -509,7 +525,7 @@ def _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv):
                     a = lev0[t, c]
                     a = a | (du[t, c] & mflag & np.uint8(a == zero))   # branch-free
                     lv[k, b0 + i] = a
-                    v[k, b0 + i] = fz if a == inv else x[t, c]
+                    v[k, b0 + i] = 0 if a == inv else x[t, c]
         else:
             for k in range(L):
                 c = k if ident else cols[k]
@@ -518,11 +534,11 @@ def _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv):
                     a = lev0[t, c]
                     a = a | (du[t, c] & mflag & np.uint8(a == zero))
                     lv[k, b0 + i] = a
-                    v[k, b0 + i] = fz if a == inv else x[t, c]
+                    v[k, b0 + i] = 0 if a == inv else x[t, c]
     for k in range(L):
         for b in range(nb, B):
             lv[k, b] = zero
-            v[k, b] = fz
+            v[k, b] = 0
 
 
 @njit(**_opts)
@@ -563,7 +579,7 @@ def _scatter(lv, det, cols, ident, merge, partial, t0, nb, L):
 
 
 @njit(**_opts)
-def st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge, B):
+def st_freq(x, lev0, cols, partial, thrs, lims, npass, det, merge, B):
     """SumThreshold passes 1 .. npass along frequency (axis 1), conventions of
     :func:`st_time_pipe`, on the levels lev0 joined by det when ``merge`` (the
     samples det marks enter as flagged: the time pass's detections), then
@@ -574,21 +590,21 @@ def st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge, B):
     n, m = x.shape
     L = cols.shape[0]
     ident = L == m
-    v = np.empty((max(L, 1), B), np.float32)
+    v = np.zeros((max(L, 1), B), x.dtype)
     lv = np.empty((max(L, 1), B), np.uint8)
     lag, final_lag, R = _pipe_lags(npass)
     ring = np.zeros((R, B), np.uint8)
-    s = np.empty((npass + 1, B))
-    last = np.empty((npass + 1, B), np.int64)
+    s = np.empty((npass + 1, B), x.dtype)
+    last = np.empty((npass + 1, B), np.int32)
     one = np.uint8(LEV_INPUT)
     zero = np.uint8(0)
     inv = np.uint8(LEV_INVALID)
     for t0 in range(0, n, B):
         nb = min(B, n - t0)
         _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv)
-        _tile_sweep(v, lv, L, chi1, rho, npass, lag, final_lag, ring, s, last)
+        _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last)
         _scatter(lv, det, cols, ident, merge, partial, t0, nb, L)
-    vv = np.empty(m, np.float32)
+    vv = np.empty(m, x.dtype)
     ll = np.empty(m, np.uint8)
     idx = np.empty(m, np.int64)
     for t in range(n):
@@ -601,7 +617,7 @@ def st_freq(x, lev0, cols, partial, chi1, rho, npass, det, merge, B):
                     ll[nv] = one if (merge and det[t, c] and a == zero) else a
                     idx[nv] = c
                     nv += 1
-            st_line(vv, ll, nv, chi1, rho, npass, 1)
+            st_line(vv, ll, nv, thrs, npass, 1)
             if not merge:
                 for c in range(m):
                     if lev0[t, c] == inv:
@@ -827,7 +843,7 @@ def strided_sample2(x, ex1, ex2, step, out):
 
 
 @njit(**_opts)
-def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
+def st_time_pipe(x, lev0, rows, partial, thrs, lims, npass, det, merge):
     """SumThreshold passes 1 .. npass along time (axis 0) of the plane x with
     input levels lev0 (0 free, 1 flagged, 255 invalid), over the dump list
     ``rows`` (dumps not wholly invalid).  Channels with ``partial`` True hold
@@ -854,15 +870,12 @@ def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
         R *= 2
     RM = R - 1
     ring = np.zeros((R, m), np.uint8)
-    s = np.zeros((max(npass, 1) + 1, m))
-    last = np.full((max(npass, 1) + 1, m), -1, np.int64)
+    s = np.zeros((max(npass, 1) + 1, m), x.dtype)
+    last = np.full((max(npass, 1) + 1, m), -1, np.int32)
     two = np.uint8(2)
     one = np.uint8(1)
     zero = np.uint8(0)
-    c1 = np.float64(chi1)
-    thrs = np.empty(npass + 1)
-    for q in range(1, npass + 1):
-        thrs[q] = chi1 / rho ** (q - 1)
+    c1 = thrs[1]
     for K in range(L + final_lag):
         if K < L:
             t = rows[K]
@@ -870,7 +883,7 @@ def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
             for c in range(m):
                 a = lev0[t, c]
                 if npass >= 1:
-                    a = two if (a == zero and np.float64(x[t, c]) > c1) else a
+                    a = two if (a == zero and x[t, c] > c1) else a
                 ring[kr, c] = a
         for q in range(2, npass + 1):
             kq = K - lag[q]
@@ -878,10 +891,12 @@ def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
             if kq < 0 or kq >= L + M - 1:
                 continue
             thr = thrs[q]
-            lim = M * thr
+            lim = lims[q]
             qm = np.uint8(q - 1)
             newlev = np.uint8(q + 1)
             j = kq - M + 1
+            kq32 = np.int32(kq)
+            j32 = np.int32(j)
             if kq < L and kq >= M:
                 ka = kq & RM
                 ta = rows[kq]
@@ -889,26 +904,25 @@ def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
                 to = rows[kq - M]
                 for c in range(m):
                     a = ring[ka, c]
-                    u = thr if np.uint8(a - one) <= qm else np.float64(x[ta, c])
+                    u = thr if np.uint8(a - one) <= qm else x[ta, c]
                     a2 = ring[ko, c]
-                    o = thr if np.uint8(a2 - one) <= qm else np.float64(x[to, c])
-                    sv = s[q, c] + u - o
-                    s[q, c] = sv
-                    last[q, c] = kq if sv > lim else last[q, c]
+                    o = thr if np.uint8(a2 - one) <= qm else x[to, c]
+                    s[q, c] = s[q, c] + u - o          # stored at s's width: exact
+                    last[q, c] = kq32 if s[q, c] > lim else last[q, c]
             elif kq < L:
                 ka = kq & RM
                 ta = rows[kq]
                 for c in range(m):
                     a = ring[ka, c]
-                    s[q, c] += thr if np.uint8(a - one) <= qm else np.float64(x[ta, c])
+                    s[q, c] = s[q, c] + (thr if np.uint8(a - one) <= qm else x[ta, c])
                 if j >= 0:
                     for c in range(m):
-                        last[q, c] = kq if s[q, c] > lim else last[q, c]
+                        last[q, c] = kq32 if s[q, c] > lim else last[q, c]
             if j >= 0:
                 kj = j & RM
                 for c in range(m):
                     a = ring[kj, c]
-                    ring[kj, c] = newlev if (last[q, c] >= j and a == zero) else a
+                    ring[kj, c] = newlev if (last[q, c] >= j32 and a == zero) else a
         r = K - final_lag
         if r >= 0:
             t = rows[r]
@@ -920,12 +934,12 @@ def st_time_pipe(x, lev0, rows, partial, chi1, rho, npass, det, merge):
                     det[t, c] |= d
                 else:
                     det[t, c] = d
-    vv = np.empty(n, np.float32)
+    vv = np.empty(n, x.dtype)
     ll = np.empty(n, np.uint8)
     idx = np.empty(n, np.int64)
     for c in range(m):
         if partial[c]:
-            nv = _line_scalar(x, lev0, c, True, chi1, rho, npass, vv, ll, idx)
+            nv = _line_scalar(x, lev0, c, True, thrs, npass, vv, ll, idx)
             if not merge:
                 for t in range(n):
                     if lev0[t, c] == LEV_INVALID:
