@@ -28,7 +28,7 @@ Loop shapes:
 """
 
 import numpy as np
-from numba import njit
+from .jit import njit
 
 
 # Levels in the SumThreshold working array (uint8):

@@ -8,7 +8,7 @@ nothing and overwrites its output arguments.
 """
 
 import numpy as np
-from numba import njit
+from .jit import njit
 
 
 @njit(nogil=True, cache=True)

@@ -23,7 +23,7 @@ overwrite their output arguments.
 """
 
 import numpy as np
-from numba import njit
+from .jit import njit
 
 _opts = dict(nogil=True, cache=True)
 

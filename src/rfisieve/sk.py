@@ -705,10 +705,10 @@ def sk_threshold_table(m_max, n=1, d=1.0, pfa=0.0013499, method="auto", min_vali
 # Flagging
 # ---------------------------------------------------------------------------
 
-import numba  # noqa: E402
+from .jit import njit  # noqa: E402
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True)
 def _flag_dumps_kernel(power, s2, valid, scale, mk, m, lower, upper, out):
     nt, nc = power.shape
     a = (mk + 1.0) / (m - 1.0)
@@ -794,7 +794,7 @@ def sk_flag_dumps(power, s2, m, n=1, d=1.0, lower=None, upper=None, valid=None, 
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True)
 def _flag_blocks_kernel(power, valid, t0, m, step, k, lo, hi, min_valid, refine, out):
     nt, nc = power.shape
     s1 = np.zeros(nc)
@@ -871,7 +871,7 @@ def _flag_blocks_kernel(power, valid, t0, m, step, k, lo, hi, min_valid, refine,
                         out[rows[i], c] = True
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True)
 def _block_histogram_kernel(power, valid, first, nb, m, k, edges, counts):
     nc = power.shape[1]
     nbins = edges.shape[0] - 1
