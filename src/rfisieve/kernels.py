@@ -378,14 +378,14 @@ def freq_local_linear(num, den, radii, out):
 
 
 # ------------------------------------------------- SumThreshold on cache-resident tiles
-_TILE_BYTES = 640 * 1024   # SumThreshold tile budget (5 bytes per sample): stays in L2
+_TILE_BYTES = 2048 * 1024  # SumThreshold tile budget (5 bytes per sample): about the L2 of a core
 
 
 def tile_width(L):
     """Lines per SumThreshold tile for lines of L samples: the largest multiple of
-    16 (at most 64, at least 16) whose tile fits in _TILE_BYTES."""
+    16 (at most 128, at least 16) whose tile fits in _TILE_BYTES."""
     b = (_TILE_BYTES // (5 * max(int(L), 1))) // 16 * 16
-    return int(min(64, max(16, b)))
+    return int(min(128, max(16, b)))
 
 
 @njit(**_opts)
