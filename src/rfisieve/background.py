@@ -243,18 +243,24 @@ def coarse_smooth(values, exclude, sigma_t, sigma_f, cell=None, work=None, t0=0)
     if x.size == 0:
         return out
     G = _coarse_grid(x, ex, ex, sigma_t, sigma_f, ct, cf, {} if work is None else work, t0)
-    kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, np.zeros((1, 1), np.uint8), out, False,
+    kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, np.zeros((1, 1), np.uint8), out, 0,
                           np.empty((G.shape[0], x.shape[1])))
     return out
 
 
-def coarse_residual(x, ex1, ex2, lev0, sigma_t, sigma_f, out, work, t0=0):
+def coarse_residual(x, ex1, ex2, lev0, sigma_t, sigma_f, out, work, t0=0, grid=None):
     """r = x / B - 1 with B = :func:`coarse_smooth` (x, ex1 | ex2, t0=t0), 0 where
-    lev0 is invalid, into out (internal; x float32 C-contiguous, ex1 ex2 bool)."""
+    lev0 is invalid, into out (internal; x float32 C-contiguous, ex1 ex2 bool).
+    ``grid`` = (scale, lo, hi): out is an integer plane and gets r on SumThreshold's
+    grid (:func:`rfisieve.kernels.to_grid` with these arguments), r itself is not
+    stored."""
     ct, cf = cell_size(sigma_t), cell_size(sigma_f)
     G = _coarse_grid(x, ex1, ex2, sigma_t, sigma_f, ct, cf, work, t0)
     H = _buf(work, "interp", np.float64, (G.shape[0], x.shape[1]))
-    kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, lev0, out, True, H)
+    if grid is None:
+        kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, lev0, out, 1, H)
+    else:
+        kernels.coarse_interp(G, ct, cf, _cell_offset(t0, ct), x, lev0, out, 2, H, *map(float, grid))
 
 
 def _as_plane(values):

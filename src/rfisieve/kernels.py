@@ -769,13 +769,15 @@ def coarse_solve(mom, radii, cf, out):
 
 
 @njit(**_opts)
-def coarse_interp(G, ct, cf, off, x, lev0, out, resid, H):
+def coarse_interp(G, ct, cf, off, x, lev0, out, mode, H, scale=1.0, lo=0.0, hi=0.0):
     """Bilinear interpolation of the coarse grid G (nodes at dump i ct - off + (ct - 1)/2,
     channel j cf + (cf - 1)/2; held constant beyond the outer nodes along time,
     extrapolated linearly along channels) to the full plane, rounded to float32
     as B: first along channels for every node row (into the float64 scratch H,
-    shape (G.shape[0], out.shape[1])), then along time per dump.  resid False:
-    out = B.  resid True: out = x / B - 1 (float32), 0 where lev0 is invalid."""
+    shape (G.shape[0], out.shape[1])), then along time per dump.  mode 0:
+    out = B.  mode 1: out = r = x / B - 1 (float32), 0 where lev0 is invalid.
+    mode 2: out (an integer plane) = r on SumThreshold's grid, exactly as
+    :func:`to_grid` (r, scale, lo, hi, out) would put it, without storing r."""
     n, m = out.shape
     ntc, nfc = G.shape
     hf = 0.5 * (cf - 1)
@@ -815,12 +817,21 @@ def coarse_interp(G, ct, cf, off, x, lev0, out, resid, H):
         h1 = H[min(i0 + 1, ntc - 1)]
         xt = x[t]
         ot = out[t]
-        if resid:
+        if mode == 1:
             lt = lev0[t]
             for c in range(m):
                 bg = np.float32(h0[c] + ft * (h1[c] - h0[c]))
                 vv = xt[c] / bg - one
                 ot[c] = zero if lt[c] == LEV_INVALID else vv
+        elif mode == 2:
+            lt = lev0[t]
+            for c in range(m):
+                bg = np.float32(h0[c] + ft * (h1[c] - h0[c]))
+                vv = xt[c] / bg - one
+                v = np.float64(zero if lt[c] == LEV_INVALID else vv) * scale
+                v = v if v > lo else lo
+                v = v if v < hi else hi
+                ot[c] = np.rint(v)
         else:
             for c in range(m):
                 ot[c] = np.float32(h0[c] + ft * (h1[c] - h0[c]))

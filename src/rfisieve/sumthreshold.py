@@ -92,9 +92,14 @@ def to_grid(values, chi1, max_window, out=None):
         fin = np.abs(x[np.isfinite(x)])
         chi1 = float(fin.max()) if fin.size and fin.max() > 0 else 1.0
         top = 0
-    mmax = window_sizes(max_window)[-1]
-    kernels.to_grid(x, unit / chi1, -float(mmax * unit), 2.0 * unit, out)
+    kernels.to_grid(x, *_grid_args(chi1, max_window), out)
     return out, unit * top
+
+
+def _grid_args(chi1, max_window):
+    """(scale, lo, hi) of :func:`rfisieve.kernels.to_grid` for chi1 > 0."""
+    unit = grid_unit(max_window)[0]
+    return unit / chi1, -float(window_sizes(max_window)[-1] * unit), 2.0 * unit
 
 
 def _grid_limits(unit, rho, npass, dtype):
@@ -252,10 +257,11 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     Implementation: the residual is formed in the same pass as the background's
     interpolation; SumThreshold along time runs all window passes in one sweep
     down the dumps (no transpose), along frequency on cache-resident tiles of
-    dumps, both on the integer grid of :func:`to_grid` (exact 32-bit sums);
+    dumps, both on the integer grid of :func:`to_grid` (exact 32-bit sums; with
+    a fixed ``sigma`` the residual is written straight onto the grid);
     buffers are reused between iterations and, per thread, between calls on
-    planes of one shape (about 19 bytes per sample of the last plane stay
-    allocated per thread).  Compiled with ``nogil`` (the median too): threads
+    planes of one shape (about 15 bytes per sample of the last plane stay
+    allocated per thread, 19 when the noise is estimated per plane).  Compiled with ``nogil`` (the median too): threads
     flag planes in parallel.
 
     Parameters
@@ -379,7 +385,6 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
     prev = _buf(work, "prev", np.bool_, (n, m))  # detections steering the next fit
     prev.fill(False)
     det = _buf(work, "det", np.bool_, (n, m))
-    r = _buf(work, "resid", np.float32, (n, m))
     np_t = _npass(max_window_time)
     np_f = _npass(max_window_freq)
     mw = max(window_sizes(max_window_time)[-1], window_sizes(max_window_freq)[-1])
@@ -387,17 +392,25 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
     bt, bf = float(background_time), float(background_freq)
     sig = float("nan")
     factors = threshold_factors(iterations, first_factor)
+    rg = _buf(work, "st_grid", gdt, (n, m))
     for i, factor in enumerate(factors):
-        coarse_residual(x, base_ex, prev, lev0, bt, bf, r, work, int(t0))
-        sig = robust_sigma2(r, base_ex, prev) if sigma is None else sigma
-        if not np.isfinite(sig):
-            return np.zeros((n, m), np.bool_), sig
-        c1 = float(chi1) * factor * sig
+        c1 = float(chi1) * factor * (1.0 if sigma is None else sigma)
+        if sigma is not None and c1 > 0:
+            # fixed noise: the residual goes straight onto the grid (r is not stored)
+            coarse_residual(x, base_ex, prev, lev0, bt, bf, rg, work, int(t0), grid=_grid_args(c1, mw))
+            sig, unit = sigma, grid_unit(mw)[0]
+        else:
+            r = _buf(work, "resid", np.float32, (n, m))
+            coarse_residual(x, base_ex, prev, lev0, bt, bf, r, work, int(t0))
+            sig = robust_sigma2(r, base_ex, prev) if sigma is None else sigma
+            if not np.isfinite(sig):
+                return np.zeros((n, m), np.bool_), sig
+            c1 = float(chi1) * factor * sig
+            rg, unit = to_grid(r, c1, mw, rg)
         if i == len(factors) - 1:
             det = np.empty((n, m), np.bool_)     # the result: not a reused buffer
         if some_dump_gone:
             det.fill(False)
-        rg, unit = to_grid(r, c1, mw, _buf(work, "st_grid", gdt, (n, m)))
         _st_time(rg, lev0, rowbad, colbad, unit, float(rho), np_t, det, False)
         # frequency pass on lev0 joined by the time detections in det
         _st_freq(rg, lev0, rowbad, colbad, unit, float(rho), np_f, det, True)
