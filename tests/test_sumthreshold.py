@@ -420,3 +420,26 @@ def test_no_false_dumps_between_lines():
         assert hit[truth].mean() > 0.99
         false += fa.sum()
     assert false / (6 * n * (m - 2)) < 1e-4
+
+
+def test_residual_straight_onto_the_grid_equals_to_grid_of_the_residual():
+    # With a fixed noise sigma the flagger has the background's interpolation pass write
+    # the residual straight onto SumThreshold's grid; it must be exactly to_grid(r).
+    from rfisieve.background import coarse_residual
+    from rfisieve.sumthreshold import _grid_args, _levels
+
+    rng = np.random.default_rng(31)
+    x, _ = _line_rfi_plane(rng, 300, 77)
+    x[5, 7] = np.nan
+    invalid = ~np.isfinite(x)
+    ex = invalid | (rng.random(x.shape) < 0.02)
+    lev, _, _ = _levels(x.shape, ex & ~invalid, invalid)
+    none = np.zeros(x.shape, bool)
+    for c1 in (0.02, 0.3, 5.0):
+        for mw in (32, 128, 512):
+            r = np.empty(x.shape, np.float32)
+            coarse_residual(x, ex, none, lev, 15.0, 5.0, r, {}, 3)
+            want, _ = to_grid(r, c1, mw)
+            got = np.empty(x.shape, grid_unit(mw)[1])
+            coarse_residual(x, ex, none, lev, 15.0, 5.0, got, {}, 3, grid=_grid_args(c1, mw))
+            np.testing.assert_array_equal(got, want)
