@@ -53,6 +53,7 @@ import numpy as np
 from . import __version__, bits
 from .errors import RfisieveError, ScanError
 from .io import atomic_output, file_identity, open_scan
+from .pages import small_pages
 from .masks import amplitude, bit_attrs, channel_cut, invalid_mask, static_channels
 
 DETECTORS = ("sk", "sumthreshold")
@@ -560,6 +561,7 @@ def _fail_clean(fn):
 
 
 # -- stages -------------------------------------------------------------------------
+@small_pages
 @_fail_clean
 def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
     """Run one detector over a scan; write its partial mask (its bit + the invalid bit)."""
@@ -644,6 +646,7 @@ def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
         flags[c0:c1] = block
 
 
+@small_pages
 @_fail_clean
 def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progress=None):
     """Merge partial masks with the input, invalid and static bits into the final mask.
@@ -740,6 +743,7 @@ def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
     _flag_one_pass(scan_path, out_path, band, run, band_source, progress)
 
 
+@small_pages
 @_fail_clean
 def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
     from concurrent.futures import ThreadPoolExecutor
