@@ -71,7 +71,7 @@ clipped_planes = st.integers(1, 40).flatmap(lambda n: st.integers(1, 4).flatmap(
 
 
 @hsettings(max_examples=150, deadline=None)
-@given(clipped_planes, st.sampled_from([2, 4, 16, 128]))
+@given(clipped_planes, st.sampled_from([2, 4, 16, 128, 256]))
 def test_grid_clip_changes_no_result(data, max_window):
     # grid_unit's claim: values clipped to [-M_max chi_1, 2 chi_1] before the integer
     # sums decide every window as the unclipped float64 definition does.  chi1 = 8,
@@ -319,7 +319,7 @@ def test_time_sweep_long_windows():
     flagged = rng.random(x.shape) < 0.05
     invalid = (rng.random(x.shape) < 0.02) & ~flagged
     invalid[:, 5] = False
-    for mw in (64, 128):
+    for mw in (64, 128, 256):
         got = sumthreshold(x, flagged, chi1=4.0, rho=1.5, max_window=mw, invalid=invalid)
         want = brute_sumthreshold(x, flagged, invalid, 4.0, 1.5, mw)
         np.testing.assert_array_equal(got, want)
