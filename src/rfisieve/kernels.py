@@ -9,6 +9,9 @@ check nothing and may overwrite their output arguments.
 
 Loop shapes:
 
+* SumThreshold sums integers: its planes are on the grid of :func:`to_grid`
+  (:func:`rfisieve.sumthreshold.grid_unit`), so window sums are exact and run in
+  32-bit lanes;
 * along axis 0 (time, the strided axis): one running quantity per channel and an
   inner loop over the contiguous channel axis, which the compiler vectorises.
   SumThreshold along time (:func:`st_time_pipe`) runs all its window passes in
@@ -204,16 +207,22 @@ def init_levels(flagged, invalid, lev):
 
 
 @njit(**_opts)
+def _on_grid(x, scale, lo, hi):
+    """rint(clip(x * scale, lo, hi)) in float64, NaN to lo."""
+    v = np.float64(x) * scale
+    v = v if v > lo else lo
+    v = v if v < hi else hi
+    return np.rint(v)
+
+
+@njit(**_opts)
 def to_grid(x, scale, lo, hi, out):
     """SumThreshold's integer grid: out = rint(clip(x * scale, lo, hi)) in
     float64 (NaN to lo), into the integer plane out."""
     n, m = x.shape
     for t in range(n):
         for c in range(m):
-            v = np.float64(x[t, c]) * scale
-            v = v if v > lo else lo
-            v = v if v < hi else hi
-            out[t, c] = np.rint(v)
+            out[t, c] = _on_grid(x[t, c], scale, lo, hi)
 
 
 @njit(**_opts)
@@ -828,10 +837,7 @@ def coarse_interp(G, ct, cf, off, x, lev0, out, mode, H, scale=1.0, lo=0.0, hi=0
             for c in range(m):
                 bg = np.float32(h0[c] + ft * (h1[c] - h0[c]))
                 vv = xt[c] / bg - one
-                v = np.float64(zero if lt[c] == LEV_INVALID else vv) * scale
-                v = v if v > lo else lo
-                v = v if v < hi else hi
-                ot[c] = np.rint(v)
+                ot[c] = _on_grid(zero if lt[c] == LEV_INVALID else vv, scale, lo, hi)
         else:
             for c in range(m):
                 ot[c] = np.float32(h0[c] + ft * (h1[c] - h0[c]))
