@@ -147,9 +147,10 @@ def sumthreshold(values, mask=None, chi1=6.0, rho=1.5, max_window=32, axis=0, in
     Sums are exact: samples and thresholds are first put on an integer grid of
     chi_1 / 65536 for windows up to 128 (:func:`grid_unit`, :func:`to_grid`), so
     a window mean within about 1e-5 chi_1 of its threshold may be decided as on
-    the rounded values (far below float32's own resolution of the residuals
-    times the window); in exchange no sum depends on its order, and the
-    compiled sweeps run eight 32-bit lanes per instruction instead of four.
+    the rounded values, not as in exact arithmetic.  That is far below the
+    uncertainty of chi_1 itself (a noise estimate's sampling error is about
+    0.3 %); in exchange no sum depends on its order, and the compiled sweeps
+    run eight 32-bit lanes per instruction instead of four.
 
     Parameters
     ----------
@@ -261,8 +262,8 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     a fixed ``sigma`` the residual is written straight onto the grid);
     buffers are reused between iterations and, per thread, between calls on
     planes of one shape (about 15 bytes per sample of the last plane stay
-    allocated per thread, 19 when the noise is estimated per plane).  Compiled with ``nogil`` (the median too): threads
-    flag planes in parallel.
+    allocated per thread, 19 when the noise is estimated per plane).  Compiled
+    with ``nogil`` (the median too): threads flag planes in parallel.
 
     Parameters
     ----------
