@@ -86,6 +86,46 @@ def sir_rows_reach(mask, eta, reach, out):
 
 
 @njit(**_opts)
+def _max_into(acc, row, m):
+    """acc[c] = max(acc[c], row[c]) for c < m (row a 1-D view: vectorises)."""
+    for c in range(m):
+        v = row[c]
+        acc[c] = v if v > acc[c] else acc[c]
+
+
+@njit(**_opts)
+def _min_into(acc, row, m):
+    """acc[c] = min(acc[c], row[c]) for c < m."""
+    for c in range(m):
+        v = row[c]
+        acc[c] = v if v < acc[c] else acc[c]
+
+
+@njit(**_opts)
+def _interval_hit(hv, lv, col, y, lo, hi, off, msk, tol):
+    """One SIR decision from prefix values: max over y < Y2 <= hi of W(Y2) minus
+    min over lo <= Y1 <= y of W(Y1) >= -tol, W(Y) = hv[(Y + off) & msk, col] for
+    the maxima and lv[...] for the minima; the minimum is searched downwards from
+    y and stops as soon as the difference suffices (it only grows as the minimum
+    falls)."""
+    best2 = hv[(y + 1 + off) & msk, col]
+    for y2 in range(y + 2, hi + 1):
+        v = hv[(y2 + off) & msk, col]
+        if v > best2:
+            best2 = v
+    lo1 = lv[(y + off) & msk, col]
+    if best2 - lo1 >= -tol:
+        return True
+    for y1 in range(y - 1, lo - 1, -1):
+        v = lv[(y1 + off) & msk, col]
+        if v < lo1:
+            lo1 = v
+            if best2 - lo1 >= -tol:
+                return True
+    return False
+
+
+@njit(**_opts)
 def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
     """out = mask | T | F for a C-contiguous bool (n, m) plane, in one sweep down
     the dumps.
@@ -134,6 +174,8 @@ def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
     ppad = np.zeros(m + 1 + 2 * rf2, np.int64)   # along a dump: flagged in channels < k
     wmax = np.full(m + 1 + 2 * rf2, -np.inf)
     wmin = np.full(m + 1 + 2 * rf2, np.inf)
+    wmax2 = wmax.reshape(-1, 1)         # 2-D views for _interval_hit (column 0)
+    wmin2 = wmin.reshape(-1, 1)
     if do_t:
         for t in range(rt):
             for c in range(m):
@@ -174,40 +216,18 @@ def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
                 for c in range(m):
                     mx[c] = rw[c]
                 for y2 in range(t + 2, hi + 1):
-                    rw = ring[y2 & MS]
-                    for c in range(m):
-                        v = rw[c]
-                        mx[c] = v if v > mx[c] else mx[c]
+                    _max_into(mx, ring[y2 & MS], m)
                 rw = ring[t & MS]
                 for c in range(m):
                     mn[c] = rw[c]
                 for y1 in range(lo, t):
-                    rw = ring[y1 & MS]
-                    for c in range(m):
-                        v = rw[c]
-                        mn[c] = v if v < mn[c] else mn[c]
+                    _min_into(mn, ring[y1 & MS], m)
                 for c in range(m):
                     out[t, c] = mask[t, c] | (mx[c] - mn[c] >= -tol)
             elif nc > 0:
                 for c in range(m):
                     if cnt[c] >= kt and not mask[t, c]:
-                        best2 = ring[(t + 1) & MS, c]
-                        for y2 in range(t + 2, hi + 1):
-                            v = ring[y2 & MS, c]
-                            if v > best2:
-                                best2 = v
-                        lo1 = ring[t & MS, c]
-                        hit = best2 - lo1 >= -tol
-                        if not hit:
-                            for y1 in range(t - 1, lo - 1, -1):
-                                v = ring[y1 & MS, c]
-                                if v < lo1:
-                                    lo1 = v
-                                    # fl(best2 - lo1) only grows as lo1 falls
-                                    if best2 - lo1 >= -tol:
-                                        hit = True
-                                        break
-                        out[t, c] = hit
+                        out[t, c] = _interval_hit(ring, ring, c, t, lo, hi, 0, MS, tol)
         if do_f:
             # ppad[rf + k] = C(k) for 0 <= k <= m, C(0) to the left, C(m) to the right
             s = 0
@@ -235,14 +255,8 @@ def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
                     for c in range(m):
                         mn[c] = wv[c]
                     for j in range(1, rf + 1):
-                        wv = wmax[rf + 1 + j:]
-                        for c in range(m):
-                            v = wv[c]
-                            mx[c] = v if v > mx[c] else mx[c]
-                        wv = wmin[rf - j:]
-                        for c in range(m):
-                            v = wv[c]
-                            mn[c] = v if v < mn[c] else mn[c]
+                        _max_into(mx, wmax[rf + 1 + j:], m)
+                        _min_into(mn, wmin[rf - j:], m)
                     for c in range(m):
                         out[t, c] = out[t, c] | (mx[c] - mn[c] >= -tol)
                 elif nc > 0:
@@ -250,19 +264,4 @@ def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
                         if not out[t, c] and phi[c] - ppad[c] >= kf:
                             hi = min(c + rf + 1, m)
                             lo = max(c - rf, 0)
-                            best2 = wmax[rf + c + 1]
-                            for y2 in range(c + 2, hi + 1):
-                                v = wmax[rf + y2]
-                                if v > best2:
-                                    best2 = v
-                            lo1 = wmin[rf + c]
-                            hit = best2 - lo1 >= -tol
-                            if not hit:
-                                for y1 in range(c - 1, lo - 1, -1):
-                                    v = wmin[rf + y1]
-                                    if v < lo1:
-                                        lo1 = v
-                                        if best2 - lo1 >= -tol:
-                                            hit = True
-                                            break
-                            out[t, c] = hit
+                            out[t, c] = _interval_hit(wmax2, wmin2, 0, c, lo, hi, rf, -1, tol)
