@@ -1,10 +1,10 @@
 #!/usr/bin/env python
 """Flagging-quality benchmark against simulated truth (not a test; not in CI).
 
-For each scene (a simulated scan with its truth file, rfisieve.simulate):
+For each scene (a simulated scan with its truth file, rfisieve.sim.scans):
 
-1. rfisieve with the default band settings (``rfisieve.engine.flag_scan``), scored
-   with ``rfisieve.score`` (recall per INR bin and per kind, false alarms on clean
+1. rfisieve with the default band settings (``rfisieve.engine.core.flag_scan``), scored
+   with ``rfisieve.evaluate.score`` (recall per INR bin and per kind, false alarms on clean
    samples);
 2. the fair comparison: astropy's ``sigma_clip`` applied per channel along time to each
    product's plane (median centre, standard-deviation scale, 5 iterations: what a user
@@ -13,7 +13,7 @@ For each scene (a simulated scan with its truth file, rfisieve.simulate):
    at equal false alarms.
 
 Samples that are input-, invalid- or static-flagged, and dropped dumps, are left out of
-both methods' scores (they are not a flagging decision; see rfisieve.score).
+both methods' scores (they are not a flagging decision; see rfisieve.evaluate.score).
 
     .venv/bin/python bench/quality.py                      # all scenes, ~ a few minutes
     .venv/bin/python bench/quality.py --scenes noise carriers
@@ -36,7 +36,7 @@ import h5py
 import numpy as np
 
 from rfisieve import bits
-from rfisieve.score import (INR_BINS, PRIOR_BITS, add_counts, count_arrays, finish,
+from rfisieve.evaluate.score import (INR_BINS, PRIOR_BITS, add_counts, count_arrays, finish,
                             parse_kinds)
 
 NTIME, NCHAN, ACC = 2048, 256, 256
@@ -133,7 +133,7 @@ SCENES = {
 
 
 def simulate(name, outdir, seed, ntime, nchan, accumulations):
-    from rfisieve.simulate import simulate_scan
+    from rfisieve.sim.scans import simulate_scan
 
     _, kw = SCENES[name]
     kw = dict(kw)
@@ -194,9 +194,9 @@ def matched_clip(values, invalid, prior, inr, kind, dropped, kinds, target_fa):
 
 
 def run_scene(name, tmp, band, run, seed, ntime, nchan, acc):
-    from rfisieve.engine import flag_scan
-    from rfisieve.io import open_scan
-    from rfisieve.masks import amplitude
+    from rfisieve.engine.core import flag_scan
+    from rfisieve.io.scan import open_scan
+    from rfisieve.detect.masks import amplitude
 
     t0 = time.time()
     scan, truth = simulate(name, tmp, seed, ntime, nchan, acc)
@@ -278,8 +278,8 @@ def main(argv=None):
     ap.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     args = ap.parse_args(argv)
 
-    from rfisieve.config import parse_set
-    from rfisieve.settings import band_settings, run_settings
+    from rfisieve.config.load import parse_set
+    from rfisieve.config.defaults import band_settings, run_settings
     from scipy.stats import norm
 
     override = parse_set(args.sets)

@@ -3,7 +3,7 @@
 A dump's mean power over N raw spectra of complex-voltage noise is Gamma(N, mu/N)
 (radiometer equation: relative rms 1/sqrt(N); Wilson, Rohlfs & Huettemeister,
 Tools of Radio Astronomy).  Interference is added as plain extra power here; the
-demo simulator (rfisieve.simulate) models it at the voltage level.
+demo simulator (rfisieve.sim.scans) models it at the voltage level.
 """
 
 import h5py

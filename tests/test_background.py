@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from rfisieve.background import (box_radii, box_reach, fit_background, masked_smooth,
+from rfisieve.detect.background import (box_radii, box_reach, fit_background, masked_smooth,
                                  robust_sigma)
 
 
@@ -126,7 +126,7 @@ def test_robust_sigma_subsample_stable():
 
 
 # ---------------------------------------------------------------- coarse-grid fit
-from rfisieve.background import cell_size, coarse_reach, coarse_smooth  # noqa: E402
+from rfisieve.detect.background import cell_size, coarse_reach, coarse_smooth  # noqa: E402
 
 
 def _sim_plane(rng, n=512, m=256, noise=0.01):

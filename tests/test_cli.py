@@ -165,7 +165,7 @@ def test_stage_commands_make_a_mask(tmp_path):
 
 
 def test_inspect_a_demo_simulator_scan(tmp_path, capsys):
-    from rfisieve.simulate import simulate_scan
+    from rfisieve.sim.scans import simulate_scan
 
     path = tmp_path / "qro_test_UHF.h5"
     simulate_scan(path, band="UHF", ntime=32, nchan=16, cross=True, with_s2=False, seed=1)

@@ -7,7 +7,9 @@ from pathlib import Path
 import pytest
 import yaml
 
-from rfisieve import config, settings
+from rfisieve.config import load as config
+
+from rfisieve.config import defaults as settings
 from rfisieve.errors import ConfigError
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -7,7 +7,7 @@ GSM-900 downlink 925-960 MHz (3GPP TS 45.005).  All from memory of those documen
 
 import pytest
 
-from rfisieve.emitters import load_emitters, match_emitters
+from rfisieve.review.emitters import load_emitters, match_emitters
 from rfisieve.errors import ConfigError
 
 

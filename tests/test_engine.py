@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 
 from rfisieve import bits
-from rfisieve.engine import detect, flag_scan, merge, plan_scan
+from rfisieve.engine.core import detect, flag_scan, merge, plan_scan
 from rfisieve.errors import ScanError
-from rfisieve.settings import band_settings, run_settings
+from rfisieve.config.defaults import band_settings, run_settings
 from scanfactory import make_scan
 
 BAND = band_settings({"band": "L"})
@@ -219,8 +219,8 @@ def test_other_layout_axis_order(tmp_path):
 def test_prepare_equals_numpy_definition(dtype, auto):
     # the one-pass kernel against masks.amplitude / masks.invalid_mask and the OR of
     # the static and input flags written out in numpy (DESIGN.md 2.2, bits 0-2)
-    from rfisieve.engine import _prepare
-    from rfisieve.masks import amplitude, invalid_mask
+    from rfisieve.engine.core import _prepare
+    from rfisieve.detect.masks import amplitude, invalid_mask
 
     rng = np.random.default_rng(3)
     block = rng.normal(1.0, 0.5, size=(40, 9, 3))
@@ -251,9 +251,9 @@ def test_merge_plane_equals_numpy_definition(limit, eta):
     # the compiled merge against the bit rules of DESIGN.md 2.2 written out in numpy:
     # growth (bit 5) only where the SIR operator adds to the detectors' flags, the dump
     # cut (bit 6) only on samples no other cause flagged
-    from rfisieve.engine import _merge_plane
-    from rfisieve.masks import dump_cut
-    from rfisieve.morphology import sir_grow
+    from rfisieve.engine.core import _merge_plane
+    from rfisieve.detect.masks import dump_cut
+    from rfisieve.detect.growth import sir_grow
 
     rng = np.random.default_rng(8)
     det = np.zeros((60, 24), np.uint8)

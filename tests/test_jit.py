@@ -1,4 +1,4 @@
-"""rfisieve.jit: numba's registry is loaded without the scipy.linalg import, and
+"""rfisieve.detect._jit: numba's registry is loaded without the scipy.linalg import, and
 scipy.linalg still works afterwards in the same process."""
 
 import subprocess
@@ -7,7 +7,7 @@ import sys
 CODE = """
 import sys
 import numpy as np
-from rfisieve import kernels
+from rfisieve.detect import _kernels as kernels
 assert 'scipy.linalg' not in sys.modules, 'the BLAS probe imported scipy.linalg'
 x = np.zeros((3, 4), np.float32); out = np.empty((3, 4), np.int32)
 kernels.to_grid(x, 1.0, -1.0, 1.0, out)                  # a kernel loads and runs

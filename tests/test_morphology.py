@@ -4,14 +4,14 @@ import numpy as np
 from hypothesis import given, settings as hsettings, strategies as st
 from hypothesis.extra import numpy as hnp
 
-from rfisieve.morphology import sir_grow, sir_halo, sir_operator
+from rfisieve.detect.growth import sir_grow, sir_halo, sir_operator
 
 
 def brute_sir(f, eta, reach=None):
     """Straight from the definition (Offringa, van de Gronde & Roerdink 2012,
     A&A 539, A95; DESIGN.md 3): y is flagged when it lies in some interval
     [Y1, Y2) holding at least (1 - eta)(Y2 - Y1) flagged samples.  With
-    ``reach`` = R (the project's bounded-reach variant, rfisieve.morphology) only
+    ``reach`` = R (the project's bounded-reach variant, rfisieve.detect.growth) only
     intervals with Y1 >= y - R and Y2 <= y + 1 + R count."""
     n = len(f)
     out = np.zeros(n, bool)
@@ -106,7 +106,7 @@ def test_sir_reach_limits():
     np.testing.assert_array_equal(sir_operator(f, 0.3, max_reach=200), sir_operator(f, 0.3))
     np.testing.assert_array_equal(sir_operator(f, 0.3, max_reach=10 ** 6), sir_operator(f, 0.3))
     # the compiled kernel itself (the wrapper short-cuts R >= length to the published one)
-    from rfisieve import kernels_morph
+    from rfisieve.detect import _growth_kernels as kernels_morph
     out = np.empty((1, 200), bool)
     kernels_morph.sir_rows_reach(f[None, :], 0.3, 250, out)
     np.testing.assert_array_equal(out[0], sir_operator(f, 0.3))
@@ -244,7 +244,7 @@ _reaches = st.one_of(st.none(), st.integers(0, 6), st.integers(0, 80))
 @hsettings(max_examples=250, deadline=None)
 @given(_run_masks(), st.integers(0, 1000).map(lambda i: i / 1000), _reaches, _reaches)
 def test_sir_grow_fused_equals_definition(f, eta, rt, rf):
-    # the fused kernel (rfisieve.kernels_morph.sir_grow_reach with its candidate
+    # the fused kernel (rfisieve.detect._growth_kernels.sir_grow_reach with its candidate
     # skip) against the definition along each axis, OR-ed with the input
     np.testing.assert_array_equal(sir_grow(f, eta, reach_time=rt, reach_freq=rf),
                                   _grow_by_definition(f, eta, rt, rf))
@@ -278,7 +278,7 @@ def test_sir_grow_fused_planes():
 
 
 def test_sir_grow_tolerance_ties_and_skip_threshold():
-    from rfisieve.morphology import _skip_threshold
+    from rfisieve.detect.growth import _skip_threshold
     # eta = 0.1, R = 16: an interval of L samples needs ceil(0.9 L - 1e-9)
     # flagged ones; a clean sample needs L >= 10, so >= 9 flagged ones within 16
     # (from the definition); R = 4 adds nothing (floor(eta (R + 1)) = 0)

@@ -11,7 +11,9 @@ import h5py
 import numpy as np
 import pytest
 
-from rfisieve import bits, occupancy as occ
+from rfisieve import bits
+
+from rfisieve.review import occupancy as occ
 from rfisieve.errors import ScanError
 
 PRODUCTS = ["q01h-q01h", "q01h-q02h", "q02v-q02v"]

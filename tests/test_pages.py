@@ -1,10 +1,10 @@
-"""rfisieve.pages: numpy's huge-page advice is off while the engine runs, restored after,
+"""rfisieve.engine.pages: numpy's huge-page advice is off while the engine runs, restored after,
 and left alone when the user set NUMPY_MADVISE_HUGEPAGE."""
 
 import pytest
 from numpy._core import multiarray
 
-from rfisieve.pages import small_pages
+from rfisieve.engine.pages import small_pages
 
 
 def _current():

@@ -17,7 +17,11 @@ import h5py
 import numpy as np
 import pytest
 
-from rfisieve import bits, occupancy as occ, review
+from rfisieve import bits
+
+from rfisieve.review import occupancy as occ
+
+from rfisieve.review import page as review
 
 PRODUCTS = ["q01h-q01h", "q01h-q02h", "q02h-q02h"]
 PNG_SIG = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
@@ -154,7 +158,7 @@ def test_kurtosis_summary_sees_a_wrong_m():
     sd = np.sqrt(4 * 64**2 / (63 * 66 * 67))
     edges = np.linspace(0, 3, 301)
     counts = np.histogram(rng.normal(1, sd, 50000), edges)[0][None, :]
-    from rfisieve.review_plots import sk_summary
+    from rfisieve.review.plots import sk_summary
     ok = sk_summary({"edges": edges, "counts": counts, "attrs": {"m": 64, "n": 1, "d": 1.0}})[0]
     bad = sk_summary({"edges": edges, "counts": counts, "attrs": {"m": 16, "n": 1, "d": 1.0}})[0]
     assert 0.9 < ok["ratio"] < 1.1
@@ -163,7 +167,7 @@ def test_kurtosis_summary_sees_a_wrong_m():
 
 def test_expected_curve_uses_published_thresholds():
     # Nita & Gary 2010b Table 1: M = 300, N = 10, d = 1, type III thresholds 0.76754 / 1.28212 at 0.13499 %
-    from rfisieve.review_plots import expected_sk_pdf
+    from rfisieve.review.plots import expected_sk_pdf
     _, dist, mean, var, note = expected_sk_pdf(np.array([1.0]), 300, 10, 1.0)
     assert mean == pytest.approx(1.0)
     assert dist.ppf(0.0013499) == pytest.approx(0.76754, abs=2e-3)

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from rfisieve import bits
-from rfisieve.score import score_arrays, score_files
+from rfisieve.evaluate.score import score_arrays, score_files
 
 KINDS = {1: "carrier", 3: "burst"}
 
@@ -142,9 +142,9 @@ def test_injected_carrier_recovered_on_pure_noise(tmp_path):
     # Injection-recovery through the engine: gamma-distributed dump powers (radiometer
     # equation, relative rms 1/sqrt(N); Wilson, Rohlfs & Huettemeister, Tools of Radio
     # Astronomy) with a carrier of INR 4 in one channel for 300 dumps.
-    from rfisieve.engine import flag_scan
-    from rfisieve.inject import add_interference
-    from rfisieve.settings import band_settings, run_settings
+    from rfisieve.engine.core import flag_scan
+    from rfisieve.evaluate.inject import add_interference
+    from rfisieve.config.defaults import band_settings, run_settings
 
     rng = np.random.default_rng(11)
     ntime, nchan, nprod, acc = 1024, 64, 2, 256

@@ -1,4 +1,4 @@
-"""Tests of the simulator (rfisieve.simulate): noise statistics, truth, layout, writer.
+"""Tests of the simulator (rfisieve.sim.scans): noise statistics, truth, layout, writer.
 
 Reference values come from the radiometer equation (relative rms 1/sqrt(N); Wilson,
 Rohlfs & Huettemeister, Tools of Radio Astronomy), the spectral-kurtosis estimator and
@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from rfisieve import simulate
-from rfisieve.simulate import inject, register_cli, simulate_night, simulate_scan
-from rfisieve.simulate_draw import wishart_sum
+from rfisieve.sim import scans as simulate
+from rfisieve.sim.scans import inject, register_cli, simulate_night, simulate_scan
+from rfisieve.sim.draw import wishart_sum
 
 KIND_NAMES = {"carrier", "pulsed", "burst", "drifting", "intermittent", "noiselike"}
 

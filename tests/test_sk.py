@@ -1,4 +1,4 @@
-"""Tests of the spectral kurtosis detector (rfisieve.sk, rfisieve.sk_moments).
+"""Tests of the spectral kurtosis detector (rfisieve.detect.kurtosis, rfisieve.detect.kurtosis_moments).
 
 Every check value names its source.  Simulations draw Gaussian-noise powers as
 Gamma(N d) variables (the mean of N raw powers of a complex, d = 1, or real, d = 1/2,
@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from rfisieve import sk
-from rfisieve.sk_moments import sk_central_moments, sk_moments, sk_raw_moments
+from rfisieve.detect import kurtosis as sk
+from rfisieve.detect.kurtosis_moments import sk_central_moments, sk_moments, sk_raw_moments
 
 
 def _sim_sk(rng, m, k, trials):

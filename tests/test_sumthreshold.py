@@ -7,9 +7,9 @@ import pytest
 from hypothesis import given, settings as hsettings, strategies as st
 from hypothesis.extra import numpy as hnp
 
-from rfisieve.background import fit_background, robust_sigma
-from rfisieve.settings import BAND_DEFAULTS
-from rfisieve.sumthreshold import (sumthreshold, sumthreshold_1d, sumthreshold_flagger,
+from rfisieve.detect.background import fit_background, robust_sigma
+from rfisieve.config.defaults import BAND_DEFAULTS
+from rfisieve.detect.sumthreshold import (sumthreshold, sumthreshold_1d, sumthreshold_flagger,
                                    grid_unit, sumthreshold_halo, sumthreshold_noise,
                                    threshold_factors, to_grid, window_sizes)
 
@@ -181,7 +181,7 @@ def _line_rfi_plane(rng, n=512, m=256, noise=0.01):
 def test_line_rfi_recall_and_false_positives():
     # Check value: Offringa et al. 2010, MNRAS 405, 155 report about 95 % of the
     # RFI recognised at about 0.1 % false positives on simple simulated
-    # line-shaped RFI.  Band defaults of rfisieve.settings except chi1 = 8
+    # line-shaped RFI.  Band defaults of rfisieve.config.defaults except chi1 = 8
     # (recommended default): with chi1 = 6 this simulation gives recall 99.4 %
     # at 0.43 % false positives (line-end overshoot of the larger windows),
     # with chi1 = 8 recall 98.2 % at 0.054 %.
@@ -292,7 +292,7 @@ def test_flagger_edge_cases():
 def test_frequency_tiles_equal_definition():
     # SumThreshold along frequency on transposed tiles (several tiles, a partial
     # last one, wholly and partly invalid lines) against the definition.
-    from rfisieve.sumthreshold import _levels, _st_freq
+    from rfisieve.detect.sumthreshold import _levels, _st_freq
     rng = np.random.default_rng(21)
     for n, m in ((150, 90), (17, 300), (70, 33)):
         x = (rng.standard_normal((n, m)) * 2).astype(np.float32)
@@ -330,7 +330,7 @@ def test_chunks_exact_with_the_whole_plane_noise(monkeypatch):
     # chunks cut at multiples of the background cell with sumthreshold_halo
     # dumps of halo reproduce the whole-plane result exactly: the halo covers
     # SumThreshold's and the coarse background's reach.
-    import rfisieve.sumthreshold as stm
+    import rfisieve.detect.sumthreshold as stm
     rng = np.random.default_rng(6)
     x, _ = _line_rfi_plane(rng, 1024, 96)
     s = _st_settings()
@@ -425,8 +425,8 @@ def test_no_false_dumps_between_lines():
 def test_residual_straight_onto_the_grid_equals_to_grid_of_the_residual():
     # With a fixed noise sigma the flagger has the background's interpolation pass write
     # the residual straight onto SumThreshold's grid; it must be exactly to_grid(r).
-    from rfisieve.background import coarse_residual
-    from rfisieve.sumthreshold import _grid_args, _levels
+    from rfisieve.detect.background import coarse_residual
+    from rfisieve.detect.sumthreshold import _grid_args, _levels
 
     rng = np.random.default_rng(31)
     x, _ = _line_rfi_plane(rng, 300, 77)

@@ -8,8 +8,8 @@ from pathlib import Path
 import numpy as np
 import yaml
 
-from rfisieve.inject import add_interference, plan_injections, robust_rms, truth_planes
-from rfisieve.tune import suggest, sweep_values
+from rfisieve.evaluate.inject import add_interference, plan_injections, robust_rms, truth_planes
+from rfisieve.evaluate.tune import suggest, sweep_values
 from scanfactory import make_scan
 
 REPO = Path(__file__).resolve().parents[1]
@@ -42,7 +42,7 @@ def test_tune_writes_suggestion_and_touches_nothing(tmp_path, capsys):
     for section, key in (("sumthreshold", "chi1"), ("kurtosis", "sigma"), ("growth", "eta")):
         assert isinstance(data[section][key], float)
     # the suggestion is a valid band config
-    from rfisieve.config import load_band_file
+    from rfisieve.config.load import load_band_file
 
     load_band_file(sugg, "L")
     assert (tmp_path / "out" / "tune_L.png").stat().st_size > 0

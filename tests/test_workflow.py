@@ -182,7 +182,8 @@ def test_killed_run_resumes_without_redoing_finished_scans(night, tmp_path):
 
 def test_distributed_scheduler_flags_like_threads(night, tmp_path):
     distributed = pytest.importorskip("distributed")
-    from rfisieve import config, engine
+    from rfisieve.config import load as config
+    from rfisieve.engine import core as engine
 
     scan = night["scans"] / "night-q1.h5"
     band, source = config.load_band(night["bands"], "L")

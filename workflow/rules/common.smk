@@ -7,9 +7,9 @@ import re
 import shlex
 import sys
 
-from rfisieve import config as rfconfig
-from rfisieve import io as rfio
-from rfisieve.settings import run_settings
+from rfisieve.config import load as rfconfig
+from rfisieve.io import scan as rfio
+from rfisieve.config.defaults import run_settings
 
 # `config` was validated by the Snakefile; fill in the defaults of keys it leaves out.
 RUN = run_settings(config)

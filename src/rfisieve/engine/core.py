@@ -1,8 +1,8 @@
 """The flagging engine: chunks of dumps with halos, (chunk x product) tasks on dask.
 
-Layering: this module reads scans through :mod:`rfisieve.io`, calls the detectors
-(pure array functions in :mod:`rfisieve.sk`, :mod:`rfisieve.sumthreshold`,
-:mod:`rfisieve.morphology`) and writes mask files.  It knows nothing of Snakemake.
+Layering: this module reads scans through :mod:`rfisieve.io.scan`, calls the detectors
+(pure array functions in :mod:`rfisieve.detect.kurtosis`, :mod:`rfisieve.detect.sumthreshold`,
+:mod:`rfisieve.detect.growth`) and writes mask files.  It knows nothing of Snakemake.
 
 Chunks and halos
 ----------------
@@ -10,7 +10,7 @@ A scan is cut along time into chunks of ``chunk_dumps`` dumps.  Each task flags 
 chunk plus ``halo`` dumps on each side and keeps only the chunk's own rows.  The halo
 rule (see :func:`detect_halo`) is the larger of the detectors' own reach:
 SumThreshold's (per iteration, the background's reach plus the sum of M - 1 over the
-time windows, from :func:`rfisieve.sumthreshold.sumthreshold_halo`: 304 dumps at the
+time windows, from :func:`rfisieve.detect.sumthreshold.sumthreshold_halo`: 304 dumps at the
 defaults) and the kurtosis blocks' (M - 1 dumps, blocks being aligned to absolute dump
 numbers).  SumThreshold's noise sigma is estimated once per scan and product, on fixed
 windows (:func:`noise_windows`), and its background cells are aligned to absolute dump
@@ -50,11 +50,13 @@ import dask
 import h5py
 import numpy as np
 
-from . import __version__, bits
-from .errors import RfisieveError, ScanError
-from .io import atomic_output, file_identity, open_scan
-from .pages import small_pages
-from .masks import amplitude, bit_attrs, channel_cut, invalid_mask, static_channels
+from rfisieve import __version__
+
+from rfisieve import bits
+from rfisieve.errors import RfisieveError, ScanError
+from rfisieve.io.scan import atomic_output, file_identity, open_scan
+from rfisieve.engine.pages import small_pages
+from rfisieve.detect.masks import amplitude, bit_attrs, channel_cut, invalid_mask, static_channels
 
 DETECTORS = ("sk", "sumthreshold")
 
@@ -85,7 +87,7 @@ def _sumthreshold_settings(band):
 def _kurtosis_halo(band, scan):
     if not band["kurtosis"]["enabled"] or scan.has_s2:
         return 0
-    from .sk import block_halo
+    from rfisieve.detect.kurtosis import block_halo
 
     return int(block_halo(int(band["kurtosis"]["block_dumps"])))
 
@@ -94,7 +96,7 @@ def detect_halo(band, scan):
     """Halo in dumps on each side of a chunk for the detection stage."""
     halo = 0
     if band["sumthreshold"]["enabled"]:
-        from .sumthreshold import sumthreshold_halo
+        from rfisieve.detect.sumthreshold import sumthreshold_halo
 
         halo = max(halo, int(sumthreshold_halo(_sumthreshold_settings(band))))
     return max(halo, _kurtosis_halo(band, scan))
@@ -102,7 +104,7 @@ def detect_halo(band, scan):
 
 def merge_halo(band):
     """Halo in dumps on each side of a chunk for the merge stage's SIR growth."""
-    from .morphology import sir_halo
+    from rfisieve.detect.growth import sir_halo
 
     g = band["growth"]
     if not (g["enabled"] and g["eta"] > 0 and g["time"]):
@@ -168,7 +170,7 @@ def _meta(scan, band):
         "static": static_channels(scan.freq, band.get("static")),
     }
     if k["enabled"]:
-        from .sk import gaussian_tail
+        from rfisieve.detect.kurtosis import gaussian_tail
 
         pfa = k["pfa"] if k.get("pfa") is not None else gaussian_tail(k["sigma"])
         if scan.has_s2:
@@ -177,7 +179,7 @@ def _meta(scan, band):
         else:
             # Mode (b): blocks of M dumps, N = raw spectra per dump.
             m, n = int(k["block_dumps"]), scan.accumulations * scan.presum
-        from .sk import sk_threshold_table, sk_thresholds
+        from rfisieve.detect.kurtosis import sk_threshold_table, sk_thresholds
 
         sk = {"mode": "s2" if scan.has_s2 else "block", "m": m, "n": n, "d": scan.d,
               "pfa": pfa, "method": k["method"]}
@@ -205,7 +207,7 @@ def noise_windows(ntime):
 
 
 def _noise_task(planes, band, meta, p, t0):
-    from .sumthreshold import sumthreshold_noise
+    from rfisieve.detect.sumthreshold import sumthreshold_noise
 
     prep = _prepare(planes, p, meta)
     if prep["excluded"].all():
@@ -255,7 +257,7 @@ def _prepare(planes, p, meta):
 
     The one-pass kernel gives what :func:`_prior` gives (tests/test_engine.py checks it).
     """
-    from .kernels_masks import prepare_plane
+    from rfisieve.detect._masks_kernels import prepare_plane
 
     auto = bool(meta["autos"][p])
     data = planes["data"]
@@ -292,7 +294,7 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
     out = np.where(invalid[r], np.uint8(bits.INVALID), np.uint8(0))
     hist = None
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
-        from .sumthreshold import sumthreshold_flagger
+        from rfisieve.detect.sumthreshold import sumthreshold_flagger
 
         hit = sumthreshold_flagger(values, invalid=excluded, sigma=meta["sigma"][p], t0=t0,
                                    **_sumthreshold_settings(band))
@@ -304,7 +306,7 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
 
 
 def _kurtosis(prep, values, excluded, sk, t0, core):
-    from .sk import sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
+    from rfisieve.detect.kurtosis import sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
 
     m, n, d = sk["m"], sk["n"], sk["d"]
     valid = ~excluded
@@ -594,8 +596,8 @@ def _merge_plane(det, extra, band, core):
     ``det`` holds the partial masks' bits OR-ed, ``extra`` the input and static bits;
     returns the uint8 (core rows, chan) plane with growth (bit 5) and dump cuts (bit 6).
     """
-    from .kernels_masks import merge_bits
-    from .morphology import sir_grow
+    from rfisieve.detect._masks_kernels import merge_bits
+    from rfisieve.detect.growth import sir_grow
 
     g = band["growth"]
     det = np.ascontiguousarray(det, dtype=np.uint8)

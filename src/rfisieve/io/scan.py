@@ -3,7 +3,7 @@
 Scans are opened read-only and validated against the layout table; every problem is
 raised as :class:`~rfisieve.errors.ScanError` with a one-line message naming the file.
 Users whose files use other dataset names or axis orders describe them in the run
-config's ``layout`` (see :data:`rfisieve.settings.RUN_DEFAULTS`); nothing beyond that
+config's ``layout`` (see :data:`rfisieve.config.defaults.RUN_DEFAULTS`); nothing beyond that
 table is assumed.
 
 Outputs are written to a temporary name in the destination directory and renamed
@@ -20,8 +20,8 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from .errors import ScanError
-from .settings import RUN_DEFAULTS
+from rfisieve.errors import ScanError
+from rfisieve.config.defaults import RUN_DEFAULTS
 
 AXES = ("time", "freq", "product")
 

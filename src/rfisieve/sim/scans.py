@@ -8,9 +8,9 @@ Noise statistics are exact at dump level: a dump's mean power over N = accumulat
 raw spectra of complex-voltage noise is Gamma(N, mu / N) (radiometer equation: relative
 rms 1 / sqrt(N); Wilson, Rohlfs & Huettemeister, Tools of Radio Astronomy).  Clean dumps
 are drawn from that Gamma distribution directly.  Interference enters at the voltage
-level (carriers, pulses, noise-like emitters; see :mod:`rfisieve.simulate_draw` for the
-exact draws and the few documented approximations, :mod:`rfisieve.simulate_emitters`
-for the emitter parameters and :mod:`rfisieve.simulate_model` for the instrument).
+level (carriers, pulses, noise-like emitters; see :mod:`rfisieve.sim.draw` for the
+exact draws and the few documented approximations, :mod:`rfisieve.sim.emitters`
+for the emitter parameters and :mod:`rfisieve.sim.model` for the instrument).
 Scans that record ``/s2`` are simulated raw spectrum by raw spectrum (with a modest
 number of accumulations), so that S1 and S2 are jointly right.
 
@@ -51,12 +51,12 @@ import h5py
 import numpy as np
 
 from rfisieve import __version__
-from rfisieve.io import atomic_output
-from rfisieve.simulate_draw import Group, draw_dumps, draw_raw
-from rfisieve.simulate_emitters import (KIND_CODES, KIND_NAMES, KINDS_JSON,
+from rfisieve.io.scan import atomic_output
+from rfisieve.sim.draw import Group, draw_dumps, draw_raw
+from rfisieve.sim.emitters import (KIND_CODES, KIND_NAMES, KINDS_JSON,
                                         default_emitters, render)
-from rfisieve.simulate_inject import inject
-from rfisieve.simulate_model import (BANDS, check_band, clean_means, frequency_grid,
+from rfisieve.sim.inject import inject
+from rfisieve.sim.model import (BANDS, check_band, clean_means, frequency_grid,
                                      parse_time, scan_name, time_grid)
 
 __all__ = ["simulate_scan", "simulate_night", "inject", "register_cli", "KIND_CODES",
@@ -178,9 +178,9 @@ def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
         Start of the first dump: seconds since 1970 UTC or an ISO 8601 string.
     emitters : "default" or list of dict
         ``"default"``: the band's plausible emitters (GNSS, aviation, mobile, TV ...,
-        see :func:`rfisieve.simulate_emitters.default_emitters`) that fall in the scan's
+        see :func:`rfisieve.sim.emitters.default_emitters`) that fall in the scan's
         range; a list of emitter dicts (documented in
-        :mod:`rfisieve.simulate_emitters`); ``[]`` for a clean scan.
+        :mod:`rfisieve.sim.emitters`); ``[]`` for a clean scan.
     extra_emitters : list of dict
         Appended to ``emitters``.
     ripple, gain_drift, sky_drift : bool
@@ -337,7 +337,7 @@ def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
             "band": band, "integration_time": float(integration_time),
             "channel_width": float(channel_width), "accumulations": int(accumulations),
             "presum": 1, "voltage": "complex", "observatory": OBSERVATORY, "scan": name,
-            "simulated_by": f"rfisieve.simulate {__version__}", "seed": int(seed),
+            "simulated_by": f"rfisieve.sim.scans {__version__}", "seed": int(seed),
         })
 
     def fill_truth(f):
@@ -351,7 +351,7 @@ def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
             "scan": name, "seed": int(seed), "kinds": KINDS_JSON,
             "accumulations": int(accumulations), "band": band,
             "emitters": json.dumps(specs, default=float),
-            "simulated_by": f"rfisieve.simulate {__version__}",
+            "simulated_by": f"rfisieve.sim.scans {__version__}",
         })
 
     _write_atomic(path, fill_scan)

@@ -109,7 +109,7 @@ class Group:
         self.npulse = None
 
     def add(self, pattern, freq, time, cross):
-        """Add an emitter :class:`~rfisieve.simulate_emitters.Pattern` to the state."""
+        """Add an emitter :class:`~rfisieve.sim.emitters.Pattern` to the state."""
         scales = np.array([pattern.scale.get(name, 0.0) for name in self.names])
         if not np.any(scales > 0):
             return

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import yaml
 
-from rfisieve import settings
+from rfisieve.config import defaults as settings
 from rfisieve.errors import ConfigError
 
 SCHEMA_NAMES = ("config.schema.yaml", "band.schema.yaml")
@@ -21,16 +21,16 @@ SCHEMA_NAMES = ("config.schema.yaml", "band.schema.yaml")
 
 def repo_root():
     """The repository root holding the ``Snakefile``, or None for an installed package."""
-    root = Path(__file__).resolve().parents[2]
+    root = Path(__file__).resolve().parents[3]
     return root if (root / "Snakefile").is_file() else None
 
 
 def schema_path(name):
     """Path of schema ``name``: the repository copy if there is one, else the packaged one."""
-    repo_copy = Path(__file__).resolve().parents[2] / "workflow" / "schemas" / name
+    repo_copy = Path(__file__).resolve().parents[3] / "workflow" / "schemas" / name
     if repo_copy.is_file():
         return repo_copy
-    return Path(__file__).resolve().parent / "data" / name
+    return Path(__file__).resolve().parents[1] / "data" / name
 
 
 _SCHEMAS = {}
@@ -182,7 +182,7 @@ def expand_inputs(inputs, source="inputs"):
             raise ConfigError(source, f"no such scan file {pattern!r}")
     if not paths:
         raise ConfigError(source, "no scans given: set inputs to a glob or a list of files")
-    from rfisieve.io import scan_name
+    from rfisieve.io.scan import scan_name
 
     seen = {}
     unique = []
@@ -230,7 +230,7 @@ def load_band(bands_dir, band):
     Returns
     -------
     (settings, source)
-        ``settings`` is the full dict (see :func:`rfisieve.settings.band_settings`);
+        ``settings`` is the full dict (see :func:`rfisieve.config.defaults.band_settings`);
         ``source`` is ``{"path": ..., "text": ...}`` of the file used.
 
     Raises

@@ -16,7 +16,7 @@ BAND_DEFAULTS = {
         "enabled": True,
         "sigma": 3.5,        # thresholds where a Gaussian would hold norm.sf(sigma) per tail
         "pfa": None,         # per-tail false-alarm probability; overrides sigma when set
-        "method": "auto",    # threshold method passed to sk_thresholds (see rfisieve.sk)
+        "method": "auto",    # threshold method passed to sk_thresholds (see rfisieve.detect.kurtosis)
         "block_dumps": 16,   # M of the block estimator, used when the scan has no /s2
     },
     "sumthreshold": {

@@ -35,8 +35,8 @@ import math
 
 import numpy as np
 
-from . import bits
-from .errors import ScanError
+from rfisieve import bits
+from rfisieve.errors import ScanError
 
 #: Recall bins of INR, [lo, hi).  Per-sample INR below 0.5 is reported but not targeted.
 INR_EDGES = (0.5, 1.0, 2.0, 5.0)

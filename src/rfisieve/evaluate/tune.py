@@ -7,7 +7,7 @@ the others held at theirs, the sample scans are flagged twice:
 1. a plain copy of the first ``max_dumps`` dumps: the *occupancy* (fraction of the
    samples flagged for any cause) that setting gives on the real data;
 2. the same copy with synthetic interference of known INR injected
-   (:mod:`rfisieve.inject`): the *recall*, the fraction of the injected samples
+   (:mod:`rfisieve.evaluate.inject`): the *recall*, the fraction of the injected samples
    flagged, counted only on samples that the plain copy left unflagged at that setting
    (a sample already flagged for real interference says nothing about the injection).
 
@@ -37,8 +37,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import ConfigError, RfisieveError
-from .io import atomic_output
+from rfisieve.errors import ConfigError, RfisieveError
+from rfisieve.io.scan import atomic_output
 
 #: (section, key, label, step, sensitive direction) of the swept thresholds.
 PARAMETERS = (
@@ -81,7 +81,7 @@ def _with(band, section, key, value):
 def _flag_and_read(scan_path, out_path, band, run):
     import h5py
 
-    from .engine import flag_scan
+    from rfisieve.engine.core import flag_scan
 
     flag_scan(scan_path, out_path, band, run)
     with h5py.File(out_path, "r") as f:
@@ -96,7 +96,7 @@ def evaluate(band, run, samples, workdir):
     ``samples`` is a list of dict(plain=path, injected=path, inr=ndarray) from
     :func:`prepare_samples`.  Returns dict(occupancy, recall, recall_by_inr).
     """
-    from .score import DECISION_BITS, PRIOR_BITS
+    from rfisieve.evaluate.score import DECISION_BITS, PRIOR_BITS
 
     flagged = total = 0
     levels = {}
@@ -124,7 +124,7 @@ def evaluate(band, run, samples, workdir):
 def prepare_samples(scans, workdir, layout=None, max_dumps=2048, seed=0, levels=(1.0, 2.0, 5.0),
                     fraction=0.01):
     """Copy each scan (first ``max_dumps`` dumps) twice into ``workdir``: plain and injected."""
-    from .inject import copy_scan
+    from rfisieve.evaluate.inject import copy_scan
 
     out = []
     for i, path in enumerate(scans):
@@ -169,7 +169,9 @@ def run_tune(band_name, scans, bands_dir="config/bands", out_dir=None, values=5,
 
     Returns dict(rows, suggestion, plot, table, suggested_path).
     """
-    from . import config, io, settings
+    from rfisieve.config import load as config
+    from rfisieve.io import scan as io
+    from rfisieve.config import defaults as settings
 
     band, source = config.load_band(bands_dir, band_name)
     scans = [str(s) for s in scans]
@@ -280,7 +282,7 @@ def write_suggestion(bands_dir, band_name, source, suggestion, meta, rows):
     """Write ``<bands_dir>/<band>.suggested.yaml`` (never ``<band>.yaml``); return its path."""
     import yaml
 
-    from . import config
+    from rfisieve.config import load as config
 
     path = Path(bands_dir) / f"{band_name}.suggested.yaml"
     if path.resolve() == Path(source["path"]).resolve():  # pragma: no cover - guarded by the name
@@ -324,7 +326,7 @@ def write_suggestion(bands_dir, band_name, source, suggestion, meta, rows):
 # -- command line -----------------------------------------------------------------
 def cmd_tune(args):
     """``rfisieve tune``: run the sweep and print the table."""
-    from . import config
+    from rfisieve.config import load as config
 
     scans = config.expand_inputs(args.scans, "--scans")
     if args.values < 1:

@@ -1,14 +1,14 @@
 """Compiled (numba) preparation of one product's plane for the detectors.
 
 One pass over a (time, channel) view of a read block (any strides, float or complex)
-gives what :func:`rfisieve.masks.amplitude` and :func:`rfisieve.masks.invalid_mask`
+gives what :func:`rfisieve.detect.masks.amplitude` and :func:`rfisieve.detect.masks.invalid_mask`
 give in several numpy passes, plus the samples the detectors must leave out.
 ``nogil=True`` so dask threads prepare planes in parallel; the function checks
 nothing and overwrites its output arguments.
 """
 
 import numpy as np
-from .jit import njit
+from rfisieve.detect._jit import njit
 
 
 @njit(nogil=True, cache=True)

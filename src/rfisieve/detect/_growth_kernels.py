@@ -2,20 +2,20 @@
 
 Work on C-contiguous 2-D bool planes ``(time, channel)``.  Compiled with
 ``nogil=True`` (dask threads run in parallel) and ``cache=True``.  The public,
-documented entry points are :func:`rfisieve.morphology.sir_operator` and
-:func:`rfisieve.morphology.sir_grow`; the functions here check nothing and
+documented entry points are :func:`rfisieve.detect.growth.sir_operator` and
+:func:`rfisieve.detect.growth.sir_grow`; the functions here check nothing and
 overwrite their output arguments.
 
 * :func:`sir_rows_reach`: one direction along axis 1 (the contiguous axis) with
-  monotonic deques, every sample decided; :func:`rfisieve.morphology.sir_operator`
+  monotonic deques, every sample decided; :func:`rfisieve.detect.growth.sir_operator`
   transposes for the time axis.
-* :func:`sir_grow_reach`: both directions of :func:`rfisieve.morphology.sir_grow`
+* :func:`sir_grow_reach`: both directions of :func:`rfisieve.detect.growth.sir_grow`
   in one sweep down the dumps, OR-ed into the output, without transposes.  Only
   *candidates* need deciding (dumps with many decide every channel, vectorised):
   clean samples with at least ``k`` flagged samples
   within the reach (a running count per channel along time, a prefix count per
   dump along frequency).  A flagged sample is always in the output, and
-  :func:`rfisieve.morphology._skip_threshold` gives the least ``k`` for which no
+  :func:`rfisieve.detect.growth._skip_threshold` gives the least ``k`` for which no
   clean sample with fewer flagged neighbours can be added.  A candidate is
   decided from the same prefix values W(k) = C(k) - (1 - eta) k as in
   :func:`sir_rows_reach` (C(k) the number of flagged samples before k in the
@@ -23,7 +23,7 @@ overwrite their output arguments.
 """
 
 import numpy as np
-from .jit import njit
+from rfisieve.detect._jit import njit
 
 _opts = dict(nogil=True, cache=True)
 
@@ -137,7 +137,7 @@ def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
     least that many samples are flagged within the reach along the axis
     ([t - rt, t + rt] by dumps, [c - rf, c + rf] by channels); the caller
     guarantees that no clean sample with fewer is added
-    (:func:`rfisieve.morphology._skip_threshold`).
+    (:func:`rfisieve.detect.growth._skip_threshold`).
 
     A decision is max_{y < Y2 <= min(N, y + 1 + R)} W(Y2)
     - min_{max(0, y - R) <= Y1 <= y} W(Y1) >= -1e-9 over the prefix values

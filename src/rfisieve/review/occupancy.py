@@ -98,9 +98,9 @@ import os
 
 import numpy as np
 
-from . import bits as _bits
-from .errors import ScanError
-from .io import atomic_output
+from rfisieve import bits as _bits
+from rfisieve.errors import ScanError
+from rfisieve.io.scan import atomic_output
 
 BIT_NAMES = tuple(_bits.NAMES)
 BIT_VALUES = tuple(row[1] for row in _bits.BIT_TABLE)

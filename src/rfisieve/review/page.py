@@ -1,7 +1,7 @@
 """The morning review: run tables, the review page and the terminal summary.
 
 ``rfisieve review OUTDIR --scans OCC.h5 ...`` aggregates the per-scan occupancy files
-(:mod:`rfisieve.occupancy`) into ``<outdir>/occupancy/run.csv`` and ``run.h5``, draws
+(:mod:`rfisieve.review.occupancy`) into ``<outdir>/occupancy/run.csv`` and ``run.h5``, draws
 the figures into ``<outdir>/report/`` and writes ``<outdir>/report/index.html``, one
 self-contained page (images embedded as base64 ``data:`` URIs) that opens from disk.
 
@@ -27,11 +27,11 @@ import os
 
 import numpy as np
 
-from . import occupancy as occ
-from .emitters import load_emitters, match_emitters
-from .errors import ConfigError, ScanError
-from .io import atomic_output
-from .occupancy import BIT_NAMES, fraction
+from rfisieve.review import occupancy as occ
+from rfisieve.review.emitters import load_emitters, match_emitters
+from rfisieve.errors import ConfigError, ScanError
+from rfisieve.io.scan import atomic_output
+from rfisieve.review.occupancy import BIT_NAMES, fraction
 
 RANGE_FRACTION = 0.2   # a channel belongs to an occupied range at this flagged fraction
 TOP_RANGES = 15
@@ -42,7 +42,7 @@ TOP_RANGES = 15
 # ---------------------------------------------------------------------------
 
 def annotated_ranges(bands, emitters, threshold=RANGE_FRACTION):
-    """Occupied ranges of every band (:func:`rfisieve.occupancy.occupied_ranges`) with matching emitters.
+    """Occupied ranges of every band (:func:`rfisieve.review.occupancy.occupied_ranges`) with matching emitters.
 
     Returns a list of dicts (``band`` and ``emitters`` added), largest flagged sample count first.
     """
@@ -141,7 +141,7 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
 
     Returns the path of ``index.html``.
     """
-    from . import review_plots as rp
+    from rfisieve.review import plots as rp
 
     scans = [occ.read_scan_h5(p) for p in scan_files]
     names = [str(s["attrs"]["scan"]) for s in scans]
@@ -266,7 +266,7 @@ def _emitter_cell(ems, limit=3):
 
 def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev, threshold, previous):
     """The review page as one HTML string (see :func:`build_review`)."""
-    from .review_plots import CAUSE_COLOURS
+    from rfisieve.review.plots import CAUSE_COLOURS
 
     tot = run_totals(overview)
     frac = tot["flagged"] / tot["samples"] if tot["samples"] else float("nan")
@@ -418,7 +418,7 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
         h.append(f"<h3>{esc(name)}</h3>" + _img(figs["kurtosis"][name], f"kurtosis diagnostic of {name}"))
 
     # --- bits ---------------------------------------------------------------
-    from .bits import BIT_TABLE
+    from rfisieve.bits import BIT_TABLE
 
     h.append('<h2 id="bits">Mask bits</h2>')
     h.append(_table(["bit", "value", "cause", "meaning"],

@@ -24,8 +24,8 @@ import threading
 
 import numpy as np
 
-from . import kernels
-from .background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
+from rfisieve.detect import _kernels as kernels
+from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
@@ -97,7 +97,7 @@ def to_grid(values, chi1, max_window, out=None):
 
 
 def _grid_args(chi1, max_window):
-    """(scale, lo, hi) of :func:`rfisieve.kernels.to_grid` for chi1 > 0."""
+    """(scale, lo, hi) of :func:`rfisieve.detect._kernels.to_grid` for chi1 > 0."""
     unit = grid_unit(max_window)[0]
     return unit / chi1, -float(window_sizes(max_window)[-1] * unit), 2.0 * unit
 
@@ -225,7 +225,7 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
 
-    1. fit a smooth background B (:func:`rfisieve.background.coarse_smooth`, the
+    1. fit a smooth background B (:func:`rfisieve.detect.background.coarse_smooth`, the
        coarse-grid form of the local fit of ``masked_smooth``; scales
        ``background_time`` dumps and ``background_freq`` channels, cells aligned
        to absolute dump numbers by ``t0``) with the input-flagged, invalid and
@@ -234,7 +234,7 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
        bandpass and the gain scale signal and noise alike (radiometer equation:
        sigma_x = B / sqrt(N)), so r has one noise level over the whole plane;
     3. take its noise sigma: ``sigma`` when given, else estimated once for the
-       plane (:func:`rfisieve.background.robust_sigma`: 1.4826 * MAD over
+       plane (:func:`rfisieve.detect.background.robust_sigma`: 1.4826 * MAD over
        unflagged valid samples, subsampled to 2**18);
     4. run :func:`sumthreshold` along time (windows up to ``max_window_time``) on
        the input mask, then along frequency (up to ``max_window_freq``) on the
@@ -427,10 +427,10 @@ def sumthreshold_halo(settings):
     (a window M holding t reaches M - 1 dumps away, and the flags it takes in
     come from smaller windows), and the residual at a dump depends on the
     previous iteration's detections within the background's reach R_b
-    (:func:`rfisieve.background.coarse_reach`: cells, box cascade on the cells,
+    (:func:`rfisieve.detect.background.coarse_reach`: cells, box cascade on the cells,
     interpolation).  So ``halo = iterations * (R_st + R_b)``, rounded up to a
     multiple of the background's time cell c_t
-    (:func:`rfisieve.background.cell_size`).  The coarse background sums cells
+    (:func:`rfisieve.detect.background.cell_size`).  The coarse background sums cells
     of c_t dumps aligned to absolute dump numbers when the flagger is given
     ``t0`` (the absolute index of the plane's first dump), so a chunk cut at
     any dump has the whole scan's cells; without ``t0`` the cells count from
@@ -448,7 +448,7 @@ def sumthreshold_halo(settings):
     Parameters
     ----------
     settings : dict
-        The "sumthreshold" band settings (keys as in :mod:`rfisieve.settings`);
+        The "sumthreshold" band settings (keys as in :mod:`rfisieve.config.defaults`);
         missing keys take the flagger's defaults.
 
     Returns

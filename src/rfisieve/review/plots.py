@@ -1,6 +1,6 @@
 """Figures of the morning review page (matplotlib, Agg backend), written as PNG files.
 
-Each function takes counts (dicts from :mod:`rfisieve.occupancy`) and writes one PNG;
+Each function takes counts (dicts from :mod:`rfisieve.review.occupancy`) and writes one PNG;
 the page embeds them and Snakemake's report registers the same files.  The palette is
 the project's own ("moorland"): warm paper background, ink text, one colour per cause.
 """
@@ -14,7 +14,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 
-from .occupancy import BIT_NAMES, fraction  # noqa: E402
+from rfisieve.review.occupancy import BIT_NAMES, fraction  # noqa: E402
 
 PAPER = "#fbf8f1"
 INK = "#23202b"
@@ -80,7 +80,7 @@ def utc_day_start(t0):
 def _mark_emitters(ax, emitters, fmin, fmax, strip=None):
     """Known emitters as labelled bars in lanes on ``strip`` (an axis above ``ax``);
     protected bands also lightly hatched on ``ax`` itself."""
-    from .emitters import in_band
+    from rfisieve.review.emitters import in_band
 
     shown, seen = [], set()
     for e in in_band(emitters, fmin, fmax):
@@ -122,7 +122,7 @@ def _mark_emitters(ax, emitters, fmin, fmax, strip=None):
 def band_occupancy(path, band, agg, emitters=(), title=None):
     """Occupancy vs frequency of one band, stacked by primary cause, emitter ranges marked.
 
-    ``agg`` is an :func:`rfisieve.occupancy.aggregate_band` result.
+    ``agg`` is an :func:`rfisieve.review.occupancy.aggregate_band` result.
     """
     with plt.rc_context(STYLE):
         fig, (strip, ax) = plt.subplots(2, 1, figsize=(12.5, 5.4), sharex=True,
@@ -199,7 +199,7 @@ def scan_image(path, counts, title=None):
 def expected_sk_pdf(x, m, n, d):
     """Expected SK density at ``x`` for Gaussian noise, and a note of how it was made.
 
-    Uses :func:`rfisieve.sk.sk_moments` (exact mean, variance, skewness) with a
+    Uses :func:`rfisieve.detect.kurtosis.sk_moments` (exact mean, variance, skewness) with a
     Pearson type III curve (Nita & Gary 2010, PASP 122, 595) when the module is
     present; otherwise a gamma law matched to the mean 1 and the variance of the
     generalized estimator, computed from the gamma/Dirichlet moments of DESIGN.md 3.
@@ -207,11 +207,11 @@ def expected_sk_pdf(x, m, n, d):
     from scipy import stats
 
     try:
-        from .sk import sk_moments
+        from rfisieve.detect.kurtosis import sk_moments
 
         mean, var, skew, _ = sk_moments(int(m), int(n), float(d))
         dist = stats.pearson3(skew, loc=mean, scale=np.sqrt(var))
-        note = "Pearson III from exact moments (rfisieve.sk.sk_moments)"
+        note = "Pearson III from exact moments (rfisieve.detect.kurtosis.sk_moments)"
     except Exception:  # module absent or failing: degrade to a two-moment gamma law
         k = float(n) * float(d)
         M = float(m)
@@ -224,7 +224,7 @@ def expected_sk_pdf(x, m, n, d):
         var = c * c * (ex2 - ex * ex)
         mean = 1.0
         dist = stats.gamma(1.0 / var, scale=var)
-        note = "gamma law matched to the exact mean and variance (rfisieve.sk absent)"
+        note = "gamma law matched to the exact mean and variance (rfisieve.detect.kurtosis absent)"
     return dist.pdf(x), dist, mean, var, note
 
 

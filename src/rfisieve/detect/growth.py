@@ -20,8 +20,8 @@ import math
 
 import numpy as np
 
-from . import kernels
-from . import kernels_morph
+from rfisieve.detect import _kernels as kernels
+from rfisieve.detect import _growth_kernels as kernels_morph
 
 __all__ = ["sir_operator", "sir_grow", "sir_halo"]
 
@@ -155,7 +155,7 @@ def sir_grow(mask, eta, time=True, freq=True, reach_time=None, reach_freq=None):
 
     Implementation: the bounded-reach directions (reach R shorter than the
     line, R <= 64) run together in one sweep down the dumps
-    (:func:`rfisieve.kernels_morph.sir_grow_reach`), without transposing the
+    (:func:`rfisieve.detect._growth_kernels.sir_grow_reach`), without transposing the
     plane: flagged samples are copied, and a clean sample is decided only when
     enough samples within R of it are flagged to possibly add it (a running
     count per channel along time, a prefix count per dump along frequency; the

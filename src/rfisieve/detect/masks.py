@@ -5,7 +5,7 @@ Pure functions of numpy arrays; the bit values are in :mod:`rfisieve.bits`.
 
 import numpy as np
 
-from . import bits
+from rfisieve import bits
 
 
 def amplitude(data, auto):

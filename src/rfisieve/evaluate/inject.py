@@ -6,7 +6,7 @@ interference-to-noise ratio (INR, excess mean power in a dump over that dump's n
 rms, as in the simulator's truth files) is known sample by sample.
 
 Input files are never modified: :func:`copy_scan` writes a new scan file (standard
-layout of DESIGN.md 2.1) from a scan read through :mod:`rfisieve.io`, optionally with
+layout of DESIGN.md 2.1) from a scan read through :mod:`rfisieve.io.scan`, optionally with
 interference added.
 
 Model: a constant excess power ``c = INR * sigma`` is added to every raw spectrum of
@@ -155,7 +155,7 @@ def copy_scan(src_path, dst_path, layout=None, max_dumps=None, injections=None, 
               levels=(1.0, 2.0, 5.0), fraction=0.01):
     """Write a copy of (the first ``max_dumps`` dumps of) a scan, optionally with interference.
 
-    The source is read through :func:`rfisieve.io.open_scan` (read-only, any layout the
+    The source is read through :func:`rfisieve.io.scan.open_scan` (read-only, any layout the
     run config describes) and written in the standard layout.  With ``injections`` set
     to ``True`` a random set is planned with :func:`plan_injections` (``seed``,
     ``levels``, ``fraction``); a list is used as given; None copies the data unchanged.
@@ -167,8 +167,8 @@ def copy_scan(src_path, dst_path, layout=None, max_dumps=None, injections=None, 
     """
     import h5py
 
-    from .io import open_scan
-    from .masks import amplitude, invalid_mask
+    from rfisieve.io.scan import open_scan
+    from rfisieve.detect.masks import amplitude, invalid_mask
 
     with open_scan(src_path, layout) as scan:
         n = scan.ntime if not max_dumps else min(scan.ntime, int(max_dumps))

@@ -3,14 +3,14 @@ and the SIR operator.
 
 Everything here works on C-contiguous 2-D planes ``(time, channel)`` and is
 compiled with ``nogil=True`` (so dask threads run in parallel) and ``cache=True``.
-The public, documented entry points are in :mod:`rfisieve.background`,
-:mod:`rfisieve.sumthreshold` and :mod:`rfisieve.morphology`; the functions here
+The public, documented entry points are in :mod:`rfisieve.detect.background`,
+:mod:`rfisieve.detect.sumthreshold` and :mod:`rfisieve.detect.growth`; the functions here
 check nothing and may overwrite their output arguments.
 
 Loop shapes:
 
 * SumThreshold sums integers: its planes are on the grid of :func:`to_grid`
-  (:func:`rfisieve.sumthreshold.grid_unit`), so window sums are exact and run in
+  (:func:`rfisieve.detect.sumthreshold.grid_unit`), so window sums are exact and run in
   32-bit lanes;
 * along axis 0 (time, the strided axis): one running quantity per channel and an
   inner loop over the contiguous channel axis, which the compiler vectorises.
@@ -31,7 +31,7 @@ Loop shapes:
 """
 
 import numpy as np
-from .jit import njit
+from rfisieve.detect._jit import njit
 
 
 # Levels in the SumThreshold working array (uint8):

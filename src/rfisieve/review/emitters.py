@@ -10,7 +10,7 @@ merged in with ``site`` set to the band name.
 
 import os
 
-from .errors import ConfigError
+from rfisieve.errors import ConfigError
 
 KINDS = ("emitter", "protected")
 
@@ -62,7 +62,7 @@ def _load_yaml(path):
 
 def default_emitters_path():
     """``config/emitters.yaml`` of the repository (or of the current directory)."""
-    here = os.path.abspath(os.path.join(os.path.dirname(__file__), "..", "..", "config", "emitters.yaml"))
+    here = os.path.abspath(os.path.join(os.path.dirname(__file__), "..", "..", "..", "config", "emitters.yaml"))
     if os.path.isfile(here):
         return here
     return os.path.join("config", "emitters.yaml")

@@ -20,8 +20,8 @@ from rfisieve import __version__
 from rfisieve.errors import ConfigError, RfisieveError
 
 #: Modules that add their own subcommands with ``register_cli(subparsers)``.
-PLUGIN_MODULES = ("rfisieve.simulate", "rfisieve.occupancy", "rfisieve.review",
-                  "rfisieve.score", "rfisieve.tune")
+PLUGIN_MODULES = ("rfisieve.sim.scans", "rfisieve.review.occupancy", "rfisieve.review.page",
+                  "rfisieve.evaluate.score", "rfisieve.evaluate.tune")
 
 DESCRIPTION = """\
 Flag radio-frequency interference (RFI) in time-frequency scan files (HDF5 dynamic
@@ -52,7 +52,7 @@ class _TopFormatter(argparse.RawDescriptionHelpFormatter, _Formatter):
 
 # -- shared options ------------------------------------------------------------
 def _add_run_options(p):
-    g = p.add_argument_group("run settings (defaults: rfisieve.settings.RUN_DEFAULTS)")
+    g = p.add_argument_group("run settings (defaults: rfisieve.config.defaults.RUN_DEFAULTS)")
     g.add_argument("--run-config", metavar="FILE",
                    help="run config YAML (keys as in config/config.yaml); default: built-in defaults")
     g.add_argument("--set", dest="sets", action="append", default=[], metavar="KEY=VALUE",
@@ -69,7 +69,7 @@ def _add_parallel_options(p):
 
 
 def _run_settings(args):
-    from rfisieve import config
+    from rfisieve.config import load as config
 
     overrides = config.parse_set(args.sets)
     for key in ("workers", "scheduler"):
@@ -81,7 +81,8 @@ def _run_settings(args):
 
 def _band_settings(args, scan_path, run):
     """Band settings from --band-config, or the scan's band in the run's bands_dir."""
-    from rfisieve import config, io
+    from rfisieve.config import load as config
+    from rfisieve.io import scan as io
 
     band = io.scan_band(scan_path, run.get("layout"))
     if args.band_config:
@@ -119,7 +120,8 @@ class _Progress:
 
 # -- stage commands ------------------------------------------------------------
 def cmd_plan(args):
-    from rfisieve import engine, io
+    from rfisieve.engine import core as engine
+    from rfisieve.io import scan as io
 
     run = _run_settings(args)
     band, _ = _band_settings(args, args.scan, run)
@@ -145,7 +147,7 @@ def _read_plan(path):
 
 
 def cmd_detect(args):
-    from rfisieve import engine
+    from rfisieve.engine import core as engine
 
     run = _run_settings(args)
     band, _ = _band_settings(args, args.scan, run)
@@ -156,7 +158,7 @@ def cmd_detect(args):
 
 
 def cmd_merge(args):
-    from rfisieve import engine
+    from rfisieve.engine import core as engine
 
     run = _run_settings(args)
     band, source = _band_settings(args, args.scan, run)
@@ -191,7 +193,7 @@ def _products_text(names, limit=6):
 
 def inspect_scan(path, layout=None):
     """Summary of one scan file as a dict of printable values (see ``rfisieve inspect``)."""
-    from rfisieve import io
+    from rfisieve.io import scan as io
 
     with io.open_scan(path, layout) as scan:
         autos = [p for p, a in zip(scan.products, scan.autos) if a]
@@ -240,7 +242,7 @@ def cmd_inspect(args):
 
 # -- thresholds ------------------------------------------------------------------
 def cmd_thresholds(args):
-    from rfisieve import sk
+    from rfisieve.detect import kurtosis as sk
 
     try:
         if args.pfa is not None:
@@ -276,7 +278,7 @@ def _resolve_profile(root, profile):
 
 def snakemake_command(args, root):
     """``(command, outdir)``: the ``snakemake`` command line that ``rfisieve run`` starts from ``root``."""
-    from rfisieve import config
+    from rfisieve.config import load as config
 
     config_file = os.path.abspath(args.config_file) if args.config_file else os.path.join(
         root, "config", "config.yaml")
@@ -292,7 +294,7 @@ def snakemake_command(args, root):
     # Checked here so that a glob with no match is one line, before Snakemake starts;
     # Snakemake runs in ``root``, so relative inputs of a config file are relative to it.
     # Corrupt scans and bands without a config are found here too, in the same way.
-    from rfisieve import io
+    from rfisieve.io import scan as io
 
     inputs = run["inputs"] if isinstance(run["inputs"], list) else [run["inputs"]]
     paths = config.expand_inputs([os.path.join(root, os.path.expanduser(p)) for p in inputs],
@@ -315,7 +317,7 @@ def snakemake_command(args, root):
 
 
 def cmd_run(args):
-    from rfisieve import config
+    from rfisieve.config import load as config
 
     root = config.repo_root()
     if root is None:

@@ -1,0 +1,2 @@
+"""Evaluation: scoring masks against simulated truth (:mod:`.score`), injecting known
+interference into real scans (:mod:`.inject`) and threshold tuning (:mod:`.tune`)."""
