@@ -12,13 +12,11 @@ validate(config, "workflow/schemas/config.schema.yaml")
 
 
 include: "workflow/rules/common.smk"
-include: "workflow/rules/plan.smk"
-include: "workflow/rules/detect.smk"
-include: "workflow/rules/merge.smk"
-include: "workflow/rules/occupancy.smk"
+include: "workflow/rules/flag.smk"
 include: "workflow/rules/review.smk"
 
 
 rule all:
+    default_target: True
     input:
         all_outputs(),

@@ -355,7 +355,7 @@ def _quote(s):
 
 
 # -- parser ---------------------------------------------------------------------
-OWN_COMMANDS = ("run", "inspect", "thresholds", "plan", "detect", "merge")
+OWN_COMMANDS = ("run", "inspect", "thresholds", "plan", "detect", "merge", "flag", "wrap-up", "verdict")
 
 
 def build_parser(plugins=True):
@@ -457,6 +457,10 @@ def build_parser(plugins=True):
     p.add_argument("--partial", nargs="+", required=True, metavar="PARTIAL.h5",
                    help="partial masks from `rfisieve detect`")
     p.add_argument("--out", "-o", required=True, metavar="MASK.h5", help="mask file to write")
+
+    from rfisieve.cli import night
+
+    night.register(sub, _Formatter, _add_run_options, _add_parallel_options)
 
     for name in PLUGIN_MODULES if plugins else ():
         try:

@@ -56,6 +56,9 @@ RUN_DEFAULTS = {
     "scheduler": "threads",      # threads | processes | synchronous | tcp://host:port
     "bands_dir": "config/bands",
     "previous_run": None,        # a previous run.csv to compare occupancy with
+    "batch_samples": 1 << 26,    # samples per flag job: scans of a band share one process
+    "keep_partial": False,       # also keep each detector's partial mask (debugging)
+    "strict": False,             # stop at the first bad scan instead of quarantining it
     "layout": {
         "data": "/data",
         "time": "/time",
