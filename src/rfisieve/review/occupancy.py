@@ -13,7 +13,7 @@ Counting rules
   with two causes counts once in ``flagged`` and once in each of its two cause columns
   (cause columns can add up to more than ``flagged``).
 * The *primary* cause of a flagged sample is its lowest set bit (bit-table order:
-  input, invalid, static, sk, sumthreshold, morphology, occupancy).  Primary counts do
+  upstream, invalid, known, sk, sumthreshold, grown, cut).  Primary counts do
   add up to ``flagged`` exactly; the review's stacked plots use them.
 
 Per-scan CSV: ``<outdir>/occupancy/<scan>.csv``
@@ -30,7 +30,7 @@ One row per channel, in the mask's channel order.  Columns:
     number of samples in the channel (dumps x products).
 ``flagged``
     fraction of those samples with any bit set.
-``input``, ``invalid``, ``static``, ``sk``, ``sumthreshold``, ``morphology``, ``occupancy``
+``upstream``, ``invalid``, ``known``, ``sk``, ``sumthreshold``, ``grown``, ``cut``
     fraction of the channel's samples with that cause bit set (bit names of
     :data:`rfisieve.bits.BIT_TABLE`).
 ``flagged_<product>``
