@@ -290,17 +290,17 @@ def snakemake_command(args, root):
         overrides["inputs"] = [os.path.abspath(os.path.expanduser(p)) for p in args.inputs]
     if args.outdir:
         overrides["outdir"] = os.path.abspath(args.outdir)
+    for key in ("strict", "keep_partial"):
+        if getattr(args, key, False):
+            overrides[key] = True
     run = config.load_run_config(config_file, overrides)
     # Checked here so that a glob with no match is one line, before Snakemake starts;
     # Snakemake runs in ``root``, so relative inputs of a config file are relative to it.
-    # Corrupt scans and bands without a config are found here too, in the same way.
-    from rfisieve.io import scan as io
-
+    # Each scan is checked by the workflow itself: a bad scan is quarantined, not fatal.
     inputs = run["inputs"] if isinstance(run["inputs"], list) else [run["inputs"]]
-    paths = config.expand_inputs([os.path.join(root, os.path.expanduser(p)) for p in inputs],
-                                 source="--inputs" if args.inputs else config_file)
-    for band in sorted({io.scan_band(p, run["layout"]) for p in paths}):
-        config.load_band(os.path.join(root, run["bands_dir"]), band)
+    args.night_paths = config.expand_inputs([os.path.join(root, os.path.expanduser(p)) for p in inputs],
+                                            source="--inputs" if args.inputs else config_file)
+    args.night_run = run
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", os.path.join(root, "Snakefile"),
            "--directory", root, "--configfile", config_file,
            "--workflow-profile", _resolve_profile(root, args.profile),
@@ -308,7 +308,7 @@ def snakemake_command(args, root):
     if args.dry_run:
         cmd.append("--dry-run")
     elif not args.verbose:
-        cmd += ["--quiet", "rules", "host"]  # progress lines ("12 of 40 steps (30%) done") and errors
+        cmd += ["--quiet", "rules", "host", "progress"]  # errors; rfisieve run shows the progress
     # Extra arguments (options or target files) go before --config, which takes the rest.
     cmd += list(args.snakemake_args or [])
     if overrides:  # Snakemake reads these values as YAML; an empty value is null
@@ -328,24 +328,27 @@ def cmd_run(args):
         print(" ".join(_quote(c) for c in cmd))
         return 0
     print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
+    from rfisieve.cli import run as night_run
+
     t0 = time.monotonic()
     proc = subprocess.Popen(cmd, cwd=str(root))
     try:
-        rc = proc.wait()
+        rc = night_run.follow(proc, outdir, args.night_paths, show=not (args.dry_run or args.verbose))
     except KeyboardInterrupt:  # Snakemake got the Ctrl-C too: let it mark unfinished jobs
         print("rfisieve run: interrupted; waiting for snakemake to stop its jobs", file=sys.stderr)
         rc = proc.wait()
         raise RfisieveError("interrupted; run the same command again to finish the run") from None
-    if rc != 0:
-        raise RfisieveError(f"the workflow stopped (snakemake exit status {rc}); read the failing job's "
-                            "log under <outdir>/logs, fix it and rerun: finished scans are kept")
-    print(f"rfisieve run: done in {time.monotonic() - t0:.0f} s", file=sys.stderr)
-    if not args.dry_run:
-        for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
-                          ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
-                          ("logs", "logs/<stage>/<scan>.log")):
-            print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
-    return 0
+    if args.dry_run:
+        return 0 if rc == 0 else 2
+    status = night_run.verdict(outdir, args.night_paths, rc, bands_dir=os.path.join(str(root), args.night_run["bands_dir"]),
+                               previous=args.night_run["previous_run"])
+    print(f"rfisieve run: {'done' if status == 0 else 'finished with failures'} in "
+          f"{time.monotonic() - t0:.0f} s", file=sys.stderr)
+    for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
+                      ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
+                      ("failed scans", "failed_scans.csv"), ("logs", "logs/<stage>/<name>.log")):
+        print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
+    return status
 
 
 def _quote(s):
@@ -386,6 +389,11 @@ def build_parser(plugins=True):
     p.add_argument("--profile", metavar="P",
                    help="Snakemake profile: a name under workflow/profiles (local, cluster) or a directory; "
                         "default: local")
+    p.add_argument("--strict", action="store_true",
+                   help="stop the night at the first bad scan (default: a bad scan is quarantined, listed "
+                        "in <outdir>/failed_scans.csv, and the others are flagged; exit 1)")
+    p.add_argument("--keep-partial", action="store_true",
+                   help="also keep each detector's partial mask in <outdir>/partial/ (debugging)")
     p.add_argument("--dry-run", "-n", action="store_true", help="show the jobs that would run, run nothing")
     p.add_argument("--verbose", "-v", action="store_true",
                    help="show every job Snakemake starts, not only the progress lines")

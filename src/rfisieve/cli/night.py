@@ -2,7 +2,7 @@
 
 ``rfisieve flag`` is the one job per scan: it checks the scan, checks the night's plan
 against the file it reads, runs both detectors and the merge in one pass over the scan
-(:func:`rfisieve.engine.core.flag_scan`: (chunk x product) dask tasks over one read of
+(:func:`rfisieve.engine.stages.flag_scan`: (chunk x product) dask tasks over one read of
 each chunk), counts occupancy from the finished mask in one compiled pass, and ends
 with the scan record (:mod:`rfisieve.engine.night`).  A scan that fails at any stage
 gets a record saying where and why, and the job exits 0, so that the other scans and
@@ -168,7 +168,7 @@ def flag_scans(paths, outdir, run, expect=None, keep_partial=False, strict=False
 
 
 def _flag_stage(scan_path, outputs, band, source, run, prog, written, entry):
-    from rfisieve.engine import core as engine
+    import rfisieve.engine as engine
     from rfisieve.engine import night
 
     stage = "flag"
@@ -184,7 +184,7 @@ def _flag_stage(scan_path, outputs, band, source, run, prog, written, entry):
 
 def _keep_partial(scan_path, directory, scan, band, run, written):
     """Each detector's partial mask as well (the debugging option ``keep_partial``)."""
-    from rfisieve.engine import core as engine
+    import rfisieve.engine as engine
 
     for detector in engine.DETECTORS:
         out = os.path.join(directory, f"{scan}.{detector}.h5")

@@ -88,7 +88,7 @@ def check_scan(path, run, bands):
     (:func:`settings_digest`) and ``problem``: None, or ``{"stage", "reason"}`` with
     the one-line reason (which names the file).
     """
-    from rfisieve.engine.core import plan_scan
+    from rfisieve.engine.plan import plan_scan
 
     entry = {"scan": scan_name(path), "path": str(path), "band": None, "band_path": None,
              "shape": None, "identity": None, "settings": None, "problem": None}

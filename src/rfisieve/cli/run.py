@@ -1,0 +1,199 @@
+"""``rfisieve run`` around Snakemake: the night's progress on the terminal, and its verdict.
+
+:func:`follow` waits for the Snakemake process while a watcher thread reads what the
+flag jobs leave in the output directory: the chunk progress file of the scan being
+flagged (``logs/flag/<scan>.progress``) and the scan records (``scans/<scan>.json``).
+On a terminal it keeps one status line up to date (the scan being flagged, its chunks,
+the night's share of samples done and an estimate of the time left); into a file or a
+pipe it writes a line when a scan finishes, at most one every :data:`LOG_EVERY`
+seconds, so a log is never flooded.
+
+:func:`verdict` reads the night's end (``failed_scans.csv``): every failed scan with its
+one-line reason, and the exit status (1 when any scan failed).  When Snakemake itself
+stopped before the review (a job killed, say), it writes the review page and
+``failed_scans.csv`` for the scans that finished, so they are never lost.
+"""
+
+import glob
+import json
+import os
+import sys
+import threading
+import time
+
+#: Seconds between progress lines when stderr is not a terminal.
+LOG_EVERY = 30.0
+
+
+def _shape_samples(path):
+    try:
+        import h5py
+
+        with h5py.File(path, "r") as f:
+            return int(f["data"].size) if "data" in f else 0
+    except (OSError, KeyError, TypeError, ValueError):
+        return 0
+
+
+def _fmt_eta(seconds):
+    if seconds is None:
+        return "time left unknown"
+    seconds = int(round(seconds))
+    if seconds < 90:
+        return f"~{seconds} s left"
+    if seconds < 5400:
+        return f"~{seconds // 60} min left"
+    return f"~{seconds / 3600:.1f} h left"
+
+
+class Watcher(threading.Thread):
+    """Polls the outdir and draws the night's progress (see the module docstring)."""
+
+    def __init__(self, outdir, paths, stream=None, interval=0.5):
+        super().__init__(daemon=True, name="rfisieve-progress")
+        from rfisieve.io.scan import scan_name
+
+        self.outdir, self.stream, self.interval = outdir, stream or sys.stderr, interval
+        self.scans = {scan_name(p): p for p in paths}
+        self.samples = {}
+        self.stop_event = threading.Event()
+        self.t0 = time.time()
+        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.before = set(self._finished(since=0.0))  # scans already done when the run started
+        self.last_line, self.last_print, self.width = "", 0.0, 0
+
+    def _finished(self, since=None):
+        """Scans whose record was written since ``since`` (default: this run's start)."""
+        since = self.t0 - 1 if since is None else since
+        done = []
+        for scan in self.scans:
+            try:
+                if os.path.getmtime(os.path.join(self.outdir, "scans", f"{scan}.json")) >= since:
+                    done.append(scan)
+            except OSError:
+                continue
+        return done
+
+    def _size(self, scan):
+        if scan not in self.samples:
+            self.samples[scan] = _shape_samples(self.scans[scan])
+        return self.samples[scan]
+
+    def status(self):
+        """The status line now (str), or "" before anything is known."""
+        finished = [s for s in self._finished() if s not in self.before]
+        current = []
+        for p in sorted(glob.glob(os.path.join(self.outdir, "logs", "flag", "*.progress"))):
+            try:
+                with open(p, encoding="utf-8") as fh:
+                    current.append(json.load(fh))
+            except (OSError, ValueError):
+                continue
+        todo = [s for s in self.scans if s not in self.before]
+        if not todo:
+            return ""
+        total = sum(self._size(s) for s in todo)
+        done = sum(self._size(s) for s in finished)
+        for c in current:
+            if c.get("scan") in self.scans and c["scan"] not in finished:
+                done += int(c.get("samples", 0)) * c.get("done", 0) / max(1, c.get("total", 1))
+        elapsed = time.time() - self.t0
+        eta = None
+        if done > 0 and elapsed > 2:
+            eta = (total - done) * elapsed / done
+        parts = []
+        for c in current[:2]:
+            parts.append(f"flagging {c.get('scan')} ({c.get('done', 0)}/{c.get('total', '?')} chunks)")
+        share = 100.0 * done / total if total else 100.0
+        parts.append(f"night: {len(finished)}/{len(todo)} scans, {share:.0f} % of samples, {_fmt_eta(eta)}")
+        return "; ".join(parts)
+
+    def _draw(self, line, final=False):
+        if self.tty:
+            pad = max(0, self.width - len(line))
+            self.stream.write("\r" + line + " " * pad + ("\n" if final else ""))
+            self.width = len(line)
+            self.stream.flush()
+            return
+        now = time.time()
+        if final or now - self.last_print >= LOG_EVERY:
+            self.stream.write(f"rfisieve run: {line}\n")
+            self.stream.flush()
+            self.last_print = now
+
+    def run(self):
+        self.last_print = time.time()  # the first file line after LOG_EVERY seconds
+        while not self.stop_event.wait(self.interval):
+            try:
+                line = self.status()
+            except Exception:  # progress is a courtesy: never let it stop the night
+                continue
+            if line and line != self.last_line:
+                self._draw(line)
+                self.last_line = line
+
+    def stop(self):
+        self.stop_event.set()
+        self.join(timeout=5)
+        if self.tty and self.last_line:
+            self.stream.write("\n")
+            self.stream.flush()
+
+
+def follow(proc, outdir, paths, show=True):
+    """Wait for the Snakemake process ``proc``, showing the night's progress; its exit status."""
+    watcher = Watcher(outdir, paths) if show and paths else None
+    if watcher is not None:
+        watcher.start()
+    try:
+        return proc.wait()
+    finally:
+        if watcher is not None:
+            watcher.stop()
+
+
+def verdict(outdir, paths, rc, bands_dir=None, previous=None, stream=None):
+    """The night's end as ``rfisieve run`` reports it; returns its exit status.
+
+    0: every scan flagged.  1: the night ran to its end but some scans failed (each is
+    printed with its reason).  2: Snakemake stopped for another reason; the review page
+    and failed_scans.csv are then written here for the scans that finished, and scans
+    with no record are listed as failed.
+    """
+    from rfisieve.cli import night as cli_night
+    from rfisieve.engine import night
+    from rfisieve.io.scan import scan_name
+
+    stream = stream or sys.stderr
+    failed_csv = os.path.join(outdir, "failed_scans.csv")
+    rows = cli_night.read_failed(failed_csv)
+    review_done = os.path.isfile(os.path.join(outdir, "report", "index.html")) and os.path.isfile(failed_csv)
+    if rc != 0 and paths:
+        records = [night.record_path(outdir, scan_name(p)) for p in paths]
+        missing = [r for r in records if not os.path.isfile(r)]
+        if missing or not review_done:
+            print(f"rfisieve run: the workflow stopped (snakemake exit status {rc}); writing the review "
+                  "page for the scans that finished", file=stream)
+            for rec in missing:
+                scan = os.path.basename(rec)[:-5]
+                night.write_record(rec, {"scan": scan, "path": dict(zip(map(scan_name, paths), paths))[scan],
+                                         "status": "failed", "stage": "flag",
+                                         "reason": f"its job did not finish; see {outdir}/logs/flag/"})
+            try:
+                _, rows = cli_night.wrap_up(outdir, records, bands_dir=bands_dir, previous=previous)
+            except Exception as err:  # the review page is a courtesy here
+                print(f"rfisieve run: the review page could not be written ({err})", file=stream)
+                rows = cli_night.read_failed(failed_csv)
+            for rec in missing:  # not a result: the next run retries these scans
+                try:
+                    os.unlink(rec)
+                except OSError:
+                    pass
+            for line in cli_night.failed_text(rows, len(paths)):
+                print(f"rfisieve run: {line}", file=stream)
+            return 2
+    for line in cli_night.failed_text(rows, len(paths) if paths else None):
+        print(f"rfisieve run: {line}", file=stream)
+    if rows:
+        return 1
+    return 0 if rc == 0 else 2
