@@ -309,6 +309,8 @@ def snakemake_command(args, root):
         cmd.append("--dry-run")
     elif not args.verbose:
         cmd += ["--quiet", "rules", "host", "progress"]  # errors; rfisieve run shows the progress
+    if not args.dry_run:
+        cmd += ["--until", "review"]  # the verdict is rfisieve run's own exit status
     # Extra arguments (options or target files) go before --config, which takes the rest.
     cmd += list(args.snakemake_args or [])
     if overrides:  # Snakemake reads these values as YAML; an empty value is null
@@ -331,9 +333,11 @@ def cmd_run(args):
     from rfisieve.cli import run as night_run
 
     t0 = time.monotonic()
-    proc = subprocess.Popen(cmd, cwd=str(root))
+    quiet = not (args.dry_run or args.verbose)
+    proc = subprocess.Popen(cmd, cwd=str(root), stderr=subprocess.PIPE if quiet else None,
+                            text=True, bufsize=1)
     try:
-        rc = night_run.follow(proc, outdir, args.night_paths, show=not (args.dry_run or args.verbose))
+        rc = night_run.follow(proc, outdir, args.night_paths, show=quiet)
     except KeyboardInterrupt:  # Snakemake got the Ctrl-C too: let it mark unfinished jobs
         print("rfisieve run: interrupted; waiting for snakemake to stop its jobs", file=sys.stderr)
         rc = proc.wait()

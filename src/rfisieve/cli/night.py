@@ -116,10 +116,10 @@ def flag_one(scan_path, outputs, run, expect=None, keep_partial=None, strict=Fal
             nt, nc, npr = entry["shape"]
             prog = ProgressFile(outputs.get("progress"), record["scan"], nt * nc * npr,
                                 f"flag {os.path.basename(str(scan_path))}")
-            _flag_stage(scan_path, outputs, band, source, run, prog, written, entry)
+            counted = _flag_stage(scan_path, outputs, band, source, run, prog, written, entry)
             if keep_partial:
                 _keep_partial(scan_path, keep_partial, record["scan"], band, run, written)
-            _occupancy_stage(outputs, written)
+            _occupancy_stage(outputs, written, counted)
         record.update(status="flagged", stage="", reason="", reused=bool(reuse),
                       outputs={k: os.path.abspath(outputs[k]) for k in ("mask", "occupancy_csv", "occupancy_h5")})
     except _ScanFailed as err:
@@ -168,18 +168,28 @@ def flag_scans(paths, outdir, run, expect=None, keep_partial=False, strict=False
 
 
 def _flag_stage(scan_path, outputs, band, source, run, prog, written, entry):
+    """Flag the scan into its mask file; returns the occupancy counts taken while the
+    mask was in memory (a ScanOccupancy), or None when the per-channel cut changed the
+    mask after that (the counts are then taken from the file)."""
     import rfisieve.engine as engine
     from rfisieve.engine import night
+    from rfisieve.engine.stages import channel_cut_adds
+    from rfisieve.review.counts import ScanOccupancy
 
     stage = "flag"
+    acc = ScanOccupancy(*entry["shape"])
     try:
-        engine.flag_scan(scan_path, outputs["mask"], band, run, band_source=source, progress=prog)
+        engine.flag_scan(scan_path, outputs["mask"], band, run, band_source=source, progress=prog,
+                         observe=acc.add)
     except RfisieveError as err:
         raise _ScanFailed(stage, err) from None
     written.append(outputs["mask"])
     if night.identity(scan_path) != entry["identity"]:
         raise _ScanFailed(stage, f"{scan_path}: changed while it was being flagged; its mask is "
                                  "discarded, run again to flag it as it is now")
+    if channel_cut_adds(acc.c["product_channel_flagged"].T, acc.ntime, band["cuts"]["channel_limit"]).any():
+        return None
+    return acc
 
 
 def _keep_partial(scan_path, directory, scan, band, run, written):
@@ -195,11 +205,12 @@ def _keep_partial(scan_path, directory, scan, band, run, written):
         written.append(out)
 
 
-def _occupancy_stage(outputs, written):
+def _occupancy_stage(outputs, written, counted=None):
     from rfisieve.review import occupancy
 
     try:
-        occupancy.occupancy_of_mask(outputs["mask"], outputs["occupancy_csv"], outputs["occupancy_h5"])
+        occupancy.occupancy_of_mask(outputs["mask"], outputs["occupancy_csv"], outputs["occupancy_h5"],
+                                    counted=counted)
     except RfisieveError as err:
         raise _ScanFailed("occupancy", err) from None
     written += [outputs["occupancy_csv"], outputs["occupancy_h5"]]

@@ -17,12 +17,22 @@ stopped before the review (a job killed, say), it writes the review page and
 import glob
 import json
 import os
+import re
 import sys
 import threading
 import time
 
 #: Seconds between progress lines when stderr is not a terminal.
 LOG_EVERY = 30.0
+
+#: Snakemake's routine chatter, left out of ``rfisieve run``'s terminal (``--verbose``
+#: shows everything); errors and anything else pass through.
+CHATTER = re.compile(
+    r"^(Select jobs to execute\.\.\.|Execute \d+ jobs\.\.\.|Using shell: .*|Building DAG of jobs\.\.\."
+    r"|Assuming unrestricted shared filesystem usage\.|Using workflow specific profile .*"
+    r"|Config file .* is extended by additional config specified via the command line\."
+    r"|Complete log\(s\): .*|Elapsed time: .*|host: .*|Provided cores: .*|Rules claiming more threads .*"
+    r"|Job stats:.*|Nothing to be done .*|\s*)$")
 
 
 def _shape_samples(path):
@@ -61,6 +71,17 @@ class Watcher(threading.Thread):
         self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
         self.before = set(self._finished(since=0.0))  # scans already done when the run started
         self.last_line, self.last_print, self.width = "", 0.0, 0
+        self.lock = threading.Lock()
+
+    def emit(self, text):
+        """Write a line of other output without tearing the status line."""
+        with self.lock:
+            if self.tty and self.width:
+                self.stream.write("\r" + " " * self.width + "\r")
+                self.width = 0
+                self.last_line = ""
+            self.stream.write(text if text.endswith("\n") else text + "\n")
+            self.stream.flush()
 
     def _finished(self, since=None):
         """Scans whose record was written since ``since`` (default: this run's start)."""
@@ -109,6 +130,10 @@ class Watcher(threading.Thread):
         return "; ".join(parts)
 
     def _draw(self, line, final=False):
+        with self.lock:
+            self._draw_locked(line, final)
+
+    def _draw_locked(self, line, final):
         if self.tty:
             pad = max(0, self.width - len(line))
             self.stream.write("\r" + line + " " * pad + ("\n" if final else ""))
@@ -140,13 +165,37 @@ class Watcher(threading.Thread):
             self.stream.flush()
 
 
-def follow(proc, outdir, paths, show=True):
-    """Wait for the Snakemake process ``proc``, showing the night's progress; its exit status."""
-    watcher = Watcher(outdir, paths) if show and paths else None
+def _relay(pipe, watcher, stream):
+    """Pass Snakemake's stderr on, without its routine chatter."""
+    for line in iter(pipe.readline, ""):
+        if CHATTER.match(line.rstrip("\n")):
+            continue
+        if watcher is not None:
+            watcher.emit(line)
+        else:
+            stream.write(line)
+            stream.flush()
+
+
+def follow(proc, outdir, paths, show=True, stream=None):
+    """Wait for the Snakemake process ``proc``, showing the night's progress; its exit status.
+
+    When ``proc`` was started with ``stderr=subprocess.PIPE`` (text mode), its lines
+    are relayed without Snakemake's routine chatter (:data:`CHATTER`).
+    """
+    stream = stream or sys.stderr
+    watcher = Watcher(outdir, paths, stream=stream) if show and paths else None
     if watcher is not None:
         watcher.start()
+    relay = None
+    if proc.stderr is not None:
+        relay = threading.Thread(target=_relay, args=(proc.stderr, watcher, stream), daemon=True)
+        relay.start()
     try:
-        return proc.wait()
+        rc = proc.wait()
+        if relay is not None:
+            relay.join(timeout=5)
+        return rc
     finally:
         if watcher is not None:
             watcher.stop()

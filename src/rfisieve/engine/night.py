@@ -88,8 +88,6 @@ def check_scan(path, run, bands):
     (:func:`settings_digest`) and ``problem``: None, or ``{"stage", "reason"}`` with
     the one-line reason (which names the file).
     """
-    from rfisieve.engine.plan import plan_scan
-
     entry = {"scan": scan_name(path), "path": str(path), "band": None, "band_path": None,
              "shape": None, "identity": None, "settings": None, "problem": None}
     try:
@@ -99,7 +97,8 @@ def check_scan(path, run, bands):
         entry["band_path"] = config.band_config_path(bands.bands_dir, entry["band"])
         band, source = bands.get(entry["band"])
         entry["settings"] = settings_digest(source["text"], run)
-        plan_scan(path, band, run)  # the engine's own checks of scan against band
+        if band.get("band") and band["band"] != entry["band"]:
+            raise RfisieveError(f"{path}: band is {entry['band']!r} but its band config is for {band['band']!r}")
         entry["identity"] = identity(path)
     except (RfisieveError, OSError) as err:
         entry["problem"] = {"stage": "check", "reason": _one_line(err)}
@@ -113,7 +112,7 @@ def check_night(paths, run, strict=False):
 
     With ``strict`` the first problem is raised (the night stops before anything runs).
     """
-    bands = BandCache(run["bands_dir"])
+    bands = BandCache(os.path.abspath(run["bands_dir"]))
     entries = {}
     for path in paths:
         entry = check_scan(path, run, bands)

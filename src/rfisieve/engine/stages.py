@@ -70,10 +70,17 @@ def _input_and_static(scan, a, b, meta):
     return _extra_bits((b - a, scan.nchan, scan.nprod), flags, meta["static"])
 
 
-def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
-    """Second pass: set the cut bit on channels flagged above ``limit`` over the scan."""
+def channel_cut_adds(counts, ntime, limit):
+    """(chan, prod) bool: the channels the per-channel cut adds samples to, from the
+    flagged-sample ``counts`` (chan, prod) of the mask before the cut."""
     cut = channel_cut(counts, ntime, limit)  # (chan, prod)
     cut &= counts < ntime  # a channel flagged throughout gains nothing
+    return cut
+
+
+def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
+    """Second pass: set the cut bit on channels flagged above ``limit`` over the scan."""
+    cut = channel_cut_adds(counts, ntime, limit)
     if not cut.any():
         return
     for c0 in range(0, ntime, chunk_dumps):
@@ -146,7 +153,7 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 h.close()
 
 
-def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
+def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, observe=None):
     """Both detectors and the merge in one pass over the scan (no partial masks).
 
     Gives the same mask file as :func:`detect` for each detector followed by
@@ -155,15 +162,20 @@ def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
     halo widened by the merge halo, and the driver writes the final mask (in a writer
     thread, while the next window is flagged).  The per-channel occupancy cut is then
     applied in a second pass over the finished mask, as in :func:`merge`.
+
+    ``observe(start, block)``, when given, sees the mask while it is in memory: each
+    chunk's values as the writer thread stores them, before the per-channel cut.  When
+    :func:`channel_cut_adds` finds no channel to cut (the usual case), counts added up
+    over the blocks observed are the counts of the finished mask file.
     """
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    _flag_one_pass(scan_path, out_path, band, run, band_source, progress)
+    _flag_one_pass(scan_path, out_path, band, run, band_source, progress, observe)
 
 
 @small_pages
 @_fail_clean
-def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
+def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, observe=None):
     from concurrent.futures import ThreadPoolExecutor
 
     _check_run(run)
@@ -181,6 +193,8 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
             def write(c0, c1, out):
                 flags[c0:c1] = out
                 counts[...] += (out != 0).sum(axis=0)
+                if observe is not None:
+                    observe(c0, out)
 
             with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
                 def sink(c0, c1, res):

@@ -328,7 +328,7 @@ def occupied_ranges(freq_hz, flagged, samples, threshold=0.25, primary=None):
     return out
 
 
-def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None):
+def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None, counted=None):
     """Read mask file ``path`` in chunks of dumps and return its occupancy counts.
 
     Returns
@@ -376,10 +376,12 @@ def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None
                 ct = ds.chunks[0]
                 chunk_dumps = max(ct, (chunk_dumps // ct) * ct)
         chunk_dumps = int(chunk_dumps)
-        acc = ScanOccupancy(nt, nc, npr, image_bins=image_bins)
-        for start in range(0, nt, chunk_dumps):
-            stop = min(nt, start + chunk_dumps)
-            acc.add(start, ds[start:stop])
+        acc = counted
+        if acc is None or (acc.ntime, acc.nchan, acc.nprod) != (nt, nc, npr) or acc.dumps_seen != nt:
+            acc = ScanOccupancy(nt, nc, npr, image_bins=image_bins)
+            for start in range(0, nt, chunk_dumps):
+                stop = min(nt, start + chunk_dumps)
+                acc.add(start, ds[start:stop])
             if progress:
                 progress(stop, nt)
         dt = None
