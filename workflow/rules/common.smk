@@ -13,6 +13,8 @@ from rfisieve.engine import night as rfnight
 
 # `config` was validated by the Snakefile; fill in the defaults of keys it leaves out.
 RUN = run_settings(config)
+for _key in ("strict", "keep_partial"):  # --config key=true arrives as a string
+    RUN[_key] = RUN[_key] is True or str(RUN[_key]).lower() == "true"
 OUTDIR = RUN["outdir"].rstrip("/") or "."
 WORKERS = int(RUN["workers"])
 LOCAL_DASK = not RUN["scheduler"].startswith("tcp://")
@@ -28,9 +30,13 @@ SCANS = {scan: e["path"] for scan, e in NIGHT.items()}
 
 # Provenance decides what is redone: a scan whose record or mask no longer matches the
 # scan file, its band config's contents or this package's version loses its record, so
-# its job runs again (whatever the files' mtimes, with or without .snakemake).
+# its job runs again (whatever the files' mtimes, with or without .snakemake).  Snakemake
+# does not tell a Snakefile whether it is a dry run; its command line does (a dry run
+# removes nothing; the params below still show a changed band config's jobs).
+_DRY = any(a in ("--dry-run", "--dryrun", "--touch", "--summary", "--detailed-summary", "--list-changes")
+           or re.fullmatch(r"-[a-zA-Z]*[nt][a-zA-Z]*", a) for a in sys.argv[1:])
 if workflow.is_main_process:
-    for _scan, _why in sorted(rfnight.expire_stale(NIGHT, OUTDIR, RUN, remove=not workflow.dryrun).items()):
+    for _scan, _why in sorted(rfnight.expire_stale(NIGHT, OUTDIR, RUN, remove=not _DRY).items()):
         print(f"rfisieve: scan {_scan} is flagged again: {_why}", file=sys.stderr)
 
 # The flag jobs: scans of one band share a job (one process start-up) up to

@@ -329,30 +329,17 @@ def cmd_run(args):
     if args.print_command:
         print(" ".join(_quote(c) for c in cmd))
         return 0
-    print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
     from rfisieve.cli import run as night_run
 
-    t0 = time.monotonic()
-    quiet = not (args.dry_run or args.verbose)
-    proc = subprocess.Popen(cmd, cwd=str(root), stderr=subprocess.PIPE if quiet else None,
-                            text=True, bufsize=1)
+    started = time.time()
+    proc = night_run.start(cmd, root, args)
     try:
-        rc = night_run.follow(proc, outdir, args.night_paths, show=quiet)
+        rc = night_run.wait(proc, outdir, args)
     except KeyboardInterrupt:  # Snakemake got the Ctrl-C too: let it mark unfinished jobs
         print("rfisieve run: interrupted; waiting for snakemake to stop its jobs", file=sys.stderr)
         rc = proc.wait()
         raise RfisieveError("interrupted; run the same command again to finish the run") from None
-    if args.dry_run:
-        return 0 if rc == 0 else 2
-    status = night_run.verdict(outdir, args.night_paths, rc, bands_dir=os.path.join(str(root), args.night_run["bands_dir"]),
-                               previous=args.night_run["previous_run"])
-    print(f"rfisieve run: {'done' if status == 0 else 'finished with failures'} in "
-          f"{time.monotonic() - t0:.0f} s", file=sys.stderr)
-    for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
-                      ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
-                      ("failed scans", "failed_scans.csv"), ("logs", "logs/<stage>/<name>.log")):
-        print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
-    return status
+    return night_run.finish(rc, outdir, args, root, started)
 
 
 def _quote(s):

@@ -201,13 +201,24 @@ def follow(proc, outdir, paths, show=True, stream=None):
             watcher.stop()
 
 
-def verdict(outdir, paths, rc, bands_dir=None, previous=None, stream=None):
+def _jobs_ran(outdir, since):
+    for p in glob.glob(os.path.join(outdir, "logs", "flag", "*.log")):
+        try:
+            if os.path.getmtime(p) >= since:
+                return True
+        except OSError:
+            continue
+    return False
+
+
+def verdict(outdir, paths, rc, bands_dir=None, previous=None, stream=None, since=None, strict=False):
     """The night's end as ``rfisieve run`` reports it; returns its exit status.
 
     0: every scan flagged.  1: the night ran to its end but some scans failed (each is
-    printed with its reason).  2: Snakemake stopped for another reason; the review page
-    and failed_scans.csv are then written here for the scans that finished, and scans
-    with no record are listed as failed.
+    printed with its reason).  2: Snakemake stopped for another reason; when flag jobs
+    had started (after ``since``, a time.time() value) and not ``strict``, the review
+    page and failed_scans.csv are then written here for the scans that finished, and
+    scans with no record are listed as failed.
     """
     from rfisieve.cli import night as cli_night
     from rfisieve.engine import night
@@ -217,7 +228,7 @@ def verdict(outdir, paths, rc, bands_dir=None, previous=None, stream=None):
     failed_csv = os.path.join(outdir, "failed_scans.csv")
     rows = cli_night.read_failed(failed_csv)
     review_done = os.path.isfile(os.path.join(outdir, "report", "index.html")) and os.path.isfile(failed_csv)
-    if rc != 0 and paths:
+    if rc != 0 and paths and not strict and (since is None or _jobs_ran(outdir, since)):
         records = [night.record_path(outdir, scan_name(p)) for p in paths]
         missing = [r for r in records if not os.path.isfile(r)]
         if missing or not review_done:
@@ -246,3 +257,40 @@ def verdict(outdir, paths, rc, bands_dir=None, previous=None, stream=None):
     if rows:
         return 1
     return 0 if rc == 0 else 2
+
+
+# -- the steps of ``rfisieve run`` (cmd_run in rfisieve.cli calls them in turn) ----------
+def start(cmd, root, args):
+    """Start Snakemake (``cmd``) in ``root``; its stderr is piped unless --verbose or --dry-run."""
+    import subprocess
+
+    quiet = not (args.dry_run or args.verbose)
+    print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
+    return subprocess.Popen(cmd, cwd=str(root), stderr=subprocess.PIPE if quiet else None, text=True, bufsize=1)
+
+
+def wait(proc, outdir, args):
+    """:func:`follow` with the night's progress shown unless --verbose or --dry-run."""
+    return follow(proc, outdir, getattr(args, "night_paths", None) or [],
+                  show=not (args.dry_run or args.verbose))
+
+
+def finish(rc, outdir, args, root, started):
+    """The exit status of ``rfisieve run`` after Snakemake's ``rc`` (see :func:`verdict`)."""
+    from rfisieve.errors import RfisieveError
+
+    if args.dry_run:
+        return 0 if rc == 0 else 2
+    run = args.night_run
+    status = verdict(outdir, args.night_paths, rc, bands_dir=os.path.join(str(root), run["bands_dir"]),
+                     previous=run["previous_run"], since=started - 1, strict=bool(run.get("strict")))
+    if status == 2:
+        raise RfisieveError(f"the workflow stopped (snakemake exit status {rc}); read the messages above "
+                            f"and the logs under {outdir}/logs, fix it and rerun: finished scans are kept")
+    print(f"rfisieve run: {'done' if status == 0 else 'finished, with failed scans,'} in "
+          f"{time.time() - started:.0f} s", file=sys.stderr)
+    for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
+                      ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
+                      ("failed scans", "failed_scans.csv"), ("logs", "logs/<stage>/<name>.log")):
+        print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
+    return status
