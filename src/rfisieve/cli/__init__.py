@@ -301,6 +301,11 @@ def snakemake_command(args, root):
     args.night_paths = config.expand_inputs([os.path.join(root, os.path.expanduser(p)) for p in inputs],
                                             source="--inputs" if args.inputs else config_file)
     args.night_run = run
+    if run.get("strict"):  # today's stop-at-the-first-problem: one line, before Snakemake starts
+        from rfisieve.engine import night
+
+        night.check_night(args.night_paths, dict(run, bands_dir=os.path.join(root, run["bands_dir"])),
+                          strict=True)
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", os.path.join(root, "Snakefile"),
            "--directory", root, "--configfile", config_file,
            "--workflow-profile", _resolve_profile(root, args.profile),
