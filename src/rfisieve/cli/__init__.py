@@ -377,7 +377,7 @@ def build_parser(plugins=True):
                         "default: inputs of the run config")
     p.add_argument("--outdir", metavar="DIR", help="output directory; default: outdir of the run config")
     p.add_argument("--cores", type=int, default=os.cpu_count() or 1, metavar="N",
-                   help="CPU cores Snakemake may use in total (each detect job takes `workers` of them)")
+                   help="CPU cores Snakemake may use in total (each flag job takes `workers` of them)")
     p.add_argument("--config-file", metavar="FILE",
                    help="run config YAML; default: config/config.yaml of the repository")
     p.add_argument("--set", dest="sets", action="append", default=[], metavar="KEY=VALUE",
