@@ -124,3 +124,25 @@ def test_a_replaced_scan_is_not_the_one_its_mask_was_made_from(tmp_path):
     assert night.expire_stale(entries, outdir, run, remove=False) == {
         "s": "the scan file is not the one its mask was made from"}
     assert (outdir / "scans" / "s.json").exists(), "remove=False (a dry run) removes nothing"
+
+
+def test_a_scan_held_open_for_writing_is_quarantined_not_fatal(tmp_path):
+    import subprocess
+    import sys
+    import time
+
+    busy, good = tmp_path / "busy.h5", tmp_path / "good.h5"
+    make_scan(busy, ntime=64, nchan=16, nprod=1, seed=1)
+    make_scan(good, ntime=64, nchan=16, nprod=1, seed=2)
+    # another process holds the file open for writing (HDF5's file lock), as a recorder would
+    holder = subprocess.Popen([sys.executable, "-c", "import h5py, sys, time\n"
+                               f"f = h5py.File({str(busy)!r}, 'r+')\nprint('open', flush=True)\ntime.sleep(60)"],
+                              stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "open"
+        entries = night.check_night([busy, good], _run(tmp_path))
+    finally:
+        holder.kill()
+        holder.wait()
+    assert entries["good"]["problem"] is None
+    assert "lock" in entries["busy"]["problem"]["reason"] and str(busy) in entries["busy"]["problem"]["reason"]
