@@ -146,3 +146,31 @@ def test_a_scan_held_open_for_writing_is_quarantined_not_fatal(tmp_path):
         holder.wait()
     assert entries["good"]["problem"] is None
     assert "lock" in entries["busy"]["problem"]["reason"] and str(busy) in entries["busy"]["problem"]["reason"]
+
+
+def test_progress_line_names_the_scan_its_chunks_and_the_time_left(tmp_path):
+    import io
+    import time
+
+    from rfisieve.cli.run import Watcher
+
+    paths = []
+    for i in range(3):
+        paths.append(tmp_path / f"s{i}.h5")
+        make_scan(paths[-1], ntime=100, nchan=8, nprod=1, seed=i)
+    out = tmp_path / "out"
+    (out / "scans").mkdir(parents=True)
+    (out / "logs" / "flag").mkdir(parents=True)
+    w = Watcher(str(out), [str(p) for p in paths], stream=io.StringIO())
+    w.t0 -= 10  # ten seconds into the night: s0 done, s1 half-way
+    (out / "scans" / "s0.json").write_text("{}")
+    (out / "logs" / "flag" / "s1.progress").write_text(json.dumps(
+        {"scan": "s1", "done": 2, "total": 4, "samples": 800}))
+    line = w.status()
+    # 1.5 of 3 equal scans in 10 s: half done, about 10 s left
+    assert line.startswith("flagging s1 (2/4 chunks); night: 1/3 scans, 50 % of samples, ~10 s left"), line
+    (out / "logs" / "flag" / "s1.progress").unlink()
+    for s in ("s1", "s2"):
+        (out / "scans" / f"{s}.json").write_text("{}")
+    assert w.status() == "night: 3/3 scans done; writing the review page"
+    assert time.time() - w.t0 < 60

@@ -125,6 +125,8 @@ class Watcher(threading.Thread):
         parts = []
         for c in current[:2]:
             parts.append(f"flagging {c.get('scan')} ({c.get('done', 0)}/{c.get('total', '?')} chunks)")
+        if len(finished) >= len(todo) and not current:
+            return f"night: {len(finished)}/{len(todo)} scans done; writing the review page"
         share = 100.0 * done / total if total else 100.0
         parts.append(f"night: {len(finished)}/{len(todo)} scans, {share:.0f} % of samples, {_fmt_eta(eta)}")
         return "; ".join(parts)
