@@ -183,6 +183,7 @@ def main():
     ap.add_argument("--tmpdir", default=None, help="where to build scans (default: a temporary directory)")
     args = ap.parse_args()
     w, cd = args.workers, args.chunk_dumps
+    load0 = os.getloadavg()[0]
 
     with tempfile.TemporaryDirectory(dir=args.tmpdir) as td:
         tmp = Path(td)
@@ -262,10 +263,13 @@ def main():
         print(f"  jobs of the best run: " + ", ".join(f"{k} {v:.2f} s" for k, v in runs["jobs"].items()))
         print(f"night of {args.night_scans} scans: {many['seconds'] / single['seconds']:.2f} x the same samples "
               "in one scan (target <= 2)")
+        for label, r in (("night", many), ("one scan", single)):
+            print(f"  jobs ({label}): " + ", ".join(f"{k} {v:.2f} s" for k, v in r["jobs"].items()))
         if mem:
             print(f"memory, 4x longer scan: flag job {mem[1]['peak_mib']:.0f} vs {mem[0]['peak_mib']:.0f} MiB "
                   f"({mem[1]['peak_mib'] / mem[0]['peak_mib']:.3f} x); engine {mem[3]['peak_mib']:.0f} vs "
                   f"{mem[2]['peak_mib']:.0f} MiB ({mem[3]['peak_mib'] / mem[2]['peak_mib']:.3f} x) (target <= 1.10)")
+        print(f"load average at the start {load0:.2f}, at the end {os.getloadavg()[0]:.2f} (the machine is shared)")
         print(f"workers={w} chunk_dumps={cd} cores={os.cpu_count()}; every time is the wall time of a fresh "
               "process (imports and start-up included); best of the runs printed per step")
 
