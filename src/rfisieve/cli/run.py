@@ -106,6 +106,8 @@ class Watcher(threading.Thread):
         current = []
         for p in sorted(glob.glob(os.path.join(self.outdir, "logs", "flag", "*.progress"))):
             try:
+                if os.path.getmtime(p) < self.t0 - 1:
+                    continue  # left by a job of an earlier, killed run
                 with open(p, encoding="utf-8") as fh:
                     current.append(json.load(fh))
             except (OSError, ValueError):
