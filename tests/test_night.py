@@ -174,3 +174,36 @@ def test_progress_line_names_the_scan_its_chunks_and_the_time_left(tmp_path):
         (out / "scans" / f"{s}.json").write_text("{}")
     assert w.status() == "night: 3/3 scans done; writing the review page"
     assert time.time() - w.t0 < 60
+
+
+@pytest.mark.slow
+def test_a_scan_that_fails_while_flagged_gets_a_record_and_no_mask(tmp_path):
+    # The checks pass (layout, band, shapes), then a damaged data chunk fails the read:
+    # the scan's record names stage 'flag' and the reason; nothing of it is left behind.
+    from rfisieve.cli.night import flag_scans, wrap_up
+
+    scans = tmp_path / "scans"
+    scans.mkdir()
+    good, bad = scans / "good.h5", scans / "damaged.h5"
+    make_scan(good, ntime=128, nchan=16, nprod=1, seed=1)
+    make_scan(bad, ntime=128, nchan=16, nprod=1, seed=2)
+    with h5py.File(bad, "a") as f:  # /data rewritten as gzip chunks far into the file
+        data = f["data"][()]
+        del f["data"]
+        f.create_dataset("data", data=np.tile(data, (64, 1, 1))[:128], chunks=(8, 16, 1), compression="gzip")
+        f.create_dataset("pad", data=np.zeros(1 << 18))  # the damage lies beyond the identity's first MiB
+        offset = f["data"].id.get_chunk_info(10).byte_offset
+    with open(bad, "r+b") as fh:
+        fh.seek(offset)
+        fh.write(b"\xff" * 64)
+    entries = night.check_night([good, bad], _run(tmp_path))
+    assert entries["damaged"]["problem"] is None, "the damage is not visible to the checks"
+    outdir = tmp_path / "out"
+    recs = {r["scan"]: r for r in flag_scans([good, bad], outdir, _run(tmp_path))}
+    assert recs["good"]["status"] == "flagged"
+    assert recs["damaged"]["status"] == "failed" and recs["damaged"]["stage"] == "flag"
+    assert str(bad) in recs["damaged"]["reason"] and "\n" not in recs["damaged"]["reason"]
+    assert not (outdir / "flags" / "damaged.h5").exists() and not list((outdir / "flags").glob(".*"))
+    flagged, failed = wrap_up(str(outdir), [str(outdir / "scans" / f"{s}.json") for s in ("damaged", "good")])
+    assert [r["scan"] for r in flagged] == ["good"] and [r["scan"] for r in failed] == ["damaged"]
+    assert (outdir / "report" / "index.html").is_file() and (outdir / "occupancy" / "run.csv").is_file()
