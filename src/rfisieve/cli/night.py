@@ -78,9 +78,10 @@ def _check_plan(expect, entry):
         raise _ScanFailed("plan", f"{entry['path']}: changed after the night was planned (shape "
                                   f"{tuple(expect['shape'])} -> {tuple(now_shape)}); not flagged "
                                   "with a stale plan, run again to flag it as it is now")
-    if any(expect.get("identity", {}).get(k) != now_id[k] for k in ("size", "sha256_head")):
-        raise _ScanFailed("plan", f"{entry['path']}: replaced after the night was planned (size or "
-                                  "content differs); not flagged with a stale plan, run again")
+    if any(expect.get("identity", {}).get(k) != now_id[k] for k in ("size", "mtime", "sha256_head")):
+        raise _ScanFailed("plan", f"{entry['path']}: written to or replaced after the night was planned "
+                                  "(size, mtime or content differs); not flagged with a stale plan, "
+                                  "run again")
 
 
 def flag_one(scan_path, outputs, run, expect=None, keep_partial=None, strict=False, bands=None):

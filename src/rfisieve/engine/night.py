@@ -49,12 +49,17 @@ def settings_digest(band_text, run):
     return digest(f"{band_text}\n--layout {layout}")
 
 
+#: What a mask's recorded input identity must match (:func:`rfisieve.io.scan.file_identity`).
+#: The mtime is in: a recorder may fill a preallocated file (same size, same first MiB);
+#: a ``touch`` then costs a redo, never a stale mask.  The size and the first MiB's digest
+#: catch a file replaced by ``cp -p`` or ``rsync -a``, which keep the old mtime.
+IDENTITY_KEYS = ("path", "size", "mtime", "sha256_head")
+
+
 def identity(path):
-    """The parts of :func:`rfisieve.io.scan.file_identity` that say *which data* a file
-    holds: resolved path, size and sha256 of its first MiB (not its mtime: a copy with
-    ``cp -p`` keeps the mtime, a ``touch`` changes nothing)."""
+    """The input file's identity as recorded in its mask (:data:`IDENTITY_KEYS`)."""
     ident = file_identity(path)
-    return {"path": ident["path"], "size": ident["size"], "sha256_head": ident["sha256_head"]}
+    return {k: ident[k] for k in IDENTITY_KEYS}
 
 
 class BandCache:
@@ -229,7 +234,7 @@ def stale_reason(entry, record, run):
         return "its mask file cannot be read"
     ident, band_text, version = prov
     now = entry["identity"]
-    if any(ident.get(k) != now[k] for k in ("path", "size", "sha256_head")):
+    if any(ident.get(k) != now[k] for k in IDENTITY_KEYS):
         return "the scan file is not the one its mask was made from"
     if settings_digest(band_text, run) != entry["settings"]:
         return "its band config changed since its mask was made"
