@@ -440,3 +440,49 @@ def test_distributed_scheduler_flags_like_threads(night, tmp_path):
     with h5py.File(tmp_path / "dist.h5") as a, h5py.File(tmp_path / "threads.h5") as b:
         np.testing.assert_array_equal(a["flags"][()], b["flags"][()])
         assert np.any(a["flags"][()] & bits.DETECTED)
+
+
+def test_a_killed_flag_job_still_leaves_the_review_of_the_finished_scans(night, tmp_path):
+    # One job per scan; night-q2's job is killed (as the kernel's OOM killer would): the
+    # run stops non-zero, and rfisieve run writes the review page and failed_scans.csv
+    # for the scans that finished, naming night-q2; the next run flags only night-q2.
+    import csv
+
+    import psutil
+
+    outdir = tmp_path / "out"
+    cmd = [sys.executable, "-m", "rfisieve.cli", "run", "--inputs", f"{night['scans']}/*.h5", "--outdir",
+           str(outdir), "--cores", "1", "--set", f"bands_dir={night['bands']}", "--set", "chunk_dumps=128",
+           "--set", "workers=1", "--set", "batch_samples=0"]
+    proc = subprocess.Popen(cmd, cwd=ROOT, env=tool_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, start_new_session=True)
+    target = str(night["scans"] / "night-q2.h5")
+    killed = False
+    try:
+        deadline = time.time() + 180
+        while time.time() < deadline and not killed and proc.poll() is None:
+            for p in psutil.process_iter(["cmdline"]):
+                cl = p.info["cmdline"] or []
+                if len(cl) > 2 and "python" in os.path.basename(cl[0]) and "flag" in cl and target in cl:
+                    p.kill()
+                    killed = True
+                    break
+            time.sleep(0.02)
+        out, err = proc.communicate(timeout=240)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+    assert killed, err[-3000:]
+    assert proc.returncode == 2, err[-3000:]
+    assert "night-q2 [flag]: its job did not finish" in err
+    with open(outdir / "failed_scans.csv", newline="") as fh:
+        assert [(r["scan"], r["stage"]) for r in csv.DictReader(fh)] == [("night-q2", "flag")]
+    assert (outdir / "report" / "index.html").is_file() and (outdir / "occupancy" / "run.csv").is_file()
+    assert not (outdir / "scans" / "night-q2.json").exists(), "the next run retries it"
+    done = {p.name: p.stat().st_mtime_ns for p in (outdir / "flags").glob("*.h5")}
+    assert set(done) == {"night-q1.h5", "night-q3.h5"}
+    res = _rfisieve_run(outdir, f"{night['scans']}/*.h5", night["bands"])
+    assert res.returncode == 0, res.stderr[-3000:]
+    assert {p.name: p.stat().st_mtime_ns for p in (outdir / "flags").glob("*.h5") if p.name in done} == done
+    assert (outdir / "failed_scans.csv").read_text().splitlines() == ["scan,path,stage,reason"]
+    np.testing.assert_array_equal(_masks(outdir)["night-q2"], _masks(night["outdir"])["night-q2"])

@@ -268,7 +268,8 @@ def failed_text(rows, total=None):
     if not rows:
         return []
     of = f" of {total}" if total else ""
-    lines = [f"{len(rows)}{of} scan{'s' if len(rows) != 1 else ''} failed (listed in failed_scans.csv):"]
+    plural = "s" if (total or len(rows)) != 1 else ""
+    lines = [f"{len(rows)}{of} scan{plural} failed (listed in failed_scans.csv):"]
     for r in rows:
         lines.append(f"  {r['scan']} [{r['stage']}]: {r['reason']}")
     return lines
