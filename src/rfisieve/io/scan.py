@@ -82,10 +82,12 @@ def _open_readonly(path):
         raise ScanError(path, "no such file")
     if path.is_dir():
         raise ScanError(path, "is a directory, not a scan file")
-    if not os.access(path, os.R_OK):
-        raise ScanError(path, "cannot be read (permission denied)")
     try:
+        with open(path, "rb"):
+            pass
         is_hdf5 = h5py.is_hdf5(path)
+    except PermissionError:
+        raise ScanError(path, "cannot be read (permission denied)") from None
     except OSError as err:
         raise ScanError(path, f"cannot be read ({err.strerror or _short(err)})") from None
     if not is_hdf5:
