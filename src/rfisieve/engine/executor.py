@@ -165,73 +165,99 @@ def _noise_prepass(scan, band, meta, sched, what, segments):
     return sigmas
 
 
-def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None, jobs=1):
-    """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
+def run_windows(sched, chunks, ntime, halo, size, read, build, sink, progress=None, first=None,
+                segments=None):
+    """The one executor of every stage: windows of chunks, read ahead, computed on dask.
 
-    Chunks go in windows (:meth:`_Scheduler.window`): the driver reads each window's dumps (with
-    halos) in one read, one window ahead in a reader thread, and sends each
-    (chunk x product) plane to the dask scheduler.  With ``grow`` (the merge halo) each
-    task runs both detectors and the merge (:func:`_flag_product`) on a halo widened by
-    ``grow``, and ``sink`` gets ``{"final": (mask, hist)}``.  ``jobs`` is the number of
-    such jobs running at once on this machine (:func:`_window_chunks`).  Returns the scan
-    metadata used, including the pre-pass noise sigmas (``sigma``: per product, or per
-    stretch and product when the scan has gaps).
+    Chunks go in windows of ``size`` chunks.  ``read(a, b)`` reads rows [a, b) of the
+    scan (a window's chunks with ``halo`` dumps each side, clamped to the scan); it runs
+    one window ahead in a reader thread.  ``build(block, base, c0, c1, a, b)`` returns the
+    dask graph of chunk [c0, c1) whose halo rows [a, b) start at row ``a - base`` of the
+    block; ``sink(c0, c1, result)`` takes each chunk's computed result in chunk order.
+    ``first()``, when given, runs while the first window is being read.  With
+    ``segments`` (contiguous stretches ``[start, stop)``) halos stop at the gaps between
+    them (:func:`rfisieve.engine.plan.halo_span`); no chunk may straddle one.
     """
     from concurrent.futures import ThreadPoolExecutor
 
+    windows = list(_windows(chunks, size))
+    spans = [window_span(w, halo, ntime, segments) for w in windows]
+    done = 0
+    with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
+        ahead = reader.submit(read, *spans[0]) if windows else None
+        if first is not None:
+            first()
+        for k, window in enumerate(windows):
+            block = ahead.result()
+            if k + 1 < len(windows):
+                ahead = reader.submit(read, *spans[k + 1])
+            base = spans[k][0]
+            graph = [build(block, base, c0, c1, *halo_span(c0, c1, halo, ntime, segments)) for c0, c1 in window]
+            results = dask.compute(*graph, **sched.kwargs)
+            del block
+            for (c0, c1), result in zip(window, results):
+                sink(c0, c1, result)
+                done += 1
+                if progress:
+                    progress(done, len(chunks))
+
+
+def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None, jobs=1):
+    """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
+
+    Chunks go in windows (:meth:`_Scheduler.window`, :func:`run_windows`): the driver reads
+    each window's dumps (with halos) in one read, one window ahead in a reader thread,
+    and sends each (chunk x product) plane to the dask scheduler.  With ``grow`` (the
+    merge halo) each task runs both detectors and the merge (:func:`_flag_product`) on a
+    halo widened by ``grow``, and ``sink`` gets ``{"final": (mask, hist)}``.  Each
+    contiguous stretch of the scan (``scan.segments``) is flagged on its own: dump
+    numbers count from its first dump, its noise is its own, halos stop at its ends.
+    ``jobs`` is the number of such jobs running at once on this machine
+    (:func:`_window_chunks`).  Returns the scan metadata used, including the pre-pass
+    noise sigmas (``sigma``: per product, or per stretch and product when there are gaps).
+    """
     meta = _meta(scan, band)
     what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
     halo = plan["halo"] if plan else detect_halo(band, scan)
     if grow is not None:
         halo += grow
-    segments = scan.segments  # contiguous stretches: each is flagged on its own
+    segments = scan.segments
     chunks = split_at_gaps(plan["chunks"], segments) if plan else segment_chunks(
         segments, int(run["chunk_dumps"]))
     longest = max(c1 - c0 for c0, c1 in chunks)
-    windows = list(_windows(chunks, _window_chunks(scan, longest, halo, sched.window(scan.nprod), jobs)))
-    spans = [window_span(w, halo, scan.ntime, segments) for w in windows]
-    done = 0
-    with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
+    size = _window_chunks(scan, longest, halo, sched.window(scan.nprod), jobs)
+    names = ["final"] if grow is not None else list(detectors)
+    prep_task = dask.delayed(partial(_prepare, meta=meta))
+    tasks = {}  # stretch -> (flag task, detect task), band and meta bound once (dask
+    #             would walk these nested dicts for every task)
+
+    def noise():
         # the first window is read while the noise pre-pass runs
-        ahead = reader.submit(scan.read, *spans[0], what) if windows else None
         sigmas = [None] * len(segments)
         if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
             sigmas = _noise_prepass(scan, band, meta, sched, what, segments)
             meta["sigma"] = sigmas[0] if len(segments) == 1 else sigmas
-        # band and meta bound once per stretch: dask would walk these nested dicts for every task
-        metas = [dict(meta, sigma=sig) if sig is not None else meta for sig in sigmas]
-        flag_tasks = [dask.delayed(partial(_flag_product, band=band, meta=m)) for m in metas]
-        prep_task = dask.delayed(partial(_prepare, meta=meta))
-        det_tasks = [dask.delayed(partial(_detect_product, band=band, meta=m)) for m in metas]
-        for k, window in enumerate(windows):
-            block = ahead.result()
-            if k + 1 < len(windows):
-                ahead = reader.submit(scan.read, *spans[k + 1], what)
-            base = spans[k][0]
-            graph = []
-            for c0, c1 in window:
-                a, b = halo_span(c0, c1, halo, scan.ntime, segments)
-                seg = segments.index(list(segment_of(c0, segments)))
-                s0 = segments[seg][0]  # dump numbers count from the stretch's first dump
-                if grow is not None:
-                    parts = [flag_tasks[seg](sched.put(_planes(block, a - base, b - base, p)), p=p,
-                                             t0=a - s0, core=(c0 - a, c1 - a), grow=grow)
-                             for p in range(scan.nprod)]
-                    graph.append([dask.delayed(_assemble)(parts, scan.nprod)])
-                    continue
-                preps = [prep_task(sched.put(_planes(block, a - base, b - base, p)), p=p)
-                         for p in range(scan.nprod)]
-                per_det = []
-                for det in detectors:
-                    parts = [det_tasks[seg](preps[p], p=p, detector=det, t0=a - s0, core=(c0 - a, c1 - a))
-                             for p in range(scan.nprod)]
-                    per_det.append(dask.delayed(_assemble)(parts, scan.nprod))
-                graph.append(per_det)
-            results = dask.compute(*graph, **sched.kwargs)
-            del block
-            for (c0, c1), per_det in zip(window, results):
-                sink(c0, c1, dict(zip(["final"] if grow is not None else detectors, per_det)))
-                done += 1
-                if progress:
-                    progress(done, len(chunks))
+        for k, sig in enumerate(sigmas):
+            m = meta if sig is None else dict(meta, sigma=sig)
+            tasks[k] = (dask.delayed(partial(_flag_product, band=band, meta=m)),
+                        dask.delayed(partial(_detect_product, band=band, meta=m)))
+
+    def build(block, base, c0, c1, a, b):
+        k = segments.index(list(segment_of(c0, segments)))
+        flag_task, det_task = tasks[k]
+        t0 = a - segments[k][0]  # dump numbers count from the stretch's first dump
+        if grow is not None:
+            parts = [flag_task(sched.put(_planes(block, a - base, b - base, p)), p=p,
+                               t0=t0, core=(c0 - a, c1 - a), grow=grow)
+                     for p in range(scan.nprod)]
+            return [dask.delayed(_assemble)(parts, scan.nprod)]
+        preps = [prep_task(sched.put(_planes(block, a - base, b - base, p)), p=p)
+                 for p in range(scan.nprod)]
+        return [dask.delayed(_assemble)([det_task(preps[p], p=p, detector=det, t0=t0, core=(c0 - a, c1 - a))
+                                         for p in range(scan.nprod)], scan.nprod)
+                for det in detectors]
+
+    run_windows(sched, chunks, scan.ntime, halo, size, lambda a, b: scan.read(a, b, what), build,
+                lambda c0, c1, per_det: sink(c0, c1, dict(zip(names, per_det))), progress, first=noise,
+                segments=segments)
     return meta

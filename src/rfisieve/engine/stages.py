@@ -10,10 +10,9 @@ import numpy as np
 
 from rfisieve import bits
 from rfisieve.detect.masks import channel_cut
-from rfisieve.engine.executor import _local_get, _run_detection, _Scheduler, _windows
+from rfisieve.engine.executor import _run_detection, _Scheduler, run_windows
 from rfisieve.engine.pages import small_pages
-from rfisieve.engine.plan import (_check_band_matches, _check_run, merge_halo, segment_chunks, segment_of,
-                                  window_span, halo_span)
+from rfisieve.engine.plan import _check_band_matches, _check_run, merge_halo, segment_chunks, segment_of
 from rfisieve.engine.planes import DETECTORS, SK_EDGES, _extra_bits, _merge_plane, _meta
 from rfisieve.errors import RfisieveError, ScanError
 from rfisieve.io.maskfile import (_copy_sk_diag, _create_mask_file, _write_attrs, _write_noise,
@@ -105,7 +104,7 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
     _check_run(run)
     chunk_dumps = int(run["chunk_dumps"])
     partial_paths = [Path(p) for p in partial_paths]
-    with open_scan(scan_path, run.get("layout")) as scan:
+    with open_scan(scan_path, run.get("layout")) as scan, _Scheduler(run) as sched:
         _check_band_matches(scan, band)
         meta = _meta(scan, band)
         parts = []
@@ -124,30 +123,28 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 flags = f["flags"]
                 segments = scan.segments  # contiguous stretches: growth and cuts stop at gaps
                 counts = np.zeros((len(segments), scan.nchan, scan.nprod), dtype=np.int64)
-                chunks = segment_chunks(segments, chunk_dumps)
                 halo = merge_halo(band)
-                workers = max(1, int(run.get("workers") or 1))
-                local = _local_get("synchronous" if run.get("scheduler") == "synchronous" else "threads")
-                done = 0
-                for window in _windows(chunks, max(2, 2 * workers)):
-                    lo, hi = window_span(window, halo, scan.ntime, segments)
+
+                def read(lo, hi):
                     det = np.zeros((hi - lo, scan.nchan, scan.nprod), dtype=np.uint8)
                     for h in parts:
                         det |= h["flags"][lo:hi]
-                    extra = _input_and_static(scan, lo, hi, meta)
-                    graph = []
-                    for c0, c1 in window:
-                        a, b = (x - lo for x in halo_span(c0, c1, halo, scan.ntime, segments))
-                        core = (c0 - lo - a, c1 - lo - a)
-                        graph.append(dask.delayed(_stack)(
-                            [dask.delayed(_merge_plane)(det[a:b, :, p], extra[a:b, :, p], band, core)
-                             for p in range(scan.nprod)]))
-                    for (c0, c1), out in zip(window, dask.compute(*graph, scheduler=local, num_workers=workers)):
-                        flags[c0:c1] = out
-                        counts[segments.index(list(segment_of(c0, segments)))] += (out != 0).sum(axis=0)
-                        done += 1
-                        if progress:
-                            progress(done, len(chunks))
+                    return lo, det, _input_and_static(scan, lo, hi, meta)
+
+                def build(block, base, c0, c1, a, b):
+                    lo, det, extra = block
+                    core = (c0 - a, c1 - a)
+                    return dask.delayed(_stack)(
+                        [dask.delayed(_merge_plane)(sched.put(det[a - lo:b - lo, :, p]),
+                                                    sched.put(extra[a - lo:b - lo, :, p]), band, core)
+                         for p in range(scan.nprod)])
+
+                def sink(c0, c1, out):
+                    flags[c0:c1] = out
+                    counts[segments.index(list(segment_of(c0, segments)))] += (out != 0).sum(axis=0)
+
+                run_windows(sched, segment_chunks(segments, chunk_dumps), scan.ntime, halo,
+                            max(2, 2 * sched.workers), read, build, sink, progress, segments=segments)
                 _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
                 _copy_sk_diag(parts, f, meta, band, SK_EDGES)
                 for h in parts:
