@@ -22,6 +22,13 @@ include: "workflow/rules/occupancy.smk"
 include: "workflow/rules/review.smk"
 
 
+onstart:
+    # One run per outdir, from any checkout (rfisieve run, our parent, may hold it for us).
+    from rfisieve.cli import guard as rfguard
+
+    rfguard.hold_outdir_lock_for_snakemake(OUTDIR, workflow.basedir, workflow.persistence.unlock)
+
+
 rule all:
     input:
         all_outputs(),

@@ -9,6 +9,7 @@ imported inside the commands so that ``rfisieve --help`` stays fast.
 """
 
 import argparse
+import contextlib
 import importlib
 import json
 import os
@@ -81,6 +82,10 @@ def _add_parallel_options(p):
     p.add_argument("--scheduler", metavar="S",
                    help="threads | processes | synchronous | tcp://host:port of a dask.distributed "
                         "scheduler (overrides the run config)")
+    p.add_argument("--jobs-at-once", type=int, default=1, metavar="J",
+                   help="jobs like this one that run at the same time on this machine: they share its "
+                        "memory budget (25 %% of the memory, divided by J); the workflow passes "
+                        "--cores // workers")
 
 
 def _run_settings(args):
@@ -167,7 +172,9 @@ def cmd_detect(args):
     run = _run_settings(args)
     band, _ = _band_settings(args, args.scan, run)
     plan = _read_plan(args.plan)
-    engine.detect(args.scan, args.out, args.detector, band, run, plan=plan,
+    if args.jobs_at_once < 1:
+        raise ConfigError("--jobs-at-once", f"{args.jobs_at_once}: expected a whole number >= 1")
+    engine.detect(args.scan, args.out, args.detector, band, run, plan=plan, jobs=args.jobs_at_once,
                   progress=_Progress(f"detect {args.detector} {os.path.basename(args.scan)}"))
     return 0
 
@@ -356,6 +363,7 @@ def snakemake_command(args, root):
                                  source="--inputs" if args.inputs else config_file)
     for band in sorted({io.scan_band(p, run["layout"]) for p in paths}):
         config.load_band(os.path.join(root, run["bands_dir"]), band)
+    args.night_paths, args.night_run = paths, run
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", os.path.join(root, "Snakefile"),
            "--directory", root, "--configfile", config_file,
            "--workflow-profile", _resolve_profile(root, args.profile),
@@ -378,6 +386,7 @@ def _overrides_source(args):
 
 
 def cmd_run(args):
+    from rfisieve.cli import guard
     from rfisieve.config import load as config
 
     root = config.repo_root()
@@ -388,15 +397,21 @@ def cmd_run(args):
     if args.print_command:
         print(" ".join(_quote(c) for c in cmd))
         return 0
-    print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
-    t0 = time.monotonic()
-    proc = subprocess.Popen(cmd, cwd=str(root))
-    try:
-        rc = proc.wait()
-    except KeyboardInterrupt:  # Snakemake got the Ctrl-C too: let it mark unfinished jobs
-        print("rfisieve run: interrupted; waiting for snakemake to stop its jobs", file=sys.stderr)
-        rc = proc.wait()
-        raise RfisieveError("interrupted; run the same command again to finish the run") from None
+    # One run per outdir, from any checkout; leftovers of killed runs cleared (cli/guard.py).
+    with contextlib.nullcontext() if args.dry_run else guard.OutdirLock(outdir, root) as lock:
+        if lock is not None:
+            if lock.stale:
+                guard.say(f"removed the stale lock of {outdir} (held by {guard._describe(lock.stale)}, "
+                          "no longer running)")
+            guard.clear_stale_snakemake_lock(root)
+            guard.remove_leftovers(outdir)
+            guard.memory_advice(args.night_paths, args.night_run,
+                                os.path.join(str(root), args.night_run["bands_dir"]), args.cores)
+        print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
+        t0 = time.monotonic()
+        with guard.ChildGuard() as child:
+            rc = child.start(cmd, cwd=str(root)).wait()
+        child.check()  # SIGINT/SIGTERM/SIGHUP: snakemake was stopped; one line, exit 128 + signal
     if rc != 0:
         raise RfisieveError(f"the workflow stopped (snakemake exit status {rc}); read the failing job's "
                             "log under <outdir>/logs, fix it and rerun: finished scans are kept")
@@ -405,7 +420,9 @@ def cmd_run(args):
         for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
                           ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
                           ("logs", "logs/<stage>/<scan>.log")):
-            print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
+            path = os.path.join(outdir, rel)
+            if os.path.exists(path.split("<")[0] if "<" in path else path):  # e.g. not after --unlock
+                print(f"  {what:<14} {path}", file=sys.stderr)
     return 0
 
 
@@ -568,7 +585,7 @@ def main(argv=None):
         rc = args.func(args)
     except RfisieveError as err:
         print(f"rfisieve: error: {' '.join(str(err).split())}", file=sys.stderr)
-        return 2
+        return getattr(err, "status", 2)
     except KeyboardInterrupt:
         print("rfisieve: interrupted", file=sys.stderr)
         return 130
