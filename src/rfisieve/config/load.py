@@ -79,6 +79,8 @@ def read_yaml(path):
         mark = getattr(err, "problem_mark", None)
         where = f" at line {mark.line + 1}" if mark is not None else ""
         problem = getattr(err, "problem", None) or "invalid YAML"
+        if problem.startswith("duplicate key"):
+            raise ConfigError(path, f"{problem.replace(' (', f'{where} (', 1)}: a key may be given once") from None
         raise ConfigError(path, f"not valid YAML{where}: {problem}") from None
     if data is None:
         data = {}

@@ -272,9 +272,9 @@ class Scan:
         bad = np.flatnonzero(~(step > 0))
         if bad.size:
             i = int(bad[0]) + 1
-            how = "repeats" if step[i - 1] == 0 else "goes back in time"
-            raise ScanError(self.path, f"{name} {how} at dump {i} ({_utc(t[i])}, {t[i] - t[i - 1]:+g} s after "
-                                       f"dump {i - 1}); dumps must be in time order, each once")
+            how = (f"repeats at dump {i} ({_utc(t[i])}, the time of dump {i - 1})" if step[i - 1] == 0 else
+                   f"goes back in time at dump {i} ({_utc(t[i])}, {t[i] - t[i - 1]:+g} s after dump {i - 1})")
+            raise ScanError(self.path, f"{name} {how}; dumps must be in time order, each once")
         limit = GAP_FACTOR * self.integration_time
         after = np.flatnonzero(step > limit)
         #: gaps as (index of the dump before the gap, length of the step in s)

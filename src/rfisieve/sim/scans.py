@@ -554,7 +554,7 @@ def _handle(args):
     out = Path(args.outdir)
     if not args.quiet:
         for s in result["scans"]:
-            extras = [f"{s['shape'][2]} products", s["dtype"]]
+            extras = [f"{s['shape'][2]} product{'s' if s['shape'][2] != 1 else ''}", s["dtype"]]
             if s["s2"]:
                 extras.append("/s2")
             if s["dropped_dumps"]:
