@@ -196,6 +196,19 @@ def test_memory_guard_refuses_in_one_line_with_the_advice(tmp_path):
     assert not (tmp_path / "p.h5").exists()
 
 
+def test_memory_advice_is_shown_in_the_terminal(tmp_path, capsys):
+    from rfisieve.config.defaults import run_settings
+
+    path = tmp_path / "a_L.h5"
+    make_scan(path, ntime=64, nchan=32, nprod=2)
+    run = run_settings({"workers": 1})
+    assert guard.memory_advice([path], run, ROOT / "config" / "bands", cores=2) == []
+    shown = guard.memory_advice([path, tmp_path / "missing.h5"], run, ROOT / "config" / "bands", cores=10 ** 9)
+    err = capsys.readouterr().err.splitlines()
+    assert len(shown) == 1 and err == [f"rfisieve run: warning: {shown[0]}"]
+    assert "shared by 1000000000 jobs at once" in err[0]
+
+
 # -- real runs ------------------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def night(tmp_path_factory):
@@ -275,6 +288,18 @@ def test_signal_stops_snakemake_and_its_jobs_no_orphan(night, reference, tmp_pat
     assert res.returncode == 0, res.stderr[-2000:]
     np.testing.assert_array_equal(_masks(tmp_path / "out"), reference)
     assert sha256(night) == before
+
+
+@pytest.mark.slow
+def test_kill_9_of_rfisieve_run_leaves_no_orphan(night, tmp_path):
+    proc = _start_run(night, tmp_path / "out")
+    family = _wait_for_detect(proc)
+    os.kill(proc.pid, signal.SIGKILL)  # rfisieve run itself cannot catch this
+    proc.communicate(timeout=60)
+    deadline = time.monotonic() + 60  # snakemake gets SIGINT when its parent dies, and stops its jobs
+    while _alive(family) and time.monotonic() < deadline:
+        time.sleep(0.2)
+    assert not _alive(family), [" ".join(p.cmdline()) for p in _alive(family)]
 
 
 @pytest.mark.slow
