@@ -20,6 +20,12 @@ WORKERS = int(RUN["workers"])
 LOCAL_DASK = not RUN["scheduler"].startswith("tcp://")
 # Workers of a dask.distributed cluster do not run on Snakemake's cores.
 DASK_THREADS = WORKERS if LOCAL_DASK else 1
+# Detect jobs that run at once on one machine (--cores // threads per job): they share
+# its memory budget. On a cluster each job has its node (its own memory request).
+try:
+    JOBS_AT_ONCE = max(1, int(workflow.cores) // DASK_THREADS) if workflow.local_exec else 1
+except Exception:  # no --cores (e.g. a dry run): one job's view
+    JOBS_AT_ONCE = 1
 
 # The night's checks, once, in this process: every scan opened read-only and validated,
 # every band config loaded once.  A bad scan is quarantined (its job records why and the

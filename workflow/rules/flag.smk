@@ -28,4 +28,4 @@ for _i, (_first, _scans) in enumerate(BATCHES.items()):
         shell:
             "{RFISIEVE} flag {input.scans:q} --outdir {OUTDIR:q} --expect {params.expect:q}"
             " {params.run} {params.options} --workers {threads} --scheduler {RUN[scheduler]:q}"
-            " 2> {log:q}"
+            " --jobs-at-once {JOBS_AT_ONCE} 2> {log:q}"

@@ -84,13 +84,14 @@ def _check_plan(expect, entry):
                                   "run again")
 
 
-def flag_one(scan_path, outputs, run, expect=None, keep_partial=None, strict=False, bands=None):
+def flag_one(scan_path, outputs, run, expect=None, keep_partial=None, strict=False, bands=None, jobs=1):
     """Flag one scan end to end and write its record; returns the record (a dict).
 
     ``outputs``: :func:`rfisieve.engine.night.scan_outputs` of the scan.  ``expect``:
     the night's plan of the scan (``shape``, ``identity``) from
     :func:`rfisieve.engine.night.check_scan`.  ``keep_partial``: a directory that also
-    receives each detector's partial mask (``<scan>.<detector>.h5``).  Outputs that
+    receives each detector's partial mask (``<scan>.<detector>.h5``).  ``jobs``: flag
+    jobs running at once on this machine (they share its memory budget).  Outputs that
     stand (same scan, settings and version, :func:`rfisieve.engine.night.outputs_stand`)
     are kept and only the record is written: a job stopped halfway redoes only its
     unfinished scans.
@@ -117,9 +118,9 @@ def flag_one(scan_path, outputs, run, expect=None, keep_partial=None, strict=Fal
             nt, nc, npr = entry["shape"]
             prog = ProgressFile(outputs.get("progress"), record["scan"], nt * nc * npr,
                                 f"flag {os.path.basename(str(scan_path))}")
-            counted = _flag_stage(scan_path, outputs, band, source, run, prog, written, entry)
+            counted = _flag_stage(scan_path, outputs, band, source, run, prog, written, entry, jobs)
             if keep_partial:
-                _keep_partial(scan_path, keep_partial, record["scan"], band, run, written)
+                _keep_partial(scan_path, keep_partial, record["scan"], band, run, written, jobs)
             _occupancy_stage(outputs, written, counted)
         record.update(status="flagged", stage="", reason="", reused=bool(reuse),
                       outputs={k: os.path.abspath(outputs[k]) for k in ("mask", "occupancy_csv", "occupancy_h5")})
@@ -151,7 +152,7 @@ def flag_one(scan_path, outputs, run, expect=None, keep_partial=None, strict=Fal
     return record
 
 
-def flag_scans(paths, outdir, run, expect=None, keep_partial=False, strict=False):
+def flag_scans(paths, outdir, run, expect=None, keep_partial=False, strict=False, jobs=1):
     """:func:`flag_one` for each scan in turn, in this one process; returns the records."""
     from rfisieve.engine import night
 
@@ -161,46 +162,43 @@ def flag_scans(paths, outdir, run, expect=None, keep_partial=False, strict=False
         scan = night.scan_name(path)
         partial_dir = os.path.join(str(outdir), "partial") if keep_partial else None
         rec = flag_one(path, night.scan_outputs(outdir, scan), run, expect=(expect or {}).get(scan),
-                       keep_partial=partial_dir, strict=strict, bands=bands)
+                       keep_partial=partial_dir, strict=strict, bands=bands, jobs=jobs)
         what = "kept (outputs stand)" if rec.get("reused") else rec["status"]
         print(f"rfisieve flag: scan {scan} {what} in {rec['seconds']:.1f} s", file=sys.stderr, flush=True)
         records.append(rec)
     return records
 
 
-def _flag_stage(scan_path, outputs, band, source, run, prog, written, entry):
+def _flag_stage(scan_path, outputs, band, source, run, prog, written, entry, jobs=1):
     """Flag the scan into its mask file; returns the occupancy counts taken while the
     mask was in memory (a ScanOccupancy), or None when the per-channel cut changed the
     mask after that (the counts are then taken from the file)."""
     import rfisieve.engine as engine
     from rfisieve.engine import night
-    from rfisieve.engine.stages import channel_cut_adds
     from rfisieve.review.counts import ScanOccupancy
 
     stage = "flag"
     acc = ScanOccupancy(*entry["shape"])
     try:
-        engine.flag_scan(scan_path, outputs["mask"], band, run, band_source=source, progress=prog,
-                         observe=acc.add)
+        done = engine.flag_scan(scan_path, outputs["mask"], band, run, band_source=source, progress=prog,
+                                jobs=jobs, observe=acc.add)
     except RfisieveError as err:
         raise _ScanFailed(stage, err) from None
     written.append(outputs["mask"])
     if night.identity(scan_path) != entry["identity"]:
         raise _ScanFailed(stage, f"{scan_path}: changed while it was being flagged; its mask is "
                                  "discarded, run again to flag it as it is now")
-    if channel_cut_adds(acc.c["product_channel_flagged"].T, acc.ntime, band["cuts"]["channel_limit"]).any():
-        return None
-    return acc
+    return None if done["channel_cut"] else acc
 
 
-def _keep_partial(scan_path, directory, scan, band, run, written):
+def _keep_partial(scan_path, directory, scan, band, run, written, jobs=1):
     """Each detector's partial mask as well (the debugging option ``keep_partial``)."""
     import rfisieve.engine as engine
 
     for detector in engine.DETECTORS:
         out = os.path.join(directory, f"{scan}.{detector}.h5")
         try:
-            engine.detect(scan_path, out, detector, band, run)
+            engine.detect(scan_path, out, detector, band, run, jobs=jobs)
         except RfisieveError as err:
             raise _ScanFailed("flag", err) from None
         written.append(out)
@@ -279,10 +277,14 @@ def failed_text(rows, total=None):
 def cmd_flag(args):
     from rfisieve.cli import _run_settings
 
+    from rfisieve.errors import ConfigError
+
     run = _run_settings(args)
+    if args.jobs_at_once < 1:
+        raise ConfigError("--jobs-at-once", f"{args.jobs_at_once}: expected a whole number >= 1")
     expect = json.loads(args.expect) if args.expect else None
     flag_scans(args.scans, args.outdir, run, expect=expect, keep_partial=args.keep_partial,
-               strict=args.strict)
+               strict=args.strict, jobs=args.jobs_at_once)
     return 0
 
 

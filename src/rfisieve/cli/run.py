@@ -264,13 +264,16 @@ def verdict(outdir, paths, rc, bands_dir=None, previous=None, stream=None, since
 
 
 # -- the steps of ``rfisieve run`` (cmd_run in rfisieve.cli calls them in turn) ----------
-def start(cmd, root, args):
-    """Start Snakemake (``cmd``) in ``root``; its stderr is piped unless --verbose or --dry-run."""
+def start(cmd, root, args, launch=None):
+    """Start Snakemake (``cmd``) in ``root`` with ``launch`` (default subprocess.Popen;
+    rfisieve run passes its signal guard's); its stderr is piped unless --verbose or
+    --dry-run."""
     import subprocess
 
     quiet = not (args.dry_run or args.verbose)
     print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
-    return subprocess.Popen(cmd, cwd=str(root), stderr=subprocess.PIPE if quiet else None, text=True, bufsize=1)
+    return (launch or subprocess.Popen)(cmd, cwd=str(root), stderr=subprocess.PIPE if quiet else None,
+                                        text=True, bufsize=1)
 
 
 def wait(proc, outdir, args):
@@ -296,5 +299,7 @@ def finish(rc, outdir, args, root, started):
     for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
                       ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
                       ("failed scans", "failed_scans.csv"), ("logs", "logs/<stage>/<name>.log")):
-        print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
+        path = os.path.join(outdir, rel)
+        if os.path.exists(path.split("<")[0]):  # e.g. not after -- --unlock
+            print(f"  {what:<14} {path}", file=sys.stderr)
     return status
