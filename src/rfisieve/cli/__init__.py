@@ -13,7 +13,6 @@ import contextlib
 import importlib
 import json
 import os
-import subprocess
 import sys
 import time
 
