@@ -93,8 +93,8 @@ def test_page_parses_and_every_image_decodes(run):
     p.feed(page)
     p.close()
     assert "html" in p.tags and "table" in p.tags
-    # 1 band + 2 scan images + 2 kurtosis plots
-    assert len(p.imgs) == 5
+    # the night + 1 band + 2 scan images + 2 kurtosis plots
+    assert len(p.imgs) == 6
     import matplotlib.image as mpimg
     for src in p.imgs:
         assert src.startswith("data:image/png;base64,")   # self-contained: nothing loaded from disk

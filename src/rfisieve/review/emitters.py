@@ -139,3 +139,42 @@ def match_emitters(start_mhz, stop_mhz, emitters):
 def in_band(emitters, fmin_mhz, fmax_mhz):
     """Emitters overlapping ``[fmin_mhz, fmax_mhz]`` (for marking plots)."""
     return [e for e in emitters if e["stop_mhz"] > fmin_mhz and e["start_mhz"] < fmax_mhz]
+
+
+def _name_key(name):
+    """A name without parenthesised details, case and punctuation: "GLONASS L1 (FDMA)" -> "glonass l1"."""
+    import re
+
+    base = re.sub(r"\([^)]*\)", " ", str(name)).lower()
+    return " ".join(re.sub(r"[^a-z0-9]+", " ", base).split())
+
+
+def _cited(e):
+    return "from memory" not in e.get("source", "")
+
+
+def merge_duplicates(emitters):
+    """One entry per emitter: entries whose names agree (ignoring case, punctuation and
+    parenthesised details) and whose ranges overlap are merged.
+
+    The entry kept is the shipped one (``site`` None) before a band config's, and
+    within those the one whose source cites a document rather than memory; its name,
+    range and source stand, and ``also`` lists the other entries' ``(where, source)``
+    (``where`` = ``config/bands/<band>.yaml`` or ``config/emitters.yaml``).
+    """
+    kept = []
+    for e in sorted(emitters, key=lambda e: (e.get("site") is not None, not _cited(e), e["start_mhz"])):
+        key = _name_key(e["name"])
+        twin = next((k for k in kept if _name_key(k["name"]) == key and k["kind"] == e["kind"]
+                     and e["start_mhz"] < k["stop_mhz"] and k["start_mhz"] < e["stop_mhz"]), None)
+        if twin is None:
+            kept.append(dict(e, also=list(e.get("also", []))))
+        else:
+            twin["also"].append((where_from(e), e["source"]))
+    kept.sort(key=lambda e: (e["start_mhz"], e["stop_mhz"], e["name"]))
+    return kept
+
+
+def where_from(e):
+    """Which file an entry comes from (for the page's tables)."""
+    return f"config/bands/{e['site']}.yaml" if e.get("site") else "config/emitters.yaml"
