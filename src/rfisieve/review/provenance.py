@@ -24,7 +24,7 @@ import numpy as np
 FAILED_COLUMNS = ("scan", "path", "stage", "reason")
 
 #: Band-settings keys not shown as settings (shown elsewhere on the page, or prose).
-NOT_SETTINGS = ("emitters", "description", "band", "protect", "static")
+NOT_SETTINGS = ("emitters", "description", "band", "protect", "static", "known_bad")
 
 
 def _attr_text(v):
