@@ -122,7 +122,7 @@ def test_run_csv_is_the_sample_weighted_sum(run):
             fl += np.count_nonzero(b[:, ch - 2])
             sm += b[:, ch - 2].size
         assert int(r["samples"]) == sm
-        assert float(r["flagged"]) == pytest.approx(fl / sm, rel=1e-9)
+        assert float(r["flagged_fraction"]) == pytest.approx(fl / sm, rel=1e-9)
         assert int(r["scans"]) == (2 if ch >= 2 else 1)
 
 
@@ -142,7 +142,7 @@ def test_change_since_previous_run(run, tmp_path):
         rows = list(csv.reader(fh))
     head = rows[0]
     for r in rows[1:]:
-        r[head.index("flagged")] = "0"
+        r[head.index("flagged_fraction")] = "0"
     with open(prev, "w", newline="") as fh:
         csv.writer(fh).writerows(rows)
     scans = sorted(str(p) for p in (out / "occupancy").glob("night_*.h5"))
