@@ -160,6 +160,15 @@ def load_run_config(path=None, overrides=None):
     return run_config_from_mapping(merged, source)
 
 
+def scan_name(path):
+    """The scan's name: its file name without ``.h5`` (docs/design.md 3.2 ``<scan>``)."""
+    name = Path(path).name
+    for suffix in (".h5", ".hdf5"):
+        if name.endswith(suffix):
+            return name[: -len(suffix)]
+    return name
+
+
 def expand_inputs(inputs, source="inputs"):
     """Scan paths from a glob or a list of paths/globs, sorted, duplicates removed.
 
@@ -182,8 +191,6 @@ def expand_inputs(inputs, source="inputs"):
             raise ConfigError(source, f"no such scan file {pattern!r}")
     if not paths:
         raise ConfigError(source, "no scans given: set inputs to a glob or a list of files")
-    from rfisieve.io.scan import scan_name
-
     seen = {}
     unique = []
     for p in paths:

@@ -20,6 +20,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from rfisieve.config.load import scan_name  # noqa: F401  (re-exported: io.scan.scan_name)
 from rfisieve.errors import ScanError
 from rfisieve.io.hdf5 import attr_str as _attr_str
 from rfisieve.config.defaults import RUN_DEFAULTS
@@ -27,13 +28,6 @@ from rfisieve.config.defaults import RUN_DEFAULTS
 AXES = ("time", "freq", "product")
 
 
-def scan_name(path):
-    """The scan's name: its file name without ``.h5`` (DESIGN.md 2.2 ``<scan>``)."""
-    name = Path(path).name
-    for suffix in (".h5", ".hdf5"):
-        if name.endswith(suffix):
-            return name[: -len(suffix)]
-    return name
 
 
 def _layout(layout):
