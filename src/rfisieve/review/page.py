@@ -37,6 +37,8 @@ RANGE_FRACTION = 0.2   # a channel belongs to an occupied range at this flagged 
 TOP_RANGES = 15
 #: Name of the any-cause fraction column of run.csv, newest first (older runs: ``flagged``).
 FLAGGED_COLUMNS = ("flagged_fraction", "flagged")
+#: Fractions closer than this count as unchanged (run.csv keeps 10 significant digits).
+SAME = 1e-9
 
 
 # ---------------------------------------------------------------------------
@@ -356,12 +358,12 @@ def _change_section(h, bands, figs, prev, previous, ctx):
         if not ok.any():
             h.append(f"<p><b>Band {esc(band)}</b>: the previous run has no channels of this band; {esc(stext)}.</p>")
             continue
-        if not np.any(np.abs(d[ok]) > 1e-12):
+        if not np.any(np.abs(d[ok]) > SAME):
             h.append(f"<p><b>Band {esc(band)}</b>: occupancy unchanged over the {int(ok.sum())} channels "
                      f"compared; {esc(stext)}.</p>")
             continue
         h.append(f"<h3>Band {esc(band)}</h3>")
-        up, down = int(np.sum(d[ok] > 1e-12)), int(np.sum(d[ok] < -1e-12))
+        up, down = int(np.sum(d[ok] > SAME)), int(np.sum(d[ok] < -SAME))
         occ_rows = [["channels compared", f"{int(ok.sum())} of {len(d)}"],
                     ["mean change", f"{100 * np.nanmean(d):+.2f} points"],
                     ["whole band, before \u2192 now",
@@ -374,7 +376,7 @@ def _change_section(h, bands, figs, prev, previous, ctx):
         h.append(_img(p, f"change of occupancy, band {band}"))
         order = np.argsort(-np.abs(np.where(ok, d, 0)))[:8]
         rows = [[f"{agg['freq'][i] / 1e6:.3f}", _pct(before[i], 1), _pct(now[i], 1),
-                 f"{100 * d[i]:+.1f}"] for i in order if ok[i] and d[i] != 0]
+                 f"{100 * d[i]:+.1f}"] for i in order if ok[i] and abs(d[i]) > SAME]
         if rows:
             h.append(_table(["channel MHz", "before", "now", "change (points)"], rows, left=()))
 
