@@ -454,15 +454,24 @@ def _provenance_section(h, scans, ctx, sk_summaries):
         p = ctx["provs"][name]
         if p.get("settings") is not None:
             by_band.setdefault(band, []).append((name, p))
-    for band, lst in by_band.items():
-        first = pv.shown_settings(lst[0][1]["settings"])
-        differ = [n for n, p in lst[1:] if pv.settings_diff(lst[0][1]["settings"], p["settings"])]
-        path = lst[0][1].get("band_config_path") or "?"
-        h.append(f"<h3>Band {esc(band)}: settings as used</h3><p class=\"note\">From the mask files "
-                 f"(band config {esc(path)}); "
-                 + (f"scans {esc(', '.join(differ))} used other settings: see their mask files."
-                    if differ else f"the same for all {len(lst)} scan(s) of the band.") + "</p>")
-        h.append(_table(["setting", "value"], _settings_rows(first), left=(0, 1)))
+    if by_band:
+        flat = {band: pv.shown_settings(lst[0][1]["settings"]) for band, lst in by_band.items()}
+        keys = sorted(set().union(*flat.values()))
+        rows = []
+        for k in keys:
+            vals = [pv.fmt_value(flat[b][k]) if k in flat[b] else "-" for b in by_band]
+            rows.append([f"<code>{esc(k)}</code>", *[esc(v) for v in vals]])
+        notes = []
+        for band, lst in by_band.items():
+            differ = [n for n, p in lst[1:] if pv.settings_diff(lst[0][1]["settings"], p["settings"])]
+            path = lst[0][1].get("band_config_path") or "?"
+            notes.append(f"band {esc(band)}: {esc(path)}, " + (
+                f"scans {esc(', '.join(differ))} used other settings (see their mask files)" if differ
+                else f"the same for all {len(lst)} scan(s)"))
+        h.append("<h3>Band settings as used</h3><p class=\"note\">Read from the mask files (attribute "
+                 "<code>band_settings</code>); " + "; ".join(notes) + ". Known-bad and protected ranges and "
+                 "emitter lists are shown with each band above.</p>")
+        h.append(_table(["setting", *[f"band {b}" for b in by_band]], rows, left=tuple(range(len(by_band) + 1))))
     h.append("<h3>Spectral kurtosis thresholds used</h3>")
     rows = []
     for name, sm in sk_summaries.items():
