@@ -166,7 +166,12 @@ def read_failed(outdir):
             missing = [c for c in FAILED_COLUMNS if c not in head]
             if missing:
                 return None, f"{path} lacks column(s) {', '.join(missing)}"
-            rows = [{c: (r.get(c) or "").strip() for c in FAILED_COLUMNS} for r in reader]
+            rows = []
+            for r in reader:
+                row = {c: (r.get(c) or "").strip() for c in FAILED_COLUMNS}
+                if r.get(None) and head[-1] == "reason":   # an unquoted comma in the last column
+                    row["reason"] = ",".join([row["reason"], *r[None]]).strip()
+                rows.append(row)
     except (OSError, csv.Error, UnicodeDecodeError) as err:
         return None, f"cannot read {path} ({err.__class__.__name__})"
     return [r for r in rows if any(r.values())], path
