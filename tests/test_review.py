@@ -377,30 +377,39 @@ def test_unchanged_band_gets_one_line_and_no_previous_says_how(run, tmp_path):
     assert "previous_run" in change and "--previous" in change
 
 
-def test_mask_file_is_gzip_and_has_units(tmp_path):
-    # the engine's mask writer; gzip (deflate) is built into every HDF5 library (HDF5 docs,
-    # "H5Z_FILTER_DEFLATE"), LZF is not
-    from rfisieve.io.maskfile import _create_mask_file
+def test_engine_mask_opens_with_gzip_alone_and_the_page_shows_the_data(tmp_path):
+    # gzip (deflate) is built into every HDF5 library (HDF5 docs, H5Z_FILTER_DEFLATE); LZF is not
+    import json
 
-    class S:
-        ntime, nchan, nprod = 40, 8, 2
-        time = 1.8e9 + np.arange(40.0)
-        freq = 1.4e9 + np.arange(8.0)
-        products = ["a-a", "a-b"]
-        name, band = "s", "L"
-        integration_time, channel_width, accumulations = 1.0, 1e6, 16
-        path = tmp_path / "scan.h5"
+    from scanfactory import make_scan
 
-    S.path.write_bytes(b"x" * 100)
-    with h5py.File(tmp_path / "m.h5", "w") as f:
-        _create_mask_file(f, S, 16)
-        f["flags"][:] = 1
-    with h5py.File(tmp_path / "m.h5", "r") as f:
-        ds = f["flags"]
-        assert ds.compression == "gzip"
-        assert all(h5py.h5z.filter_avail(fid) for fid in (h5py.h5z.FILTER_DEFLATE,))
-        assert (ds[()] == 1).all()
+    from rfisieve.config.defaults import band_settings, run_settings
+    from rfisieve.engine import flag_scan
+
+    scan = tmp_path / "scans" / "qro_gz_L.h5"
+    scan.parent.mkdir()
+    make_scan(scan, ntime=300, nchan=32, nprod=2, seed=4)
+    band = band_settings({"band": "L"})
+    band["protect"] = [{"start_mhz": 0.0, "stop_mhz": 1e6, "reason": "test: the whole band", "source": "this test"}]
+    out = tmp_path / "out"
+    mask = out / "flags" / "qro_gz_L.h5"
+    flag_scan(scan, mask, band, run_settings({"chunk_dumps": 128}))
+    with h5py.File(mask, "r") as f:
+        assert f["flags"].compression == "gzip"
+        assert f["flags"].compression_opts is not None and h5py.h5z.filter_avail(h5py.h5z.FILTER_DEFLATE)
+        assert f["flags"][()].shape == (300, 32, 2)
         assert "s since 1970" in f["time"].attrs["units"] and "Hz" in f["freq"].attrs["units"]
+        g = f["diagnostics/sk"]
+        edges = g["edges"][()]
+        assert edges[0] <= g.attrs["lower"] < g.attrs["upper"] < edges[-2]
+        assert g["counts"].shape[-1] == len(edges) - 1
+    occ_h5 = out / "occupancy" / "qro_gz_L.h5"
+    occ.occupancy_of_mask(mask, out / "occupancy" / "qro_gz_L.csv", occ_h5)
+    index = review.build_review(str(out), [str(occ_h5)])
+    page = open(index, encoding="utf-8").read()
+    assert "Data not shown" not in page                      # the scan file was read for the data image
+    assert "test: the whole band" in page and "flagged inside" in page
+    assert json.loads(h5py.File(out / "occupancy" / "run.h5", "r").attrs["band_settings_json"])["L"]["protect"]
 
 
 def test_scan_csv_names_fractions_and_gives_the_time_span(run):

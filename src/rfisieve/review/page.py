@@ -381,9 +381,16 @@ def _change_section(h, bands, figs, prev, previous, ctx):
             h.append(_table(["channel MHz", "before", "now", "change (points)"], rows, left=()))
 
 
-def _failed_section(h, ctx, nscans):
+def _failed_section(h, ctx, nscans, names=()):
     esc = html.escape
     failed, note = ctx.get("failed"), ctx.get("failed_note")
+    if failed:
+        # a scan listed as failed that has a mask on this page was flagged by a later run
+        later = [r for r in failed if r["scan"] in names]
+        failed = [r for r in failed if r["scan"] not in names]
+        if later:
+            h.append(f'<p class="note">{esc(", ".join(r["scan"] for r in later))}: listed in {esc(note)} as '
+                     "failed, but flagged since (shown below).</p>")
     h.append('<h2 id="failed">Failed or skipped scans</h2>')
     if failed is None:
         h.append(f'<p class="note">{esc(note)}.</p>')
@@ -493,7 +500,7 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     tot = run_totals(overview)
     frac = tot["flagged"] / tot["samples"] if tot["samples"] else float("nan")
     esc = html.escape
-    nfailed = len(ctx["failed"] or [])
+    nfailed = len([r for r in ctx["failed"] or [] if r["scan"] not in {o["name"] for o in overview}])
     h = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
          '<meta name="viewport" content="width=device-width, initial-scale=1">',
          f"<title>rfisieve review: {esc(os.path.basename(os.path.abspath(outdir)))}</title>",
@@ -524,7 +531,7 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     if bad_sk:
         items = "".join(f"<li>{esc(n)}: {esc('; '.join(s['reasons']))}</li>" for n, s in bad_sk.items())
         h.append(f'<div class="warn">Kurtosis check: look at these scans (see Kurtosis check)<ul>{items}</ul></div>')
-    _failed_section(h, ctx, tot["scans"])
+    _failed_section(h, ctx, tot["scans"], {r["name"] for r in overview})
     rows = []
     for k, name in enumerate(BIT_NAMES):
         fb = tot["bits"][k] / tot["samples"] if tot["samples"] else float("nan")
