@@ -8,7 +8,7 @@ back; prints the best of ``--repeat`` write and read times and the file size, an
 ratios to LZF.  gzip is what the mask writer uses (io/maskfile.py): every HDF5 library
 reads it without a plug-in.
 
-    .venv/bin/python bench/mask_compression.py demo/out/flags/*.h5
+    .venv/bin/python bench/mask_compression.py demo/out/flags/*.h5 [--tile 8]
 """
 
 import argparse
@@ -42,11 +42,12 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("masks", nargs="+", help="mask files whose /flags are rewritten")
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--tile", type=int, default=1, help="repeat each mask this many times along time (bigger files)")
     args = ap.parse_args()
     flags, chunks = [], []
     for p in args.masks:
         with h5py.File(p, "r") as f:
-            flags.append(f["flags"][()])
+            flags.append(np.tile(f["flags"][()], (args.tile, 1, 1)))
             chunks.append(f["flags"].chunks)
     total = {k: np.zeros(3) for k, _ in KINDS}
     with tempfile.TemporaryDirectory() as tmp:

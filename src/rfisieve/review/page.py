@@ -4,13 +4,23 @@
 (:mod:`rfisieve.review.occupancy`) into ``<outdir>/occupancy/run.csv`` and ``run.h5``, draws
 the figures into ``<outdir>/report/`` and writes ``<outdir>/report/index.html``, one
 self-contained page (images embedded as base64 ``data:`` URIs) that opens from disk.
+It also reads, read-only, each scan's mask file (settings and version as used), the scan
+file itself (a downsampled dynamic spectrum) and ``<outdir>/failed_scans.csv``
+(:mod:`rfisieve.review.provenance`); each of these may be missing, and the page says so.
+
+Page, top to bottom: overview cards (the kurtosis card says "check" whenever its inputs
+are cut off), failed or skipped scans, flagged samples by cause, the night, the most
+occupied ranges, occupancy by frequency (emitters, protected ranges), change since the
+previous run (settings diff beside the occupancy change), scans (data above mask),
+products, kurtosis check, the settings as used, the mask bits.  All times are UTC.
 
 Figures written (file names are fixed so the workflow can declare them):
 
+* ``report/night.png``: flagged fraction over the night, one panel per band, scans shaded;
 * ``report/band_<band>.png``: occupancy vs frequency, stacked by first cause, emitters marked;
-* ``report/scan_<scan>.png``: time x frequency occupancy image with margins;
-* ``report/kurtosis_<scan>.png``: SK histogram over its expected density and thresholds
-  (a placeholder saying so when the mask has no SK diagnostics);
+* ``report/scan_<scan>.png``: the data (relative to the bandpass) above the mask, same axes;
+* ``report/kurtosis_<scan>.png``: SK histogram around the thresholds over its expected
+  density, and over its whole range (a placeholder when the mask has no SK diagnostics);
 * ``report/change_<band>.png``: change per channel since ``--previous`` (only with it).
 
 ``rfisieve summary OUTDIR`` prints the run overview and the most occupied ranges from
