@@ -363,6 +363,8 @@ def test_page_names_failed_scans_and_the_settings_diff(run, tmp_path):
     change = text.split("Change since the previous run")[1].split("Scans")[0]
     assert "sumthreshold.chi1" in change and "rho" not in change  # only what changed
     assert "rfisieve 0.1.0" in text
+    page = open(index, encoding="utf-8").read()
+    assert "white-space: nowrap" in page and " %<" not in page     # cells do not wrap ("10.5 / %")
 
 
 def test_unchanged_band_gets_one_line_and_no_previous_says_how(run, tmp_path):

@@ -534,7 +534,8 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
              ("bands", ", ".join(tot["bands"]) or "none", ""), ("hours observed", f"{tot['hours']:.2f} h", ""),
              ("samples", f"{tot['samples']:,}", ""),
              (f"kurtosis check ({len(bad_sk)} of {len(sk_summaries)} scans)" if bad_sk else "kurtosis check",
-              "check" if bad_sk else ("ok" if sk_summaries else "n/a"), "alert" if bad_sk else "")]
+              "check" if bad_sk else ("ok" if any(s.get("verdict") == "ok" for s in sk_summaries.values())
+                                      else "n/a"), "alert" if bad_sk else "")]
     for k, v, cls in cards:
         h.append(f'<div class="card {cls}"><div class="v">{esc(v)}</div><div class="k">{esc(k)}</div></div>')
     h.append("</div>")
