@@ -116,6 +116,19 @@ def read_previous(path):
     return {b: (occ.freq_key(v[0]), np.array(v[1], float)) for b, v in out.items()}
 
 
+def previous_total(path):
+    """Flagged fraction of a previous run as a whole (run.csv rows weighted by ``samples``), or None."""
+    try:
+        with open(str(path), newline="") as fh:
+            rows = list(csv.DictReader(fh))
+        col = next((c for c in FLAGGED_COLUMNS if rows and c in rows[0]), None)
+        pairs = [(float(r["samples"]), float(r[col])) for r in rows if col and r.get(col) not in ("", None)]
+    except (OSError, csv.Error, KeyError, ValueError):
+        return None
+    n = sum(p[0] for p in pairs)
+    return sum(a * b for a, b in pairs) / n if n else None
+
+
 def previous_on_grid(prev, band, freq_hz):
     """The previous run's flagged fraction on this run's channel grid (NaN where absent)."""
     out = np.full(len(freq_hz), np.nan)
@@ -239,7 +252,8 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
 
     ranges = annotated_ranges(bands, emitters, threshold)
     ctx = {"provs": provs, "settings": settings, "failed": failed, "failed_note": failed_note,
-           "prev_settings": prev_settings, "prev_where": prev_where, "version": __version__}
+           "prev_settings": prev_settings, "prev_where": prev_where, "version": __version__,
+           "prev_total": previous_total(previous) if previous else None}
     page = render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev,
                        threshold, previous, ctx)
     index = os.path.join(rep_dir, "index.html")
@@ -529,7 +543,8 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     # --- overview -----------------------------------------------------------
     h.append('<h2 id="overview">Overview</h2><div class="cards">')
     bad_sk = {n: s for n, s in sk_summaries.items() if s.get("verdict") == "check"}
-    cards = [("flagged", _pct(frac), ""),
+    before = ctx.get("prev_total")
+    cards = [("flagged" + (f" (previous run {_pct(before)})" if before is not None else ""), _pct(frac), ""),
              ("scans flagged" + (f", {nfailed} failed" if nfailed else ""), str(tot["scans"]), "alert" if nfailed else ""),
              ("bands", ", ".join(tot["bands"]) or "none", ""), ("hours observed", f"{tot['hours']:.2f} h", ""),
              ("samples", f"{tot['samples']:,}", ""),
@@ -539,6 +554,18 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     for k, v, cls in cards:
         h.append(f'<div class="card {cls}"><div class="v">{esc(v)}</div><div class="k">{esc(k)}</div></div>')
     h.append("</div>")
+    if prev is not None and ctx.get("prev_settings"):
+        from rfisieve.review.provenance import settings_diff
+
+        changed = []
+        for band in bands:
+            old = ctx["prev_settings"].get(band)
+            diff = settings_diff(old, ctx["settings"].get(band)) if old is not None else []
+            if diff:
+                changed.append(f"band {esc(band)}: " + "; ".join(f"{esc(k)} {esc(a)} \u2192 {esc(b)}"
+                                                               for k, a, b in diff))
+        h.append('<p>Settings since the previous run: ' + ("; ".join(changed) if changed else "unchanged")
+                 + ' (<a href="#change">change</a>).</p>')
     if bad_sk:
         items = "".join(f"<li>{esc(n)}: {esc('; '.join(s['reasons']))}</li>" for n, s in bad_sk.items())
         h.append(f'<div class="warn">Kurtosis check: look at these scans (see Kurtosis check)<ul>{items}</ul></div>')
