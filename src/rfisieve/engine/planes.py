@@ -210,7 +210,9 @@ def _flag_product(planes, p, band, meta, t0, core, grow):
 
 def _assemble(parts, nprod):
     outs = [pt[0] for pt in parts]
-    nbins = next((len(pt[1]) for pt in parts if pt[1] is not None), len(SK_EDGES) - 1)
+    nbins = next((len(pt[1]) for pt in parts if pt[1] is not None), None)
+    if nbins is None:   # no SK histogram in this chunk (SK off, or no auto product)
+        return np.stack(outs, axis=-1), None
     hist = np.zeros((nprod, nbins), dtype=np.int64)
     for p, pt in enumerate(parts):
         if pt[1] is not None:

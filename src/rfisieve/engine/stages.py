@@ -53,7 +53,7 @@ def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
             def sink(c0, c1, res):
                 out, h = res[detector]
                 flags[c0:c1] = out
-                if detector == "sk":
+                if h is not None:
                     hist[...] += h
 
             used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink)
@@ -184,7 +184,8 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
             with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
                 def sink(c0, c1, res):
                     out, h = res["final"]
-                    hist[:] = [h if not hist else hist[0] + h]
+                    if h is not None:
+                        hist[:] = [h if not hist else hist[0] + h]
                     while pending and pending[0].done():
                         pending.pop(0).result()  # re-raise a failed write at once
                     pending.append(writer.submit(write, c0, c1, out))
