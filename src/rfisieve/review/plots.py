@@ -313,8 +313,9 @@ def night_fraction(path, series, title=None):
                     ax.axvline(edge, color=GRID, lw=0.8, zorder=1)
                 ax.plot(s["time"], 100 * np.asarray(s["frac"]), color=INK, lw=0.9, zorder=3)
                 if (s["stop"] - s["start"]) > 0.12 * (t1 - t0):
-                    ax.text(s["start"], 1.0, " " + s["name"], transform=ax.get_xaxis_transform(), fontsize=8,
-                            va="top", ha="left", color=TOTAL_COLOUR, clip_on=True)
+                    ax.text(s["start"], 0.97, " " + s["name"], transform=ax.get_xaxis_transform(), fontsize=8,
+                            va="top", ha="left", color=INK, clip_on=True, zorder=4,
+                            bbox=dict(boxstyle="square,pad=0.1", fc=PAPER, ec="none", alpha=0.85))
             day, _ = utc_day_start(t0)
             for mid in np.arange(day + 86400, t1, 86400):
                 ax.axvline(mid, color=INK, lw=0.8, ls=":")
