@@ -423,3 +423,12 @@ def test_scan_csv_names_fractions_and_gives_the_time_span(run):
     assert r["last_dump_utc"] == "2027-01-15T08:00:58Z"         # 29 dumps of 2 s later
     assert "flagged_fraction" in r and "sk_fraction" in r and "flagged_fraction_q01h-q01h" in r
     assert "flagged" not in r
+
+
+def test_a_night_where_every_scan_failed_still_gets_a_page(tmp_path):
+    (tmp_path / "failed_scans.csv").write_text("scan,path,stage,reason\nqro_x_L,/d/qro_x_L.h5,plan,/d/qro_x_L.h5: no such file\n")
+    from rfisieve.cli import main
+
+    assert main(["review", str(tmp_path)]) == 0
+    page = (tmp_path / "report" / "index.html").read_text(encoding="utf-8")
+    assert "qro_x_L" in page and "no such file" in page

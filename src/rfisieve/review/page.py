@@ -798,8 +798,9 @@ def register_cli(subparsers):
             "page OUTDIR/report/index.html. Prints the page's path."),
         formatter_class=fmt)
     p.add_argument("outdir", metavar="OUTDIR", help="the run's output directory")
-    p.add_argument("--scans", nargs="+", required=True, metavar="OCC.h5",
-                   help="per-scan occupancy files (OUTDIR/occupancy/<scan>.h5)")
+    p.add_argument("--scans", nargs="*", default=[], metavar="OCC.h5",
+                   help="per-scan occupancy files (OUTDIR/occupancy/<scan>.h5); none when every scan "
+                        "failed (the page then names the failed scans only)")
     p.add_argument("--previous", metavar="RUN.csv", default=None,
                    help="a previous run's run.csv: show the change of occupancy per channel since then")
     p.add_argument("--emitters", metavar="YAML", default=None,
