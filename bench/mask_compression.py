@@ -57,7 +57,8 @@ def main():
                 total[k] += measure(fl, ch, opts, path, args.repeat)
     nbytes = sum(f.nbytes for f in flags)
     print(f"{len(flags)} masks, {nbytes / 2**20:.1f} MiB of /flags in memory")
-    print(f"{'compression':<12} {'write s':>8} {'read s':>8} {'MiB':>8} {'write/lzf':>10} {'read/lzf':>9} {'size/lzf':>9}")
+    print(f"{'compression':<12} {'write s':>8} {'read s':>8} {'MiB':>8} "
+          f"{'write/lzf':>10} {'read/lzf':>9} {'size/lzf':>9}")
     ref = total["lzf"]
     for k, _ in KINDS:
         w, r, s = total[k]

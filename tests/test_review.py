@@ -426,7 +426,8 @@ def test_scan_csv_names_fractions_and_gives_the_time_span(run):
 
 
 def test_a_night_where_every_scan_failed_still_gets_a_page(tmp_path):
-    (tmp_path / "failed_scans.csv").write_text("scan,path,stage,reason\nqro_x_L,/d/qro_x_L.h5,plan,/d/qro_x_L.h5: no such file\n")
+    (tmp_path / "failed_scans.csv").write_text(
+        "scan,path,stage,reason\nqro_x_L,/d/qro_x_L.h5,plan,/d/qro_x_L.h5: no such file\n")
     from rfisieve.cli import main
 
     assert main(["review", str(tmp_path)]) == 0

@@ -545,7 +545,8 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     bad_sk = {n: s for n, s in sk_summaries.items() if s.get("verdict") == "check"}
     before = ctx.get("prev_total")
     cards = [("flagged" + (f" (previous run {_pct(before)})" if before is not None else ""), _pct(frac), ""),
-             ("scans flagged" + (f", {nfailed} failed" if nfailed else ""), str(tot["scans"]), "alert" if nfailed else ""),
+             ("scans flagged" + (f", {nfailed} failed" if nfailed else ""), str(tot["scans"]),
+              "alert" if nfailed else ""),
              ("bands", ", ".join(tot["bands"]) or "none", ""), ("hours observed", f"{tot['hours']:.2f} h", ""),
              ("samples", f"{tot['samples']:,}", ""),
              (f"kurtosis check ({len(bad_sk)} of {len(sk_summaries)} scans)" if bad_sk else "kurtosis check",

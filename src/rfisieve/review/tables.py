@@ -18,9 +18,10 @@ One row per channel, in the mask's channel order.  Columns:
     number of samples in the channel (dumps x products).
 ``flagged_fraction``
     fraction (0 to 1) of those samples with any bit set.
-``upstream_fraction``, ``invalid_fraction``, ``known_fraction``, ``sk_fraction``, ``sumthreshold_fraction``, ``grown_fraction``, ``cut_fraction``
-    fraction of the channel's samples with that cause bit set (bit names of
-    :data:`rfisieve.bits.BIT_TABLE` + ``_fraction``).
+``<cause>_fraction``
+    one column per cause bit (``upstream_fraction``, ``invalid_fraction``, ...,
+    ``cut_fraction``; bit names of :data:`rfisieve.bits.BIT_TABLE`): fraction of the
+    channel's samples with that cause bit set.
 ``flagged_fraction_<product>``
     one column per product (e.g. ``flagged_fraction_q01h-q01h``): fraction of that
     product's samples in the channel (= dumps) with any bit set.
@@ -108,7 +109,8 @@ def _iso_utc(t):
 
     if t is None or not np.isfinite(t):
         return ""
-    return _dt.datetime.fromtimestamp(float(t), tz=_dt.timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
+    when = _dt.datetime.fromtimestamp(float(t), tz=_dt.timezone.utc)
+    return when.isoformat(timespec="seconds").replace("+00:00", "Z")
 
 
 def scan_table(counts):
