@@ -85,3 +85,13 @@ def test_duplicate_names_are_merged(tmp_path):
     assert glonass[0]["also"] == [("config/bands/L.yaml", "GLONASS ICD (from memory)")]
     # different names, or ranges that do not overlap, stay apart
     assert len(merge_duplicates(in_band(em, 1290.0, 1310.0))) == len(in_band(em, 1290.0, 1310.0))
+
+
+def test_aliases_merge_a_site_entry_into_the_shipped_one(tmp_path):
+    from rfisieve.review.emitters import in_band, merge_duplicates
+
+    (tmp_path / "L.yaml").write_text(
+        "band: L\nemitters:\n  - {name: Aircraft DME, start_mhz: 962, stop_mhz: 1213, source: 'site list'}\n")
+    em = load_emitters(bands_dir=str(tmp_path))
+    names = [e["name"] for e in merge_duplicates(in_band(em, 1000.0, 1010.0))]
+    assert "Aircraft DME" not in names and "DME / TACAN" in names   # "aliases" in config/emitters.yaml
