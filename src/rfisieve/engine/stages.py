@@ -12,7 +12,7 @@ from rfisieve import bits
 from rfisieve.detect.masks import channel_cut
 from rfisieve.engine.executor import _run_detection, _Scheduler, run_windows
 from rfisieve.engine.pages import small_pages
-from rfisieve.engine.plan import _check_band_matches, _check_run, _chunks, merge_halo
+from rfisieve.engine.plan import _check_band_matches, _check_run, merge_halo, segment_chunks, segment_of
 from rfisieve.engine.planes import DETECTORS, _extra_bits, _merge_plane, _meta, _sk_edges
 from rfisieve.errors import RfisieveError, ScanError
 from rfisieve.io.maskfile import (_copy_sk_diag, _create_mask_file, _write_attrs, _write_noise,
@@ -36,8 +36,11 @@ def _fail_clean(fn):
 
 @small_pages
 @_fail_clean
-def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
-    """Run one detector over a scan; write its partial mask (its bit + the invalid bit)."""
+def detect(scan_path, out_path, detector, band, run, plan=None, progress=None, jobs=1):
+    """Run one detector over a scan; write its partial mask (its bit + the invalid bit).
+
+    ``jobs``: detect jobs running at once on this machine; they share the memory budget.
+    """
     if detector not in DETECTORS:
         raise RfisieveError(f"unknown detector {detector!r}; expected one of {', '.join(DETECTORS)}")
     _check_run(run)
@@ -56,7 +59,7 @@ def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
                 if h is not None:
                     hist[...] += h
 
-            used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink)
+            used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink, jobs=jobs)
             _write_noise(f, used)
             if detector == "sk":
                 _write_sk_diag(f, hist, meta, band, _sk_edges(meta))
@@ -71,14 +74,21 @@ def _input_and_static(scan, a, b, meta):
     return _extra_bits((b - a, scan.nchan, scan.nprod), flags, meta["static"])
 
 
-def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
-    """Second pass: set the cut bit on channels flagged above ``limit`` over the scan."""
+def _channel_cut_pass(flags, counts, segments, limit, chunk_dumps):
+    """Second pass: set the cut bit on channels flagged above ``limit`` over each
+    contiguous stretch (``counts[k]``: flagged samples per channel of stretch ``k``)."""
+    for (start, stop), seg_counts in zip(segments, counts):
+        _channel_cut_stretch(flags, seg_counts, start, stop, limit, chunk_dumps)
+
+
+def _channel_cut_stretch(flags, counts, start, stop, limit, chunk_dumps):
+    ntime = stop - start
     cut = channel_cut(counts, ntime, limit)  # (chan, prod)
     cut &= counts < ntime  # a channel flagged throughout gains nothing
     if not cut.any():
         return
-    for c0 in range(0, ntime, chunk_dumps):
-        c1 = min(ntime, c0 + chunk_dumps)
+    for c0 in range(start, stop, chunk_dumps):
+        c1 = min(stop, c0 + chunk_dumps)
         block = flags[c0:c1]
         block[cut[None, :, :] & (block == 0)] = bits.CUT  # only what the cut adds
         flags[c0:c1] = block
@@ -112,7 +122,8 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 _create_mask_file(f, scan, chunk_dumps)
                 _write_attrs(f, band, band_source)
                 flags = f["flags"]
-                counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
+                segments = scan.segments  # contiguous stretches: growth and cuts stop at gaps
+                counts = np.zeros((len(segments), scan.nchan, scan.nprod), dtype=np.int64)
                 halo = merge_halo(band)
 
                 def read(lo, hi):
@@ -131,11 +142,11 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
 
                 def sink(c0, c1, out):
                     flags[c0:c1] = out
-                    counts[...] += (out != 0).sum(axis=0)
+                    counts[segments.index(list(segment_of(c0, segments)))] += (out != 0).sum(axis=0)
 
-                run_windows(sched, _chunks(scan.ntime, chunk_dumps), scan.ntime, halo,
-                            max(2, 2 * sched.workers), read, build, sink, progress)
-                _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+                run_windows(sched, segment_chunks(segments, chunk_dumps), scan.ntime, halo,
+                            max(2, 2 * sched.workers), read, build, sink, progress, segments=segments)
+                _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
                 _copy_sk_diag(parts, f, meta, band, _sk_edges(meta))
                 for h in parts:
                     if "noise_sigma" in h.attrs:
@@ -145,7 +156,7 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 h.close()
 
 
-def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
+def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, jobs=1):
     """Both detectors and the merge in one pass over the scan (no partial masks).
 
     Gives the same mask file as :func:`detect` for each detector followed by
@@ -157,12 +168,12 @@ def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
     """
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    _flag_one_pass(scan_path, out_path, band, run, band_source, progress)
+    _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs)
 
 
 @small_pages
 @_fail_clean
-def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
+def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1):
     from concurrent.futures import ThreadPoolExecutor
 
     _check_run(run)
@@ -173,13 +184,14 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
             _create_mask_file(f, scan, chunk_dumps)
             _write_attrs(f, band, band_source)
             flags = f["flags"]
-            counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
+            segments = scan.segments
+            counts = np.zeros((len(segments), scan.nchan, scan.nprod), dtype=np.int64)
             hist = []   # the SK histogram's length follows the thresholds: summed as it arrives
             pending = []
 
             def write(c0, c1, out):
                 flags[c0:c1] = out
-                counts[...] += (out != 0).sum(axis=0)
+                counts[segments.index(list(segment_of(c0, segments)))] += (out != 0).sum(axis=0)
 
             with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
                 def sink(c0, c1, res):
@@ -191,10 +203,11 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
                     pending.append(writer.submit(write, c0, c1, out))
 
                 used = _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink,
-                                      grow=merge_halo(band))
+                                      grow=merge_halo(band), jobs=jobs)
                 for fut in pending:
                     fut.result()
-            _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+            _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
             edges = _sk_edges(used)
-            _write_sk_diag(f, hist[0] if hist else np.zeros((scan.nprod, len(edges) - 1), np.int64), used, band, edges)
+            hist = hist[0] if hist else np.zeros((scan.nprod, len(edges) - 1), np.int64)
+            _write_sk_diag(f, hist, used, band, edges)
             _write_noise(f, used)
