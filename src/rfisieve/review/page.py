@@ -151,6 +151,11 @@ def _utc(t):
     return _dt.datetime.fromtimestamp(float(t), tz=_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
 
 
+def _count(n, word):
+    """``1 scan``, ``2 scans``."""
+    return f"{n} {word}{'' if n == 1 else 's'}"
+
+
 def _pct(x, digits=2):
     """A fraction as a percentage; number and sign joined by a no-break space (no wrapped cells)."""
     if x is None or not np.isfinite(x):
@@ -422,8 +427,9 @@ def _failed_section(h, ctx, nscans, names=()):
         h.append(f'<p class="note">None: every scan of the night was flagged ({nscans} on this page; '
                  f"{esc(note)} lists no failure).</p>")
     else:
-        h.append(f'<p class="warn">{len(failed)} scan(s) failed and are missing from the rest of this page; '
-                 "their data are not flagged.</p>")
+        h.append(f'<p class="warn">{_count(len(failed), "scan")} failed and '
+                 f'{"is" if len(failed) == 1 else "are"} missing from the rest of this page: '
+                 f'{"its" if len(failed) == 1 else "their"} data are not flagged.</p>')
         h.append(_table(["scan", "stage", "reason", "file"],
                         [[f"<b>{esc(r['scan'])}</b>", esc(r["stage"]), esc(r["reason"]), esc(r["path"])]
                          for r in failed], left=(0, 1, 2, 3), wrap=(2,)))
@@ -498,7 +504,7 @@ def _provenance_section(h, scans, ctx, sk_summaries):
             path = lst[0][1].get("band_config_path") or "?"
             notes.append(f"band {esc(band)}: {esc(path)}, " + (
                 f"scans {esc(', '.join(differ))} used other settings (see their mask files)" if differ
-                else f"the same for all {len(lst)} scan(s)"))
+                else f"the same for {'all ' if len(lst) > 1 else ''}{_count(len(lst), 'scan')}"))
         h.append("<h3>Band settings as used</h3><p class=\"note\">Read from the mask files (attribute "
                  "<code>band_settings</code>); " + "; ".join(notes) + ". Known-bad and protected ranges and "
                  "emitter lists are shown with each band above.</p>")
@@ -549,7 +555,8 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
               "alert" if nfailed else ""),
              ("bands", ", ".join(tot["bands"]) or "none", ""), ("hours observed", f"{tot['hours']:.2f} h", ""),
              ("samples", f"{tot['samples']:,}", ""),
-             (f"kurtosis check ({len(bad_sk)} of {len(sk_summaries)} scans)" if bad_sk else "kurtosis check",
+             (f"kurtosis check ({len(bad_sk)} of {_count(len(sk_summaries), 'scan')})" if bad_sk
+              else "kurtosis check",
               "check" if bad_sk else ("ok" if any(s.get("verdict") == "ok" for s in sk_summaries.values())
                                       else "n/a"), "alert" if bad_sk else "")]
     for k, v, cls in cards:
