@@ -435,12 +435,23 @@ def _failed_section(h, ctx, nscans, names=()):
                          for r in failed], left=(0, 1, 2, 3), wrap=(2,)))
 
 
+#: Ranges of a band config shown with what was flagged inside them: key, title, what it means.
+RANGE_KEYS = (("protect", "Protected ranges", "how much was flagged inside them anyway"),
+              ("known_bad", "Known-bad ranges", "how much was flagged inside them, by cause"))
+
+
 def _protected_section(h, band, agg, settings):
-    """Protected ranges of a band (band-config key ``protect``) and what was flagged inside them."""
+    """Protected (band-config key ``protect``) and known-bad ranges of a band, and what was
+    flagged inside them; nothing when the band config has neither."""
+    for key, title, what in RANGE_KEYS:
+        _range_table(h, band, agg, settings, key, title, what)
+
+
+def _range_table(h, band, agg, settings, key, title, what):
     from rfisieve.review import provenance as pv
 
     esc = html.escape
-    prot = pv.protected_ranges(settings)
+    prot = pv.protected_ranges(settings, key)
     if not prot:
         return
     rows = []
@@ -451,10 +462,15 @@ def _protected_section(h, band, agg, settings):
             f"{name} {_pct(v, 1)}" for name, v in zip(BIT_NAMES, per_bit) if v > 0)
         rows.append([_mhz(r["start_mhz"], r["stop_mhz"]), esc(r["reason"]) or "-", esc(r["source"]) or "-",
                      str(n), f"<b>{_pct(fr, 2)}</b>" if n else "no channel inside", esc(causes) or "-"])
-    h.append(f"<p><b>Protected ranges of band {esc(band)}</b> (band config <code>protect</code>) and the "
-             "share of their samples flagged anyway:</p>")
-    h.append(_table(["MHz", "reason", "source", "channels", "flagged inside", "by cause"], rows,
-                    left=(1, 2, 5), wrap=(1, 2)))
+    h.append(f"<p><b>{esc(title)} of band {esc(band)}</b> (band config <code>{esc(key)}</code>) and "
+             f"{esc(what)}:</p>")
+    head = ["MHz", "reason", "source", "channels", "flagged inside", "by cause"]
+    if not any(r["source"] for r in prot):   # known_bad entries carry no source: no empty column
+        head.pop(2)
+        rows = [r[:2] + r[3:] for r in rows]
+        h.append(_table(head, rows, left=(1, 4), wrap=(1,)))
+        return
+    h.append(_table(head, rows, left=(1, 2, 5), wrap=(1, 2)))
 
 
 def _emitter_table(h, band, shown):

@@ -177,14 +177,15 @@ def read_failed(outdir):
     return [r for r in rows if any(r.values())], path
 
 
-def protected_ranges(settings):
+def protected_ranges(settings, key="protect"):
     """The band's protected ranges from its settings (key ``protect``), read defensively.
 
-    Returns a list of dicts ``start_mhz``, ``stop_mhz``, ``reason``, ``source``;
-    entries that are not a mapping with two numbers are skipped.
+    Also reads the known-bad ranges with ``key="known_bad"``.  Returns a list of dicts
+    ``start_mhz``, ``stop_mhz``, ``reason``, ``source``; entries that are not a mapping
+    with two numbers are skipped.
     """
     out = []
-    entries = (settings or {}).get("protect") if isinstance(settings, dict) else None
+    entries = (settings or {}).get(key) if isinstance(settings, dict) else None
     if not isinstance(entries, list):
         return out
     for e in entries:
