@@ -93,8 +93,9 @@ def test_page_parses_and_every_image_decodes(run):
     p.feed(page)
     p.close()
     assert "html" in p.tags and "table" in p.tags
-    # the night + 1 band + 2 scan images + 2 kurtosis plots
-    assert len(p.imgs) == 6
+    # the night + 1 band + 2 scan images + 1 kurtosis plot (both scans' SK pooled: one band,
+    # one SK setting; neither fails its own check)
+    assert len(p.imgs) == 5
     import matplotlib.image as mpimg
     for src in p.imgs:
         assert src.startswith("data:image/png;base64,")   # self-contained: nothing loaded from disk
@@ -105,7 +106,7 @@ def test_page_parses_and_every_image_decodes(run):
         assert float(img[..., :3].std()) > 0.01          # not blank
     text = " ".join(p.text)
     assert "GPS L1" in text                               # the 1575 MHz channel is annotated (IS-GPS-200)
-    for name in ("band_L.png", "scan_night_a.png", "scan_night_b.png", "kurtosis_night_a.png"):
+    for name in ("band_L.png", "scan_night_a.png", "scan_night_b.png", "kurtosis_L_0.png"):
         assert (out / "report" / name).read_bytes()[:8] == PNG_SIG
 
 
@@ -278,7 +279,7 @@ def test_kurtosis_card_says_check_when_sk_flags_lie_beyond_the_histogram(tmp_pat
     # and the page's card says it
     from rfisieve.review.page import render_page
 
-    html_text = render_page(str(tmp_path), [], {}, [], [], {"band": {}, "scan": {}, "kurtosis": {}}, {"s": summ},
+    html_text = render_page(str(tmp_path), [], {}, [], [], {"band": {}, "scan": {}, "kurtosis": []}, {"s": summ},
                             None, 0.2, None)
     overview = html_text.split('id="overview"')[1].split('id="failed"')[0]
     assert '<div class="v">check</div><div class="k">kurtosis check' in overview and ">ok<" not in overview

@@ -386,8 +386,12 @@ def test_killed_run_resumes_without_redoing_finished_scans(night, tmp_path):
         deadline = time.time() + 180
         while time.time() < deadline and not first.exists():
             assert proc.poll() is None, log.read_text()[-3000:]
-            time.sleep(0.05)
-        os.killpg(proc.pid, signal.SIGTERM)  # as a batch system or Ctrl-C stops a run
+            time.sleep(0.02)
+        # freeze the whole run at once (a loaded machine could otherwise finish the next
+        # scan before the signal lands), then stop it as a batch system or Ctrl-C does
+        os.killpg(proc.pid, signal.SIGSTOP)
+        os.killpg(proc.pid, signal.SIGTERM)
+        os.killpg(proc.pid, signal.SIGCONT)
         proc.wait(timeout=60)
     finally:
         if proc.poll() is None:

@@ -21,10 +21,11 @@ rule review:
         log("review", "run"),
     benchmark:
         bench("review", "run")
-    threads: 1
+    # the per-scan figures are drawn in parallel; the review is the night's last job
+    threads: workflow.cores
     shell:
         "{RFISIEVE} wrap-up {OUTDIR:q} --records {input.records:q} --bands-dir {RUN[bands_dir]:q}"
-        " {params.previous} > {log:q} 2>&1"
+        " --workers {threads} {params.previous} > {log:q} 2>&1"
 
 
 rule verdict:

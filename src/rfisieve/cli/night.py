@@ -236,7 +236,7 @@ def read_failed(path):
         return []
 
 
-def wrap_up(outdir, record_paths, bands_dir=None, previous=None):
+def wrap_up(outdir, record_paths, bands_dir=None, previous=None, workers=1):
     """failed_scans.csv, then run tables and the review page for the flagged scans.
 
     Returns (flagged records, failed rows).
@@ -257,7 +257,7 @@ def wrap_up(outdir, record_paths, bands_dir=None, previous=None):
     from rfisieve.review.page import build_review
 
     build_review(outdir, [r["outputs"]["occupancy_h5"] for r in flagged], previous=previous,
-                 bands_dir=bands_dir)
+                 bands_dir=bands_dir, workers=workers)
     return flagged, failed
 
 
@@ -289,7 +289,8 @@ def cmd_flag(args):
 
 
 def cmd_wrap_up(args):
-    flagged, failed = wrap_up(args.outdir, args.records, bands_dir=args.bands_dir, previous=args.previous)
+    flagged, failed = wrap_up(args.outdir, args.records, bands_dir=args.bands_dir, previous=args.previous,
+                              workers=args.workers)
     print(f"rfisieve wrap-up: {len(flagged)} scan(s) flagged, {len(failed)} failed; review page "
           f"{os.path.join(args.outdir, 'report', 'index.html')}", file=sys.stderr)
     for line in failed_text(failed, len(flagged) + len(failed)):
@@ -344,6 +345,8 @@ def register(sub, formatter, add_run_options, add_parallel_options):
     p.add_argument("--records", nargs="*", default=[], metavar="SCAN.json", help="scan records")
     p.add_argument("--bands-dir", metavar="DIR", help="band configs (for their emitter lists)")
     p.add_argument("--previous", metavar="RUN.csv", help="run.csv of an earlier run to compare with")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="processes drawing the per-scan figures (default: 1)")
     p.set_defaults(func=cmd_wrap_up)
 
     p = sub.add_parser(

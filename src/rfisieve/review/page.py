@@ -19,8 +19,9 @@ Figures written (file names are fixed so the workflow can declare them):
 * ``report/night.png``: flagged fraction over the night, one panel per band, scans shaded;
 * ``report/band_<band>.png``: occupancy vs frequency, stacked by first cause, emitters marked;
 * ``report/scan_<scan>.png``: the data (relative to the bandpass) above the mask, same axes;
-* ``report/kurtosis_<scan>.png``: SK histogram around the thresholds over its expected
-  density, and over its whole range (a placeholder when the mask has no SK diagnostics);
+* ``report/kurtosis_<band>_<i>.png``: SK histogram of the band's scans with one SK setting,
+  pooled, around the thresholds over its expected density and over its whole range;
+  ``report/kurtosis_<scan>.png`` for each scan whose own check fails (at most 8);
 * ``report/change_<band>.png``: change per channel since ``--previous`` (only with it).
 
 ``rfisieve summary OUTDIR`` prints the run overview and the most occupied ranges from
@@ -187,13 +188,14 @@ def night_series(scans, points=600):
 # ---------------------------------------------------------------------------
 
 def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_dir=None,
-                 threshold=RANGE_FRACTION, data_preview=True):
+                 threshold=RANGE_FRACTION, data_preview=True, workers=1):
     """Write run.csv, run.h5, the figures and index.html for the run in ``outdir``.
 
     Besides the per-scan occupancy files it reads, read-only, each scan's mask file
     (settings and version, :func:`rfisieve.review.provenance.mask_provenance`), the
     scan file itself for a downsampled dynamic spectrum (``data_preview``), and
-    ``<outdir>/failed_scans.csv``.  Returns the path of ``index.html``.
+    ``<outdir>/failed_scans.csv``.  The per-scan figures are drawn in ``workers``
+    processes.  Returns the path of ``index.html``.
     """
     from rfisieve import __version__
     from rfisieve.review import plots as rp
@@ -224,7 +226,7 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
                             "band_settings_json": json.dumps(settings, sort_keys=True),
                             "rfisieve_version": __version__})
 
-    figs = {"band": {}, "scan": {}, "kurtosis": {}, "change": {}, "night": None, "shown": {}, "data_note": {}}
+    figs = {"band": {}, "scan": {}, "kurtosis": [], "change": {}, "night": None, "shown": {}, "data_note": {}}
     if scans:
         p = os.path.join(rep_dir, "night.png")
         rp.night_fraction(p, night_series(scans))
@@ -238,22 +240,16 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
             before = previous_on_grid(prev, band, agg["freq"])
             rp.change_plot(p, band, agg["freq"], fraction(agg["flagged"], agg["samples"]), before)
             figs["change"][band] = (p, before)
-    sk_summaries = {}
+    jobs = []
     for s in scans:
         name = str(s["attrs"]["scan"])
-        data, note = None, "not read (data_preview=False)"
-        if data_preview:
-            ident = provs[name].get("input") or {}
-            data, note = pv.data_preview(ident.get("path"), s["image/time_start"], s["image/chan_start"],
-                                         expect_size=ident.get("size"))
-        figs["data_note"][name] = note
+        ident = (provs[name].get("input") or {}) if data_preview else None
         p = os.path.join(rep_dir, f"scan_{name}.png")
-        rp.scan_image(p, s, data=data, data_note=note if data is not None else "")
+        jobs.append((p, s, ident))
         figs["scan"][name] = p
-        p = os.path.join(rep_dir, f"kurtosis_{name}.png")
-        sk = s.get("sk") or {"edges": np.linspace(0, 3, 2), "counts": np.zeros((1, 1), np.int64), "attrs": {}}
-        sk_summaries[name] = rp.sk_diagnostic(p, sk, title=f"Spectral kurtosis of scan {name}: measured vs expected")
-        figs["kurtosis"][name] = p
+    for name, note in zip((str(s["attrs"]["scan"]) for s in scans), _map(_scan_figure, jobs, workers)):
+        figs["data_note"][name] = note
+    sk_summaries, figs["kurtosis"] = kurtosis_figures(scans, rep_dir)
 
     ranges = annotated_ranges(bands, emitters, threshold)
     ctx = {"provs": provs, "settings": settings, "failed": failed, "failed_note": failed_note,
@@ -265,6 +261,79 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     with atomic_output(index) as tmp, open(tmp, "w", encoding="utf-8") as fh:
         fh.write(page)
     return index
+
+
+
+#: Most scans given an SK figure of their own (those whose check fails); every scan is
+#: in the pooled figure of its band and SK settings and in the table.
+MAX_SCAN_SK_FIGURES = 8
+
+
+def _scan_figure(job):
+    """Draw one scan's data-and-mask figure; returns the note on its data preview."""
+    from rfisieve.review import plots as rp
+    from rfisieve.review import provenance as pv
+
+    path, s, ident = job
+    data, note = None, "not read (data_preview=False)"
+    if ident is not None:
+        data, note = pv.data_preview(ident.get("path"), s["image/time_start"], s["image/chan_start"],
+                                     expect_size=ident.get("size"))
+    rp.scan_image(path, s, data=data, data_note=note if data is not None else "")
+    return note
+
+
+def _map(fn, items, workers):
+    """``map(fn, items)`` in up to ``workers`` forked processes (in this one when 1)."""
+    items = list(items)
+    workers = max(1, min(int(workers or 1), len(items)))
+    if workers == 1:
+        return [fn(x) for x in items]
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
+        return list(pool.map(fn, items))
+
+
+def kurtosis_figures(scans, rep_dir):
+    """SK summaries of every scan, and the kurtosis figures: one per band and SK setting
+    with the histograms of its scans pooled (same bins, same thresholds), plus one for
+    each scan whose own check fails (at most :data:`MAX_SCAN_SK_FIGURES`).
+
+    Returns ({scan: summary}, [(heading, png path)]).
+    """
+    from rfisieve.review import plots as rp
+
+    empty = {"edges": np.linspace(0, 3, 2), "counts": np.zeros((1, 1), np.int64), "attrs": {}}
+    summaries, groups = {}, {}
+    for s in scans:
+        name, sk = str(s["attrs"]["scan"]), s.get("sk") or empty
+        summaries[name] = rp.sk_summary(sk)[0]
+        at = sk.get("attrs", {})
+        edges = np.asarray(sk["edges"], float)
+        key = (str(s["attrs"]["band"]), tuple(str(at.get(k)) for k in ("mode", "m", "n", "d", "lower", "upper")),
+               edges.tobytes())
+        groups.setdefault(key, []).append((name, sk))
+    out = []
+    for i, ((band, _, _), members) in enumerate(groups.items()):
+        sk0 = members[0][1]
+        counts = sum(np.asarray(sk["counts"]).reshape(-1, len(sk0["edges"]) - 1).sum(axis=0) for _, sk in members)
+        pooled = {"edges": sk0["edges"], "counts": counts[np.newaxis, :], "attrs": sk0.get("attrs", {})}
+        at = pooled["attrs"]
+        what = f"M={at.get('m')} N={at.get('n')} d={at.get('d')}" if at.get("m") is not None else "SK off"
+        heading = f"Band {band}, {what}: {_count(len(members), 'scan')} pooled"
+        p = os.path.join(rep_dir, f"kurtosis_{band}_{i}.png")
+        rp.sk_diagnostic(p, pooled, title=f"Spectral kurtosis, band {band} ({what}), "
+                                          f"{_count(len(members), 'scan')} pooled: measured vs expected")
+        out.append((heading, p))
+    checks = [(name, sk) for members in groups.values() for name, sk in members
+              if summaries[name].get("verdict") == "check"]
+    for name, sk in checks[:MAX_SCAN_SK_FIGURES]:
+        p = os.path.join(rep_dir, f"kurtosis_{name}.png")
+        rp.sk_diagnostic(p, sk, title=f"Spectral kurtosis of scan {name}: measured vs expected")
+        out.append((f"Scan {name} (its check fails)", p))
+    return summaries, out
 
 
 def _img(path, alt):
@@ -709,9 +778,12 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     notes = sorted({sm["note"] for sm in sk_summaries.values() if sm.get("note")})
     if notes:
         h.append('<p class="note">Expected curve: ' + esc("; ".join(notes)) + ".</p>")
-    for s in scans:
-        name = str(s["attrs"]["scan"])
-        h.append(f"<h3>{esc(name)}</h3>" + _img(figs["kurtosis"][name], f"kurtosis diagnostic of {name}"))
+    nchecks = sum(1 for sm in sk_summaries.values() if sm.get("verdict") == "check")
+    if nchecks > MAX_SCAN_SK_FIGURES:
+        h.append(f'<p class="note">{nchecks} scans fail the check; the first {MAX_SCAN_SK_FIGURES} are drawn '
+                 "below, every one is in the table above and in its band's pooled figure.</p>")
+    for heading, path in figs["kurtosis"]:
+        h.append(f"<h3>{esc(heading)}</h3>" + _img(path, f"kurtosis diagnostic: {heading}"))
 
     # --- provenance ---------------------------------------------------------
     _provenance_section(h, scans, ctx, sk_summaries)
