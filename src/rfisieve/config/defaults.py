@@ -26,9 +26,14 @@ BAND_DEFAULTS = {
         "max_window_time": 32,   # largest window along time, dumps (a power of two)
         "max_window_freq": 128,  # largest window along frequency, channels (power of two)
         "iterations": 3,         # background fits; the threshold is lowered step by step
-        "first_factor": 4.0,     # threshold factor of the first iteration, falling to 1
+        "start_scale": 4.0,      # threshold factor of the first iteration, falling to 1
         "background_time": 15.0, # smoothing scale of the background along time, dumps
         "background_freq": 5.0,  # smoothing scale of the background along frequency, channels
+        "bandpass_dumps": 256,   # dumps per block of the median bandpass divided out first (0 = off)
+        "persist_dumps": 256,    # longest block of the persistence test, dumps (0 = off)
+        "persist_sigma": 6.0,    # persistence threshold, sigma of a block mean
+        "baseline_channels": 64, # half-width of the running median over channels, channels
+        "compact_sigma": 5.0,    # compact-box threshold, sigma of a normalised box sum (0 = off)
     },
     "growth": {
         "enabled": True,

@@ -25,7 +25,10 @@ import threading
 import numpy as np
 
 from rfisieve.detect import _kernels as kernels
+from rfisieve.detect import _bandpass_kernels as bpk
 from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
+from rfisieve.detect.bandpass import (COMPACT_SHAPES, bandpass_reach, block_bandpass, block_lengths, compact_flags,
+                                      persistent_flags)
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
@@ -207,20 +210,21 @@ def sumthreshold_1d(values, mask=None, chi1=6.0, rho=1.5, max_window=32, invalid
                         None if invalid is None else np.asarray(invalid).reshape(-1))
 
 
-def threshold_factors(iterations, first_factor):
-    """Threshold factors of the iterations: geometric from ``first_factor`` down to
-    1, f_i = first_factor ** ((I - 1 - i) / (I - 1)), i = 0 .. I - 1 (one iteration:
+def threshold_factors(iterations, start_scale):
+    """Threshold factors of the iterations: geometric from ``start_scale`` down to
+    1, f_i = start_scale ** ((I - 1 - i) / (I - 1)), i = 0 .. I - 1 (one iteration:
     [1])."""
     it = max(1, int(iterations))
     if it == 1:
         return (1.0,)
-    return tuple(float(first_factor) ** ((it - 1 - i) / (it - 1)) for i in range(it))
+    return tuple(float(start_scale) ** ((it - 1 - i) / (it - 1)) for i in range(it))
 
 
-def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32,
-                         max_window_freq=32, iterations=3, first_factor=4.0,
-                         background_time=15.0, background_freq=5.0, invalid=None,
-                         sigma=None, t0=0):
+def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32,
+                         max_window_freq=128, iterations=3, start_scale=4.0,
+                         background_time=15.0, background_freq=5.0, bandpass_dumps=256,
+                         persist_dumps=256, persist_sigma=6.0, baseline_channels=64,
+                         compact_sigma=5.0, invalid=None, sigma=None, t0=0, protect=None):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
@@ -239,7 +243,7 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     4. run :func:`sumthreshold` along time (windows up to ``max_window_time``) on
        the input mask, then along frequency (up to ``max_window_freq``) on the
        input mask joined by the time pass's detections, with chi_1 = ``chi1`` *
-       f_i * sigma, f_i falling geometrically from ``first_factor`` to 1
+       f_i * sigma, f_i falling geometrically from ``start_scale`` to 1
        (:func:`threshold_factors`); the detections are the union of both
        directions.
 
@@ -279,7 +283,7 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
         Largest window M along time (dumps) and frequency (channels).
     iterations : int
         Number of background fits.
-    first_factor : float
+    start_scale : float
         Threshold factor of the first iteration.
     background_time, background_freq : float
         Background smoothing scales (dumps, channels).
@@ -307,7 +311,9 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     sumthreshold_noise : the noise sigma for ``sigma``.
     """
     return _flag(values, mask, chi1, rho, max_window_time, max_window_freq, iterations,
-                 first_factor, background_time, background_freq, invalid, sigma, t0)[0]
+                 start_scale, background_time, background_freq, invalid, sigma, t0,
+                 bandpass_dumps=bandpass_dumps, persist_dumps=persist_dumps, persist_sigma=persist_sigma,
+                 baseline_channels=baseline_channels, compact_sigma=compact_sigma, protect=protect)[0]
 
 
 def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
@@ -331,7 +337,7 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
         Absolute dump number of the first row.
     **settings
         The flagger's settings (chi1, rho, max_window_time, max_window_freq,
-        iterations, first_factor, background_time, background_freq).
+        iterations, start_scale, background_time, background_freq).
 
     Returns
     -------
@@ -341,7 +347,8 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
     s = dict(settings)
     s.pop("enabled", None)
     s.pop("sigma", None)
-    return _flag(values, mask, invalid=invalid, t0=t0, **s)[1]
+    s.pop("protect", None)
+    return _flag(values, mask, invalid=invalid, t0=t0, noise_only=True, **s)[1]
 
 
 _local = threading.local()
@@ -357,9 +364,10 @@ def _scratch():
     return work
 
 
-def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_freq=32,
-          iterations=3, first_factor=4.0, background_time=15.0, background_freq=5.0,
-          invalid=None, sigma=None, t0=0):
+def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_freq=128,
+          iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
+          invalid=None, sigma=None, t0=0, bandpass_dumps=256, persist_dumps=256, persist_sigma=6.0,
+          baseline_channels=64, compact_sigma=5.0, protect=None, noise_only=False):
     """The flagger; returns (detections, sigma of the last iteration)."""
     x = np.ascontiguousarray(values, dtype=np.float32)
     if x.ndim != 2:
@@ -382,6 +390,13 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
     base_ex = _buf(work, "base_ex", np.bool_, (n, m))     # input-flagged or invalid
     rowbad, colbad = kernels.init_flagger(x, inv, invalid is not None, flagged, mask is not None,
                                           lev0, base_ex)
+    raw = x
+    if bandpass_dumps:
+        # the bandpass per block, divided out: the surface then fits only gain and sky
+        bp, rowblock = block_bandpass(x, base_ex, t0, int(bandpass_dumps))
+        y = _buf(work, "bp_div", np.float32, (n, m))
+        bpk.divide_rows(x, bp, rowblock, y)
+        x = y
     some_dump_gone = bool(np.any(rowbad == m))   # the time pass does not write those dumps
     prev = _buf(work, "prev", np.bool_, (n, m))  # detections steering the next fit
     prev.fill(False)
@@ -392,7 +407,7 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
     gdt = grid_unit(mw)[1]
     bt, bf = float(background_time), float(background_freq)
     sig = float("nan")
-    factors = threshold_factors(iterations, first_factor)
+    factors = threshold_factors(iterations, start_scale)
     rg = _buf(work, "st_grid", gdt, (n, m))
     for i, factor in enumerate(factors):
         c1 = float(chi1) * factor * (1.0 if sigma is None else sigma)
@@ -416,6 +431,17 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
         # frequency pass on lev0 joined by the time detections in det
         _st_freq(rg, lev0, rowbad, colbad, unit, float(rho), np_f, det, True)
         det, prev = prev, det
+    if noise_only or not np.isfinite(sig):
+        return prev, sig
+    if compact_sigma:
+        # compact shapes on the last residual (grid steps per sigma: unit / chi1)
+        prev |= compact_flags(rg, lev0, prev, unit / float(chi1), float(compact_sigma))
+    if bandpass_dumps and persist_dumps:
+        lengths = block_lengths(persist_dumps, bandpass_dumps)
+        prev |= persistent_flags(raw, base_ex, prev, bp, rowblock, int(t0), sig, lengths,
+                                 int(baseline_channels), float(persist_sigma),
+                                 None if protect is None else np.asarray(protect, dtype=np.bool_),
+                                 int(bandpass_dumps))
     return prev, sig
 
 
@@ -465,4 +491,11 @@ def sumthreshold_halo(settings):
     r_b = coarse_reach(bt)
     ct = cell_size(bt)
     halo = it * (r_st + r_b)
+    tb = int(s.get("bandpass_dumps", 256) or 0)
+    if tb:
+        halo += bandpass_reach(tb)
+        if s.get("persist_dumps", 256):
+            halo += max(block_lengths(s.get("persist_dumps", 256), tb) or (0,))
+    if s.get("compact_sigma", 5.0):
+        halo += max(dt for dt, _ in COMPACT_SHAPES) - 1
     return int(-(-halo // ct) * ct)

@@ -1,0 +1,239 @@
+"""A receiver's bandpass, followed exactly, and the two tests built on it: persistent
+emission on long baselines of time, and compact time-frequency shapes.
+
+Model of a receiver's clean power (radiometer physics; common practice):
+x(t, f) = g(t) b(f) S(t, f) (1 + n), a slow gain g times a bandpass b that is fixed
+over minutes (steep anti-aliasing edges, knees, shoulders and all), a slow sky
+factor S, and noise n of relative rms 1 / sqrt(N).  The bandpass is taken per block
+of ``bandpass_dumps`` dumps as each channel's *median along time*
+(:func:`block_bandpass`): it follows any spectral shape exactly, whatever its edges
+and knees, because no smoothing runs along frequency.  The SumThreshold flagger then
+fits its smooth surface to x / b, where only g S is left: slow in time and smooth in
+frequency, so the surface can use a large frequency scale, and an emitter tens of
+channels wide stands out of it instead of being absorbed.
+
+What a time median absorbs, an emitter present in more than half of a block's dumps,
+is found by :func:`persistent_flags`: per block of L dumps the channels' mean power is
+compared with a frequency-robust baseline, the running median over channels of the
+bandpass (a monotone edge or knee is returned exactly by a centred running median).
+A 1-sigma carrier in every dump is a sqrt(L)-sigma excess of the block mean.
+
+Blocks are aligned to absolute dump numbers (block k holds dumps k L .. k L + L - 1),
+so a chunk of a scan cut anywhere sees the whole scan's blocks away from its ends
+(the halo rule is in :func:`rfisieve.detect.sumthreshold.sumthreshold_halo`).
+"""
+
+import math
+
+import numpy as np
+
+from rfisieve.detect import _bandpass_kernels as kernels
+
+__all__ = ["block_bandpass", "persistent_flags", "compact_flags", "block_lengths", "COMPACT_SHAPES",
+           "bandpass_reach"]
+
+#: MAD to standard deviation for Gaussian noise, 1 / Phi^-1(3/4) (common practice).
+MAD_TO_SIGMA = 1.482602218505602
+
+#: Boxes (dumps, channels) of the compact-shape test: short pulses a few channels wide
+#: and a few dumps long (the 1 x 1 box is SumThreshold's M = 1 window already).
+COMPACT_SHAPES = ((1, 2), (1, 3), (1, 4), (1, 6), (2, 1), (2, 2), (2, 3), (3, 1), (3, 3))
+
+
+def _blocks(t0, n, length):
+    """(k, a, b) for the aligned blocks of ``length`` dumps that overlap plane rows
+    0 .. n - 1 (a, b: the block's rows within the plane)."""
+    out = []
+    k = int(t0) // length
+    while k * length < t0 + n:
+        a, b = max(0, k * length - t0), min(n, (k + 1) * length - t0)
+        out.append((k, a, b))
+        k += 1
+    return out
+
+
+def bandpass_reach(bandpass_dumps):
+    """Dumps by which a row's bandpass (:func:`block_bandpass`) reaches: its block of
+    T dumps and half a block on each side, 3 T / 2."""
+    return int(math.ceil(1.5 * int(bandpass_dumps)))
+
+
+def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
+    r"""Bandpass per aligned block of dumps: each channel's median along time.
+
+    Method: for block k (absolute dumps k T .. k T + T - 1, T = ``bandpass_dumps``)
+    and channel f,
+
+    .. math:: b_k(f) = \mathrm{median}\{x(t, f) : kT - T/2 \le t < (k+1)T + T/2\}
+
+    over samples not excluded (a window of 2 T dumps centred on the block, so the
+    median has at least T / 2 dumps also at a scan's ends).  A median because an
+    emitter present in under half of the window does not move it much (breakdown
+    point 1/2; Hampel 1974, JASA 69, 383).  Its noise is about 1.25 / sqrt(2 T) of a
+    dump's (asymptotic variance of the median, pi / 2 sigma**2 / n).  Channels with
+    no sample get the linear interpolation of their neighbours.
+
+    Parameters
+    ----------
+    values : ndarray (ntime, nchan), float32
+    exclude : ndarray of bool, same shape
+        Samples left out (invalid, flagged upstream, known-bad).
+    t0 : int
+        Absolute dump number of the first row.
+    bandpass_dumps : int
+        T, dumps per block.
+
+    Returns
+    -------
+    bp : ndarray (nblocks, nchan), float32
+    rowblock : ndarray (ntime,), int64
+        Index into ``bp`` of each row's block.
+    """
+    x = np.ascontiguousarray(values, dtype=np.float32)
+    ex = np.ascontiguousarray(exclude, dtype=np.bool_)
+    n, m = x.shape
+    T = int(bandpass_dumps)
+    blocks = _blocks(t0, n, T)
+    bp = np.empty((len(blocks), m), np.float32)
+    rowblock = np.empty(n, np.int64)
+    half = T // 2
+    buf = np.empty((m, min(n, 2 * T + 1)), np.float32)
+    col = np.empty(m, np.float64)
+    for i, (k, a, b) in enumerate(blocks):
+        wa, wb = max(0, k * T - half - t0), min(n, (k + 1) * T + half - t0)
+        if buf.shape[1] < wb - wa:
+            buf = np.empty((m, wb - wa), np.float32)
+        kernels.column_medians(x, ex, wa, wb, col, buf)
+        kernels.fill_nan_1d(col)
+        bp[i] = col
+        rowblock[a:b] = i
+    bp[~(bp > 0)] = 1.0
+    return bp, rowblock
+
+
+def block_lengths(persist_dumps, bandpass_dumps):
+    """Block lengths L of the persistence test: ``persist_dumps`` and its halves down
+    to a quarter of it (at least 16), each dividing ``bandpass_dumps``."""
+    L = int(persist_dumps)
+    out = []
+    for k in range(3):
+        ln = L >> k
+        if ln >= 16 and int(bandpass_dumps) % ln == 0:
+            out.append(ln)
+    return tuple(out)
+
+
+def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths, half_width, z,
+                     protect=None, bandpass_dumps=256):
+    r"""Persistent and intermittent emission: channels whose mean over a block of L
+    dumps stands out from the spectral baseline.
+
+    Method: for each aligned block j of L dumps and channel f, the mean m_j(f) of the
+    samples neither excluded nor already detected (n_j(f) of them) is divided by the
+    baseline B_k(f), the running median over 2 h + 1 channels (h = ``half_width``;
+    centred, shrinking at the band's ends) of the bandpass b_k of
+    :func:`block_bandpass` for the block k holding j, and by the block's gain
+    g_j = median over channels of m_j / B_k.  The excess
+    e = m_j / (g_j B_k) - 1 has noise sigma / sqrt(n_j) (sigma: a dump's relative
+    noise); a channel is flagged over the block when
+
+    .. math:: e \sqrt{n_j} / \sigma > z \max(1, s_j)
+
+    with s_j the robust scatter (1.4826 MAD) of e sqrt(n_j) / sigma over channels: where
+    the baseline is rougher than the noise (ripple of a few channels' period), the
+    threshold rises with it.  Only channels with n_j >= L / 4 are tested.  An
+    emitter up to about h channels wide stands out of the running median (a median
+    ignores under half of its window).  The running median follows a monotone
+    edge or knee exactly; a spectrally smooth sky line is *not* told apart from
+    interference: protect its range (``protect``).
+
+    Parameters
+    ----------
+    values : ndarray (ntime, nchan)
+        Power x (not divided by the bandpass).
+    exclude, detected : ndarray of bool
+        Samples left out (invalid, flagged upstream) and already detected ones.
+    bp, rowblock
+        From :func:`block_bandpass` with ``bandpass_dumps``.
+    t0 : int
+        Absolute dump number of the first row.
+    sigma : float
+        Relative noise of one dump (the flagger's noise sigma).
+    lengths : sequence of int
+        Block lengths L (each divides ``bandpass_dumps``).
+    half_width : int
+        h, half-width of the running median, channels.
+    z : float
+        Threshold in sigma of the block mean.
+    protect : ndarray of bool (nchan,), optional
+        Channels where the test is off (protected sky lines).
+
+    Returns
+    -------
+    ndarray of bool (ntime, nchan)
+    """
+    x = np.ascontiguousarray(values, dtype=np.float32)
+    ex = np.ascontiguousarray(exclude, dtype=np.bool_)
+    det = np.ascontiguousarray(detected, dtype=np.bool_)
+    n, m = x.shape
+    out = np.zeros((n, m), np.bool_)
+    if not (sigma > 0) or n == 0:
+        return out
+    base = np.empty(bp.shape, np.float64)
+    for i in range(bp.shape[0]):
+        kernels.running_median(bp[i].astype(np.float64), int(half_width), base[i])
+    s = np.empty(m, np.float64)
+    cnt = np.empty(m, np.int64)
+    T = int(bandpass_dumps)
+    for L in lengths:
+        for j, a, b in _blocks(t0, n, int(L)):
+            kernels.block_sums(x, ex, det, a, b, s, cnt)
+            ok = cnt >= max(2, int(L) // 4)
+            if protect is not None:
+                ok &= ~protect
+            if ok.sum() < 8:
+                continue
+            i = rowblock[a]
+            ratio = s[ok] / cnt[ok] / base[i, ok]
+            g = np.median(ratio)
+            zs = (ratio / g - 1.0) * np.sqrt(cnt[ok]) / sigma
+            sc = MAD_TO_SIGMA * np.median(np.abs(zs - np.median(zs)))
+            hit = np.zeros(m, np.bool_)
+            hit[np.flatnonzero(ok)[zs > z * max(1.0, sc)]] = True
+            if hit.any():
+                out[a:b] |= hit[None, :] & ~ex[a:b]
+    return out
+
+
+def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES):
+    r"""Compact time-frequency shapes: boxes whose normalised sum exceeds z.
+
+    Method: a matched (box) filter for pulses short in time and a few channels wide.
+    For a box of dt dumps x df channels of residuals r / sigma (samples already
+    detected or not free count 0), its sum over sqrt(dt df) is a unit-variance
+    Gaussian in noise; boxes above z are flagged.  A 3-sigma pulse one dump long and
+    three channels wide sums to 3 sqrt(3) = 5.2 sigma.  The sums are integer sums on
+    SumThreshold's grid (:func:`rfisieve.detect.sumthreshold.to_grid`).
+
+    Parameters
+    ----------
+    grid : ndarray of int (ntime, nchan)
+        Residual on the grid; ``unit_per_sigma`` grid steps are one noise sigma.
+    lev0 : ndarray of uint8
+        Flagger levels (0 = free).
+    detected : ndarray of bool
+        Already detected samples.
+    z : float
+        Threshold of the normalised box sum.
+    shapes : sequence of (int, int)
+        Box shapes (dt, df).
+
+    Returns
+    -------
+    ndarray of bool
+    """
+    out = np.zeros(grid.shape, np.bool_)
+    for dt, df in shapes:
+        thr = int(math.floor(z * math.sqrt(dt * df) * unit_per_sigma))
+        kernels.box_test(grid, lev0, detected, int(dt), int(df), thr, out)
+    return out
