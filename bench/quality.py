@@ -3,7 +3,7 @@
 
 For each scene (a simulated scan with its truth file, rfisieve.sim.scans):
 
-1. rfisieve with the default band settings (``rfisieve.engine.core.flag_scan``), scored
+1. rfisieve with the default band settings (``rfisieve.engine.flag_scan``), scored
    with ``rfisieve.evaluate.score`` (recall per INR bin and per kind, false alarms on clean
    samples);
 2. the fair comparison: astropy's ``sigma_clip`` applied per channel along time to each
@@ -194,7 +194,7 @@ def matched_clip(values, invalid, prior, inr, kind, dropped, kinds, target_fa):
 
 
 def run_scene(name, tmp, band, run, seed, ntime, nchan, acc):
-    from rfisieve.engine.core import flag_scan
+    from rfisieve.engine import flag_scan
     from rfisieve.io.scan import open_scan
     from rfisieve.detect.masks import amplitude
 
@@ -214,7 +214,7 @@ def run_scene(name, tmp, band, run, seed, ntime, nchan, acc):
         meta = {"has_s2": s.has_s2, "accumulations": s.accumulations}
     ours = count_arrays(mask, inr, kind, dropped)
     prior = (mask & PRIOR_BITS).astype(np.uint8)
-    invalid = ((mask & bits.INVALID) != 0) | ((mask & bits.INPUT) != 0) | ~np.isfinite(values)
+    invalid = ((mask & bits.INVALID) != 0) | ((mask & bits.UPSTREAM) != 0) | ~np.isfinite(values)
     fa_ours = ours["false_alarms"] / max(1, ours["clean_scored"])
     t0 = time.time()
     sigma, fa_clip, _, clip = matched_clip(values, invalid, prior, inr, kind, dropped, kinds, fa_ours)
@@ -222,7 +222,7 @@ def run_scene(name, tmp, band, run, seed, ntime, nchan, acc):
     clean_scored = (inr == 0) & ~dropped[:, None, None] & (prior == 0)
     per_bit = {nm: float(np.count_nonzero(clean_scored & ((mask & v) != 0)) / max(1, clean_scored.sum()))
                for nm, v in (("sk", bits.SK), ("sumthreshold", bits.SUMTHRESHOLD),
-                             ("morphology", bits.MORPHOLOGY), ("occupancy", bits.OCCUPANCY))}
+                             ("grown", bits.GROWN), ("cut", bits.CUT))}
     return {"name": name, "ours": ours, "clip": clip, "kinds": kinds, "sigma": sigma, "fa_clip": fa_clip,
             "per_bit_fa": per_bit, "meta": meta, "times": (t_sim, t_flag, t_clip)}
 
@@ -241,8 +241,8 @@ def print_scene(res, band):
     fa_a, fa_b = a["clean"]["rate"], b["clean"]["rate"]
     pb = res["per_bit_fa"]
     print(f"   false alarms: rfisieve {100 * fa_a:.4f} % (sk {100 * pb['sk']:.4f}, sumthreshold "
-          f"{100 * pb['sumthreshold']:.4f}, morphology {100 * pb['morphology']:.4f}, occupancy "
-          f"{100 * pb['occupancy']:.4f} %) of {a['clean']['samples']} clean; "
+          f"{100 * pb['sumthreshold']:.4f}, grown {100 * pb['grown']:.4f}, cut "
+          f"{100 * pb['cut']:.4f} %) of {a['clean']['samples']} clean; "
           f"sigma clip {100 * fa_b:.4f} % at sigma = {res['sigma']:.3f}")
     bins = INR_BINS[1:] + (">=1",)
     print(f"   {'recall':<22}" + "".join(f" {bn:>15}" for bn in bins))

@@ -64,7 +64,7 @@ def build_scan(path, ntime, nchan, nprod, seed=1, accumulations=1024):
 def step_flag(scan, out, workers, chunk_dumps):
     """Returns the seconds spent importing rfisieve (part of the step's time)."""
     t0 = time.perf_counter()
-    from rfisieve.engine.core import flag_scan
+    from rfisieve.engine import flag_scan
     from rfisieve.config.defaults import band_settings, run_settings
 
     imports = time.perf_counter() - t0

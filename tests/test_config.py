@@ -49,7 +49,7 @@ def test_shipped_band_configs_validate_and_set_every_key(band):
         assert key in raw, f"{band}.yaml lacks {key}"
         if isinstance(default, dict):
             assert set(raw[key]) == set(default), f"{band}.yaml {key}"
-    assert raw["static"], "every shipped band has static masks"
+    assert raw["known_bad"], "every shipped band has known-bad ranges"
     assert all(e["source"] for e in raw["emitters"])
 
 
@@ -132,8 +132,8 @@ def _band_dir(tmp_path, band, **changes):
     ({"growth": {"eta": 1.5}}, ["growth.eta", "<= 1"]),
     ({"sumthreshold": {"max_window_time": 48}}, ["sumthreshold.max_window_time", "one of"]),
     ({"kurtosis": {"enabled": "yes please"}}, ["kurtosis.enabled", "boolean"]),
-    ({"static": [{"start_mhz": 900.0, "stop_mhz": 950.0}]}, ["static[0]", "reason"]),
-    ({"static": [{"start_mhz": 950.0, "stop_mhz": 900.0, "reason": "x"}]}, ["static[0]", "below"]),
+    ({"known_bad": [{"start_mhz": 900.0, "stop_mhz": 950.0}]}, ["known_bad[0]", "reason"]),
+    ({"known_bad": [{"start_mhz": 950.0, "stop_mhz": 900.0, "reason": "x"}]}, ["known_bad[0]", "below"]),
 ])
 def test_bad_band_value_names_file_and_key(tmp_path, changes, words):
     bands = _band_dir(tmp_path, "X", **changes)

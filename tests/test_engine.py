@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from rfisieve import bits
-from rfisieve.engine.core import detect, flag_scan, merge, plan_scan
+from rfisieve.engine import detect, flag_scan, merge, plan_scan
 from rfisieve.errors import ScanError
 from rfisieve.config.defaults import band_settings, run_settings
 from scanfactory import make_scan
@@ -68,7 +68,7 @@ def test_mask_file_layout(tmp_path):
             [p.decode() if isinstance(p, bytes) else p for p in src["products"][()]]
         mask = m[()]
         # bit 0 set exactly where the scan's /flags is nonzero
-        np.testing.assert_array_equal((mask & bits.INPUT) != 0, src["flags"][()] != 0)
+        np.testing.assert_array_equal((mask & bits.UPSTREAM) != 0, src["flags"][()] != 0)
         table = json.loads(f.attrs["bit_table"])
         assert [(r["bit"], r["value"], r["name"]) for r in table] == [b[:3] for b in bits.BIT_TABLE]
         assert f.attrs["band_config_text"] == "x: 1"
@@ -219,7 +219,7 @@ def test_other_layout_axis_order(tmp_path):
 def test_prepare_equals_numpy_definition(dtype, auto):
     # the one-pass kernel against masks.amplitude / masks.invalid_mask and the OR of
     # the static and input flags written out in numpy (DESIGN.md 2.2, bits 0-2)
-    from rfisieve.engine.core import _prepare
+    from rfisieve.engine.planes import _prepare
     from rfisieve.detect.masks import amplitude, invalid_mask
 
     rng = np.random.default_rng(3)
@@ -251,7 +251,7 @@ def test_merge_plane_equals_numpy_definition(limit, eta):
     # the compiled merge against the bit rules of DESIGN.md 2.2 written out in numpy:
     # growth (bit 5) only where the SIR operator adds to the detectors' flags, the dump
     # cut (bit 6) only on samples no other cause flagged
-    from rfisieve.engine.core import _merge_plane
+    from rfisieve.engine.planes import _merge_plane
     from rfisieve.detect.masks import dump_cut
     from rfisieve.detect.growth import sir_grow
 
@@ -262,8 +262,8 @@ def test_merge_plane_equals_numpy_definition(limit, eta):
     det[20:23, :20] |= bits.SUMTHRESHOLD
     det[rng.random(det.shape) < 0.02] |= bits.INVALID
     extra = np.zeros_like(det)
-    extra[:, 5] |= bits.STATIC
-    extra[rng.random(det.shape) < 0.03] |= bits.INPUT
+    extra[:, 5] |= bits.KNOWN
+    extra[rng.random(det.shape) < 0.03] |= bits.UPSTREAM
     band = band_settings({"band": "L", "growth": {"eta": eta, "reach_time": 6, "reach_freq": 3},
                           "cuts": {"dump_limit": limit}})
     core = (7, 50)
@@ -271,8 +271,8 @@ def test_merge_plane_equals_numpy_definition(limit, eta):
     detected = (det & bits.DETECTED) != 0
     if eta > 0:
         grown = sir_grow(detected, eta, reach_time=6, reach_freq=3)
-        want[grown & ~detected] |= bits.MORPHOLOGY
+        want[grown & ~detected] |= bits.GROWN
     want = want[core[0]:core[1]]
     cut = dump_cut(want != 0, limit)
-    want[cut[:, None] & (want == 0)] = bits.OCCUPANCY
+    want[cut[:, None] & (want == 0)] = bits.CUT
     np.testing.assert_array_equal(_merge_plane(det, extra, band, core), want)

@@ -34,10 +34,10 @@ def write_mask(path, flags, freq, band="L", t0=1.7e9, dt=2.0, products=PRODUCTS,
 def hand_mask(seed=1, shape=(9, 7, 3)):
     rng = np.random.default_rng(seed)
     m = np.zeros(shape, np.uint8)
-    for value in (bits.INPUT, bits.STATIC, bits.SK, bits.SUMTHRESHOLD, bits.MORPHOLOGY):
+    for value in (bits.UPSTREAM, bits.KNOWN, bits.SK, bits.SUMTHRESHOLD, bits.GROWN):
         m |= np.where(rng.random(shape) < 0.25, value, 0).astype(np.uint8)
-    m[:, 2, :] |= bits.STATIC          # a whole static channel
-    m[shape[0] // 2, :, 1] |= bits.OCCUPANCY  # a dump cut on one product
+    m[:, 2, :] |= bits.KNOWN          # a whole static channel
+    m[shape[0] // 2, :, 1] |= bits.CUT  # a dump cut on one product
     m[0, 0, 0] = bits.SK | bits.SUMTHRESHOLD  # a two-cause sample
     return m
 

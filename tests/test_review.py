@@ -33,7 +33,7 @@ def make_mask(path, nt, freq, seed, band="L", t0=1.8e9, gnss_chan=None):
     m = np.where(rng.random((nt, nc, 3)) < 0.05, bits.SUMTHRESHOLD, 0).astype(np.uint8)
     m |= np.where(rng.random((nt, nc, 3)) < 0.03, bits.SK, 0).astype(np.uint8)
     if gnss_chan is not None:
-        m[:, gnss_chan, :] |= bits.STATIC
+        m[:, gnss_chan, :] |= bits.KNOWN
     with h5py.File(path, "w") as f:
         f.create_dataset("flags", data=m)
         f.create_dataset("time", data=t0 + 2.0 * np.arange(nt))

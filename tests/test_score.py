@@ -23,7 +23,7 @@ def _case():
     inr[:, 0, 0] = [0.7, 1.5, 3.0, 10.0]
     kind[:, 0, 0] = 1
     mask[1, 0, 0] = bits.SUMTHRESHOLD           # 1.5 caught
-    mask[2, 0, 0] = bits.SK | bits.MORPHOLOGY   # 3.0 caught
+    mask[2, 0, 0] = bits.SK | bits.GROWN   # 3.0 caught
     mask[3, 0, 0] = bits.INVALID                # dropped dump
     # dump 1: a burst over channels 1..3, INR 0.3 (below 0.5), 6, 6
     inr[1, 1:, 0] = [0.3, 6.0, 6.0]
@@ -31,8 +31,8 @@ def _case():
     mask[1, 2, 0] = bits.SUMTHRESHOLD           # one 6 caught; 0.3 and the other 6 missed
     # clean samples: (0,1) (0,2) (0,3) (2,1) (2,2) (2,3) = 6 in kept dumps
     mask[0, 1, 0] = bits.SUMTHRESHOLD           # a false alarm
-    mask[2, 3, 0] = bits.STATIC                 # static: left out of the clean set
-    mask[2, 2, 0] = bits.OCCUPANCY | bits.INPUT  # input-flagged: left out too
+    mask[2, 3, 0] = bits.KNOWN                 # static: left out of the clean set
+    mask[2, 2, 0] = bits.CUT | bits.UPSTREAM  # input-flagged: left out too
     dropped = np.array([False, False, False, True])
     return mask, inr, kind, dropped
 
@@ -54,7 +54,7 @@ def test_hand_made_figures():
     burst = r["recall_by_kind"]["burst"]
     assert burst[">=5"] == {"samples": 2, "flagged": 1, "recall": 0.5}
     assert burst["<0.5"]["samples"] == 1
-    # clean, kept, no input/invalid/static: (0,1) (0,2) (0,3) (2,1) = 4; one false alarm
+    # clean, kept, no upstream/invalid/known: (0,1) (0,2) (0,3) (2,1) = 4; one false alarm
     assert r["clean"]["samples"] == 4
     assert r["clean"]["false_alarms"] == 1
     assert r["clean"]["rate"] == pytest.approx(0.25)
@@ -62,9 +62,9 @@ def test_hand_made_figures():
     lost = r["clean_lost_by_bit"]
     assert r["clean_all_samples"] == 6
     assert lost["sumthreshold"]["samples"] == 1 and lost["sumthreshold"]["fraction"] == pytest.approx(1 / 6)
-    assert lost["static"]["samples"] == 1
-    assert lost["input"]["samples"] == 1
-    assert lost["occupancy"]["samples"] == 1
+    assert lost["known"]["samples"] == 1
+    assert lost["upstream"]["samples"] == 1
+    assert lost["cut"]["samples"] == 1
     assert lost["sk"]["samples"] == 0
     ex = r["excluded"]
     assert ex["dropped_samples"] == 4
@@ -142,7 +142,7 @@ def test_injected_carrier_recovered_on_pure_noise(tmp_path):
     # Injection-recovery through the engine: gamma-distributed dump powers (radiometer
     # equation, relative rms 1/sqrt(N); Wilson, Rohlfs & Huettemeister, Tools of Radio
     # Astronomy) with a carrier of INR 4 in one channel for 300 dumps.
-    from rfisieve.engine.core import flag_scan
+    from rfisieve.engine import flag_scan
     from rfisieve.evaluate.inject import add_interference
     from rfisieve.config.defaults import band_settings, run_settings
 

@@ -28,7 +28,7 @@ pytestmark = pytest.mark.slow
 NTIME, NCHAN = 256, 64
 SCANS = {"night-q1": "L", "night-q2": "L", "night-q3": "UHF"}
 # make_scan puts channels at 1400 MHz + k x 0.5 MHz; a static range over channels 4-5
-# (1402.0-1403.0 MHz) exercises the static bit in both bands.
+# (1402.0-1403.0 MHz) exercises the known bit in both bands.
 TEST_STATIC = {"start_mhz": 1401.9, "stop_mhz": 1403.1, "reason": "test range (invented for this test)"}
 
 
@@ -44,7 +44,7 @@ def _make_night(root):
     bands.mkdir()
     for band in set(SCANS.values()):
         data = yaml.safe_load((ROOT / "config" / "bands" / f"{band}.yaml").read_text())
-        data["static"].append(dict(TEST_STATIC))
+        data["known_bad"].append(dict(TEST_STATIC))
         (bands / f"{band}.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
     return scans, bands
 
@@ -103,11 +103,11 @@ def test_mask_files_follow_the_contract(night):
             assert "rfisieve" in str(dict(f.attrs)) or "version" in " ".join(f.attrs)
             # Upstream flags (first 10 dumps) carry the input bit; the NaN the invalid bit;
             # the test's static range (channels 4 and 5) the static bit.
-            assert np.all(flags[:10] & bits.INPUT)
+            assert np.all(flags[:10] & bits.UPSTREAM)
             assert flags[100, 30, 0] & bits.INVALID
-            assert np.all(flags[:, 4:6] & bits.STATIC) and not np.any(flags[:, 7:] & bits.STATIC)
+            assert np.all(flags[:, 4:6] & bits.KNOWN) and not np.any(flags[:, 7:] & bits.KNOWN)
             seen |= np.bitwise_or.reduce(flags, axis=None)
-    for bit in (bits.INPUT, bits.INVALID, bits.STATIC, bits.SK, bits.SUMTHRESHOLD):
+    for bit in (bits.UPSTREAM, bits.INVALID, bits.KNOWN, bits.SK, bits.SUMTHRESHOLD):
         assert seen & bit, f"bit value {bit} never set"
 
 
@@ -183,7 +183,7 @@ def test_killed_run_resumes_without_redoing_finished_scans(night, tmp_path):
 def test_distributed_scheduler_flags_like_threads(night, tmp_path):
     distributed = pytest.importorskip("distributed")
     from rfisieve.config import load as config
-    from rfisieve.engine import core as engine
+    from rfisieve import engine
 
     scan = night["scans"] / "night-q1.h5"
     band, source = config.load_band(night["bands"], "L")

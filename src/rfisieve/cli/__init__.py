@@ -120,7 +120,7 @@ class _Progress:
 
 # -- stage commands ------------------------------------------------------------
 def cmd_plan(args):
-    from rfisieve.engine import core as engine
+    from rfisieve import engine
     from rfisieve.io import scan as io
 
     run = _run_settings(args)
@@ -147,7 +147,7 @@ def _read_plan(path):
 
 
 def cmd_detect(args):
-    from rfisieve.engine import core as engine
+    from rfisieve import engine
 
     run = _run_settings(args)
     band, _ = _band_settings(args, args.scan, run)
@@ -158,7 +158,7 @@ def cmd_detect(args):
 
 
 def cmd_merge(args):
-    from rfisieve.engine import core as engine
+    from rfisieve import engine
 
     run = _run_settings(args)
     band, source = _band_settings(args, args.scan, run)

@@ -47,7 +47,7 @@ BAND_DEFAULTS = {
         "channel_limit": 0.8,    # flag a whole channel of a product above this fraction
         "dump_limit": 0.8,       # flag a whole dump of a product above this fraction
     },
-    "static": [],                # [{start_mhz, stop_mhz, reason}] known-bad ranges
+    "known_bad": [],             # [{start_mhz, stop_mhz, reason}] known-bad ranges
     "emitters": [],              # [{name, start_mhz, stop_mhz, source}] site emitters
 }
 

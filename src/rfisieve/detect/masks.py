@@ -45,7 +45,7 @@ def invalid_mask(values, auto):
 def static_channels(freq_hz, ranges):
     """Channels whose centre lies in any ``[start_mhz, stop_mhz]`` of ``ranges``.
 
-    ``ranges`` is the band config's ``static`` list of ``{start_mhz, stop_mhz, ...}``.
+    ``ranges`` is the band config's ``known_bad`` list of ``{start_mhz, stop_mhz, ...}``.
     Returns a bool array of shape ``(nchan,)``.
     """
     f_mhz = np.asarray(freq_hz, dtype=np.float64) / 1e6

@@ -13,12 +13,12 @@ Which samples are scored
 ------------------------
 A sample is *scored* when its dump is not dropped and the mask gives it none of the
 bits that are not the flagger's decision: input (bit 0, flagged upstream), invalid
-(bit 1) and static (bit 2, a known-bad range of the band config).  Those samples are
+(bit 1) and known (bit 2, a known-bad range of the band config).  Those samples are
 flagged whatever the detectors do, so counting them would flatter recall and hide
 false alarms; they are reported separately.  On scored samples,
 
 * *recall* in a bin = fraction of the interference samples (``inr > 0``) in that bin
-  carrying any decision bit (sk, sumthreshold, morphology, occupancy);
+  carrying any decision bit (sk, sumthreshold, grown, cut);
 * *false-alarm rate* = fraction of clean samples (``inr == 0``) carrying a decision bit.
 
 *Clean data lost* is reported per cause bit over every clean sample of a valid dump
@@ -42,9 +42,9 @@ from rfisieve.errors import ScanError
 INR_EDGES = (0.5, 1.0, 2.0, 5.0)
 INR_BINS = ("<0.5", "0.5-1", "1-2", "2-5", ">=5")
 #: Bits set regardless of the detectors: left out of the scored samples.
-PRIOR_BITS = bits.INPUT | bits.INVALID | bits.STATIC
+PRIOR_BITS = bits.UPSTREAM | bits.INVALID | bits.KNOWN
 #: Bits that are the flagger's decision.
-DECISION_BITS = bits.SK | bits.SUMTHRESHOLD | bits.MORPHOLOGY | bits.OCCUPANCY
+DECISION_BITS = bits.SK | bits.SUMTHRESHOLD | bits.GROWN | bits.CUT
 
 _NBIN = len(INR_BINS)
 _NCODE = 256
@@ -111,7 +111,7 @@ def count_arrays(mask, inr, kind, dropped):
         "samples": np.int64(mask.size),
         "dropped": np.int64(np.count_nonzero(~live)),
         "prior_by_bit": np.array([np.count_nonzero(live & ((mask & v) != 0)) for v in
-                                  (bits.INPUT, bits.INVALID, bits.STATIC)], dtype=np.int64),
+                                  (bits.UPSTREAM, bits.INVALID, bits.KNOWN)], dtype=np.int64),
         "prior_rfi": np.int64(np.count_nonzero(live & prior & rfi)),
         "prior_any": np.int64(np.count_nonzero(live & prior)),
         "rfi_total": rfi_total.astype(np.int64),
@@ -171,10 +171,10 @@ def finish(counts, kinds=None):
         "samples": int(counts["samples"]),
         "excluded": {
             "dropped_samples": int(counts["dropped"]),
-            "input": inp, "invalid": inv, "static": sta,
+            "upstream": inp, "invalid": inv, "known": sta,
             "prior_flagged": int(counts["prior_any"]),
             "prior_flagged_interference": int(counts["prior_rfi"]),
-            "note": "dropped dumps and samples with the input, invalid or static bit are not the "
+            "note": "dropped dumps and samples with the upstream, invalid or known bit are not the "
                     "flagger's decision: left out of recall and of the false-alarm rate",
         },
         "recall_by_inr": bins_of(tot.sum(axis=0), hit.sum(axis=0)),
@@ -183,8 +183,8 @@ def finish(counts, kinds=None):
             "samples": int(counts["clean_scored"]),
             "false_alarms": int(counts["false_alarms"]),
             "rate": _ratio(counts["false_alarms"], counts["clean_scored"]),
-            "note": "clean = inr == 0, dump not dropped, no input/invalid/static bit; "
-                    "a false alarm carries sk, sumthreshold, morphology or occupancy",
+            "note": "clean = inr == 0, dump not dropped, no upstream/invalid/known bit; "
+                    "a false alarm carries sk, sumthreshold, grown or cut",
         },
         "clean_lost_by_bit": {
             name: {"bit": idx, "value": value, "samples": int(n), "fraction": _ratio(n, clean_all)}
@@ -297,7 +297,7 @@ def format_table(result):
     ex = result["excluded"]
     lines.append(f"samples: {result['samples']}; left out of the scores (not the flagger's decision): "
                  f"dropped {ex['dropped_samples']}, input/invalid/static {ex['prior_flagged']} "
-                 f"(input {ex['input']}, invalid {ex['invalid']}, static {ex['static']}; "
+                 f"(upstream {ex['upstream']}, invalid {ex['invalid']}, known {ex['known']}; "
                  f"of them interference {ex['prior_flagged_interference']})")
     lines.append("")
     lines.append("recall by interference-to-noise ratio (INR) per sample")
@@ -318,7 +318,7 @@ def format_table(result):
     lines.append("")
     c = result["clean"]
     lines.append(f"false alarms on clean samples: {c['false_alarms']} of {c['samples']} = {_pct(c['rate'], 3)}")
-    lines.append("  (clean = INR 0 in a kept dump, without the input/invalid/static bit)")
+    lines.append("  (clean = INR 0 in a kept dump, without the upstream/invalid/known bit)")
     lines.append("")
     lines.append(f"clean data lost, by cause bit (of {result['clean_all_samples']} clean samples in kept dumps; "
                  "a sample can carry several bits)")
@@ -362,7 +362,7 @@ def register_cli(subparsers):
             "  - recall per kind of emitter (carrier, pulsed, burst, drifting, ...);\n"
             "  - the false-alarm rate on clean samples;\n"
             "  - the clean data lost to each cause bit of the mask.\n"
-            "Dropped dumps and samples with the input, invalid or static bit are not the flagger's\n"
+            "Dropped dumps and samples with the upstream, invalid or known bit are not the flagger's\n"
             "decision: they are left out of recall and of the false-alarm rate (and counted apart).\n"
             "Clean data lost is over every clean sample of a kept dump, static/input included."),
         epilog="example: rfisieve score results/flags/qro_L_001.h5 sim/qro_L_001.truth.h5 --json")

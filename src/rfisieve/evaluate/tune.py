@@ -81,7 +81,7 @@ def _with(band, section, key, value):
 def _flag_and_read(scan_path, out_path, band, run):
     import h5py
 
-    from rfisieve.engine.core import flag_scan
+    from rfisieve.engine import flag_scan
 
     flag_scan(scan_path, out_path, band, run)
     with h5py.File(out_path, "r") as f:

@@ -21,6 +21,7 @@ import h5py
 import numpy as np
 
 from rfisieve.errors import ScanError
+from rfisieve.io.hdf5 import attr_str as _attr_str
 from rfisieve.config.defaults import RUN_DEFAULTS
 
 AXES = ("time", "freq", "product")
@@ -58,12 +59,6 @@ def _short(err):
     return text[:160]
 
 
-def _attr_str(value):
-    if isinstance(value, bytes):
-        return value.decode("utf-8", "replace")
-    if isinstance(value, np.ndarray) and value.shape == ():
-        return _attr_str(value[()])
-    return str(value)
 
 
 def scan_band(path, layout=None):

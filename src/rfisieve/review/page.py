@@ -333,7 +333,7 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     # --- by frequency -------------------------------------------------------
     h.append('<h2 id="bands">Occupancy by frequency</h2><p class="note">Run total per channel, each flagged '
              "sample coloured by its first cause in bit order (input, invalid, static, sk, sumthreshold, "
-             "morphology, occupancy); black line = any cause. Above each plot: known emitters (blue) "
+             "grown, cut); black line = any cause. Above each plot: known emitters (blue) "
              "and protected bands (green, also hatched in the plot).</p>")
     for band in bands:
         h.append(f"<h3>Band {esc(band)}</h3>" + _img(figs["band"][band], f"occupancy of band {band}"))

@@ -22,13 +22,13 @@ GRID = "#d9d2c3"
 
 #: One colour per cause bit, in bit order.
 CAUSE_COLOURS = {
-    "input": "#8c8577",         # warm grey
+    "upstream": "#8c8577",      # warm grey
     "invalid": "#3b3355",       # aubergine
-    "static": "#c9a227",        # mustard
+    "known": "#c9a227",         # mustard
     "sk": "#1f6f8b",            # petrol blue
     "sumthreshold": "#d1495b",  # coral red
-    "morphology": "#66a182",    # sage green
-    "occupancy": "#a05195",     # orchid
+    "grown": "#66a182",         # sage green
+    "cut": "#a05195",           # orchid
 }
 EMITTER_COLOUR = "#7d93ab"
 PROTECTED_COLOUR = "#4f7a3a"

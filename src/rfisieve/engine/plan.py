@@ -1,0 +1,119 @@
+"""Planning a scan: chunks of dumps and the halo rules of each stage.
+
+See :mod:`rfisieve.engine` for the halo rule and the two ways through a scan.
+"""
+
+from pathlib import Path
+
+import numpy as np
+
+from rfisieve.errors import RfisieveError, ScanError
+from rfisieve.io.scan import open_scan
+
+
+#: Halo (dumps) of the merge stage's SIR growth along time when its reach is
+#: unbounded (``growth.reach_time: null``).  A flagged run of L dumps grows by at most
+#: eta L / (1 - eta) on each side (from the SIR definition), so 256 dumps make growth
+#: exact for runs up to 1024 dumps at eta = 0.2.  With a bounded reach R the halo is
+#: R + 1 dumps and the growth is exact (see :func:`merge_halo`).
+SIR_HALO = 256
+
+
+#: Noise pre-pass: the SumThreshold noise sigma of each product is estimated once per
+#: scan on windows of NOISE_WINDOW dumps (at most NOISE_WINDOWS of them, spread evenly
+#: over the scan) and used by every chunk, so thresholds do not depend on chunking.
+NOISE_WINDOW = 256
+
+
+NOISE_WINDOWS = 4
+
+
+def _sumthreshold_settings(band):
+    st = dict(band["sumthreshold"])
+    st.pop("enabled", None)
+    return st
+
+
+def _kurtosis_halo(band, scan):
+    if not band["kurtosis"]["enabled"] or scan.has_s2:
+        return 0
+    from rfisieve.detect.kurtosis import block_halo
+
+    return int(block_halo(int(band["kurtosis"]["block_dumps"])))
+
+
+def detect_halo(band, scan):
+    """Halo in dumps on each side of a chunk for the detection stage."""
+    halo = 0
+    if band["sumthreshold"]["enabled"]:
+        from rfisieve.detect.sumthreshold import sumthreshold_halo
+
+        halo = max(halo, int(sumthreshold_halo(_sumthreshold_settings(band))))
+    return max(halo, _kurtosis_halo(band, scan))
+
+
+def merge_halo(band):
+    """Halo in dumps on each side of a chunk for the merge stage's SIR growth."""
+    from rfisieve.detect.growth import sir_halo
+
+    g = band["growth"]
+    if not (g["enabled"] and g["eta"] > 0 and g["time"]):
+        return 0
+    reach = g.get("reach_time")
+    return SIR_HALO if reach is None else int(sir_halo(g["eta"], reach=int(reach)))
+
+
+def _chunks(ntime, chunk_dumps):
+    return [[s, min(s + chunk_dumps, ntime)] for s in range(0, ntime, chunk_dumps)]
+
+
+def halo_span(c0, c1, halo, ntime):
+    """Rows [a, b) read for chunk [c0, c1) with ``halo`` dumps each side, clamped to the scan."""
+    return max(0, c0 - halo), min(ntime, c1 + halo)
+
+
+def _check_run(run):
+    cd = run.get("chunk_dumps")
+    if not isinstance(cd, int) or isinstance(cd, bool) or cd < 1:
+        raise RfisieveError(f"run config: chunk_dumps = {cd!r}, expected a whole number of dumps >= 1")
+    w = run.get("workers")
+    if not isinstance(w, int) or isinstance(w, bool) or w < 1:
+        raise RfisieveError(f"run config: workers = {w!r}, expected a whole number >= 1")
+
+
+def plan_scan(scan_path, band, run):
+    """Plan the chunks of one scan: a JSON-serialisable dict (see module docstring)."""
+    _check_run(run)
+    with open_scan(scan_path, run.get("layout")) as scan:
+        _check_band_matches(scan, band)
+        return {
+            "scan": scan.name,
+            "path": str(Path(scan_path).resolve()),
+            "band": scan.band,
+            "ntime": scan.ntime,
+            "nchan": scan.nchan,
+            "nprod": scan.nprod,
+            "chunk_dumps": int(run["chunk_dumps"]),
+            "halo": detect_halo(band, scan),
+            "sir_halo": merge_halo(band),
+            "chunks": _chunks(scan.ntime, int(run["chunk_dumps"])),
+            "has_s2": bool(scan.has_s2),
+            "products": list(scan.products),
+            "autos": [bool(a) for a in scan.autos],
+        }
+
+
+def _check_band_matches(scan, band):
+    want = band.get("band")
+    if want and scan.band != want:
+        raise ScanError(scan.path, f"band is {scan.band!r} but the band config given is for {want!r}")
+
+
+def noise_windows(ntime):
+    """The [start, stop) dump windows of the noise pre-pass (independent of chunking)."""
+    if ntime <= NOISE_WINDOW * NOISE_WINDOWS:
+        n = max(1, ntime // NOISE_WINDOW)
+        edges = np.linspace(0, ntime, n + 1).round().astype(int)
+        return [[int(a), int(b)] for a, b in zip(edges[:-1], edges[1:])]
+    starts = np.linspace(0, ntime - NOISE_WINDOW, NOISE_WINDOWS).round().astype(int)
+    return [[int(a), int(a) + NOISE_WINDOW] for a in starts]

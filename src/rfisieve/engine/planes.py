@@ -1,0 +1,226 @@
+"""Per-plane work: what one dask task does to one (chunk x product) plane.
+
+Each function here takes numpy planes and returns numpy planes; the detectors it calls
+are pure functions from :mod:`rfisieve.detect`.
+"""
+
+import numpy as np
+
+from rfisieve import bits
+from rfisieve.detect.masks import amplitude, invalid_mask, static_channels
+from rfisieve.engine.plan import _sumthreshold_settings
+
+
+DETECTORS = ("sk", "sumthreshold")
+
+
+#: Bin edges of the SK histogram kept for the review's kurtosis diagnostic.
+SK_EDGES = np.linspace(0.0, 3.0, 301)
+
+
+def _meta(scan, band):
+    k = band["kurtosis"]
+    meta = {
+        "path": str(scan.path),
+        "layout": scan.layout,
+        "nchan": scan.nchan,
+        "nprod": scan.nprod,
+        "autos": [bool(a) for a in scan.autos],
+        "has_s2": scan.has_s2,
+        "accumulations": scan.accumulations,
+        "presum": scan.presum,
+        "d": scan.d,
+        "static": static_channels(scan.freq, band.get("known_bad")),
+    }
+    if k["enabled"]:
+        from rfisieve.detect.kurtosis import gaussian_tail
+
+        pfa = k["pfa"] if k.get("pfa") is not None else gaussian_tail(k["sigma"])
+        if scan.has_s2:
+            # Mode (a): SK per dump, M = accumulations, N = presum (DESIGN.md 3).
+            m, n = scan.accumulations, scan.presum
+        else:
+            # Mode (b): blocks of M dumps, N = raw spectra per dump.
+            m, n = int(k["block_dumps"]), scan.accumulations * scan.presum
+        from rfisieve.detect.kurtosis import sk_threshold_table, sk_thresholds
+
+        sk = {"mode": "s2" if scan.has_s2 else "block", "m": m, "n": n, "d": scan.d,
+              "pfa": pfa, "method": k["method"]}
+        # thresholds computed once here, not in every task (the exact tails cost ~1 s)
+        sk["lower"], sk["upper"] = sk_thresholds(m, n, scan.d, pfa=pfa, method=k["method"])
+        if not scan.has_s2:
+            sk["table"] = sk_threshold_table(m, n, scan.d, pfa=pfa, method=k["method"])
+        meta["sk"] = sk
+    return meta
+
+
+def _planes(block, lo, hi, p):
+    """One product's 2-D (time, chan) planes of rows lo:hi of a read block (views)."""
+    return {key: arr[lo:hi, :, p] for key, arr in block.items()}
+
+
+def _noise_task(planes, band, meta, p, t0):
+    from rfisieve.detect.sumthreshold import sumthreshold_noise
+
+    prep = _prepare(planes, p, meta)
+    if prep["excluded"].all():
+        return np.nan
+    return float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0,
+                                    **_sumthreshold_settings(band)))
+
+
+def _s2_invalid(s2):
+    """Samples whose recorded S2 no statistic may use: NaN, Inf, zero or negative."""
+    return ~np.isfinite(s2) | (s2 <= 0)
+
+
+def _prior(planes, meta, values, auto):
+    """(invalid, excluded): samples no statistic may use, and those plus input/static flags."""
+    invalid = invalid_mask(values, auto)
+    if "s2" in planes and auto:
+        invalid |= _s2_invalid(planes["s2"])
+    excluded = invalid | meta["static"][np.newaxis, :]
+    if "flags" in planes:
+        excluded |= planes["flags"]
+    return invalid, excluded
+
+
+_KERNEL_DTYPES = tuple(np.dtype(t) for t in ("float32", "float64", "complex64", "complex128"))
+
+
+def _prepare(planes, p, meta):
+    """What both detectors need of one (chunk x product) plane, computed once.
+
+    The one-pass kernel gives what :func:`_prior` gives (tests/test_engine.py checks it).
+    """
+    from rfisieve.detect._masks_kernels import prepare_plane
+
+    auto = bool(meta["autos"][p])
+    data = planes["data"]
+    if data.dtype not in _KERNEL_DTYPES or (data.dtype.kind == "c" and not auto):
+        # float16, or |V| of cross products (numba's complex abs differs from numpy's
+        # hypotf in the last bit): the numpy definition
+        values = amplitude(data, auto)
+        invalid, excluded = _prior(planes, meta, values, auto)
+        return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
+    shape = data.shape
+    values = np.empty(shape, np.float32)
+    invalid = np.empty(shape, np.bool_)
+    excluded = np.empty(shape, np.bool_)
+    flags = planes.get("flags")
+    prepare_plane(data, auto, np.ascontiguousarray(meta["static"], dtype=np.bool_),
+                  np.zeros((1, 1), np.bool_) if flags is None else np.asarray(flags, dtype=np.bool_),
+                  flags is not None, values, invalid, excluded)
+    if "s2" in planes and auto:
+        bad = _s2_invalid(planes["s2"])
+        invalid |= bad
+        excluded |= bad
+    return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
+
+
+def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
+    """One detector on one (chunk x product) plane with halo rows from dump ``t0``.
+
+    ``prep`` is :func:`_prepare`'s result.  Returns (uint8 (rows, chan) with that
+    detector's bit and the invalid bit, SK histogram counts of the core rows or None);
+    ``rows`` (default ``core``) are the plane rows returned.
+    """
+    r = slice(*(core if rows is None else rows))
+    values, invalid, excluded = prep["values"], prep["invalid"], prep["excluded"]
+    out = np.where(invalid[r], np.uint8(bits.INVALID), np.uint8(0))
+    hist = None
+    if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
+        from rfisieve.detect.sumthreshold import sumthreshold_flagger
+
+        hit = sumthreshold_flagger(values, invalid=excluded, sigma=meta["sigma"][p], t0=t0,
+                                   **_sumthreshold_settings(band))
+        out[hit[r] & ~excluded[r]] |= bits.SUMTHRESHOLD
+    elif detector == "sk" and meta["autos"][p] and "sk" in meta:
+        hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)
+        out[hit[r] & ~excluded[r]] |= bits.SK
+    return out, hist
+
+
+def _kurtosis(prep, values, excluded, sk, t0, core):
+    from rfisieve.detect.kurtosis import sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
+
+    m, n, d = sk["m"], sk["n"], sk["d"]
+    valid = ~excluded
+    if sk["mode"] == "s2":
+        s2 = prep["s2"]
+        hit = sk_flag_dumps(values, s2, m, n, d, sk["lower"], sk["upper"], valid)
+        rows = slice(core[0], core[1])
+        with np.errstate(all="ignore"):
+            ski = sk_estimator(values[rows].astype(np.float64) * m, s2[rows].astype(np.float64), m, n, d)
+        ski = ski[valid[rows]]
+        counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], SK_EDGES[0], SK_EDGES[-1] - 1e-9), SK_EDGES)
+        return hit, counts.astype(np.int64)
+    hit = sk_flag_blocks(values, valid, m, n, d, thresholds=sk["table"], t0=t0)
+    return hit, sk_block_histogram(values, valid, m, n, d, SK_EDGES, t0=t0, rows=core)
+
+
+def _flag_product(planes, p, band, meta, t0, core, grow):
+    """Both detectors, SIR growth and the dump cut on one (chunk x product) plane.
+
+    The single-pass form of :func:`detect` + :func:`merge` (used by :func:`flag_scan`):
+    the plane carries the detection halo plus ``grow`` (the merge halo) rows on each
+    side, so the detections of the core rows +- ``grow`` are exact and the merge of
+    :func:`_merge_plane` sees exactly what it sees in the staged path.  Returns
+    (final uint8 (core rows, chan), SK histogram counts of the core rows or None).
+    """
+    prep = _prepare(planes, p, meta)
+    n = prep["values"].shape[0]
+    lo, hi = max(0, core[0] - grow), min(n, core[1] + grow)
+    det, hist = None, None
+    for detector in DETECTORS:
+        out, h = _detect_product(prep, p, detector, band, meta, t0, core, rows=(lo, hi))
+        det = out if det is None else det | out
+        hist = h if h is not None else hist
+    flags = planes.get("flags")
+    extra = _extra_bits(det.shape, None if flags is None else flags[lo:hi], meta["static"])
+    return _merge_plane(det, extra, band, (core[0] - lo, core[1] - lo)), hist
+
+
+def _assemble(parts, nprod):
+    outs = [pt[0] for pt in parts]
+    hist = np.zeros((nprod, len(SK_EDGES) - 1), dtype=np.int64)
+    for p, pt in enumerate(parts):
+        if pt[1] is not None:
+            hist[p] += pt[1]
+    return np.stack(outs, axis=-1), hist
+
+
+def _merge_plane(det, extra, band, core):
+    """Merge one product's plane of a chunk (with SIR halo rows) into its final bits.
+
+    ``det`` holds the partial masks' bits OR-ed, ``extra`` the upstream and known bits;
+    returns the uint8 (core rows, chan) plane with growth (bit 5) and dump cuts (bit 6).
+    """
+    from rfisieve.detect._masks_kernels import merge_bits
+    from rfisieve.detect.growth import sir_grow
+
+    g = band["growth"]
+    det = np.ascontiguousarray(det, dtype=np.uint8)
+    extra = np.ascontiguousarray(extra, dtype=np.uint8)
+    grown = np.zeros((1, 1), np.bool_)
+    use_grown = bool(g["enabled"] and g["eta"] > 0)
+    if use_grown:
+        grown = sir_grow((det & bits.DETECTED) != 0, g["eta"], time=g["time"], freq=g["freq"],
+                         reach_time=g.get("reach_time"), reach_freq=g.get("reach_freq"))
+    out = np.empty((core[1] - core[0], det.shape[1]), np.uint8)
+    # det | extra, the grown bit where growth adds, and the dump cut (as
+    # masks.dump_cut: flagged fraction over channels > limit), whose cut bit
+    # marks what the cut adds: the samples no other cause flagged
+    merge_bits(det, extra, grown, use_grown, core[0], core[1], bits.DETECTED, bits.GROWN,
+               float(band["cuts"]["dump_limit"]), bits.CUT, out)
+    return out
+
+
+def _extra_bits(shape, flags, static):
+    """The upstream bit where ``flags`` (or nothing when None) and the known bit on the
+    ``static`` channels (axis 1), as uint8 of ``shape`` (time, chan[, prod])."""
+    extra = np.zeros(shape, dtype=np.uint8)
+    if flags is not None:
+        extra[flags] |= bits.UPSTREAM
+    extra[:, static] |= bits.KNOWN
+    return extra

@@ -1,0 +1,199 @@
+"""The stages a scan goes through: :func:`detect` (one detector, a partial mask),
+:func:`merge` (partial masks into the final mask) and :func:`flag_scan` (both in one pass).
+"""
+
+from pathlib import Path
+
+import dask
+import h5py
+import numpy as np
+
+from rfisieve import bits
+from rfisieve.detect.masks import channel_cut
+from rfisieve.engine.executor import _local_get, _run_detection, _Scheduler, _windows
+from rfisieve.engine.pages import small_pages
+from rfisieve.engine.plan import _check_band_matches, _check_run, _chunks, halo_span, merge_halo
+from rfisieve.engine.planes import DETECTORS, SK_EDGES, _extra_bits, _merge_plane, _meta
+from rfisieve.errors import RfisieveError, ScanError
+from rfisieve.io.maskfile import (_copy_sk_diag, _create_mask_file, _write_attrs, _write_noise,
+                                  _write_sk_diag)
+from rfisieve.io.scan import atomic_output, open_scan
+
+
+def _fail_clean(fn):
+    """Turn low-level read errors inside dask tasks into one-line ScanErrors."""
+    def wrapper(scan_path, *args, **kwargs):
+        try:
+            return fn(scan_path, *args, **kwargs)
+        except RfisieveError:
+            raise
+        except (OSError, KeyError) as err:
+            raise ScanError(scan_path, f"failed while flagging ({' '.join(str(err).split())[:160]})") from None
+    wrapper.__name__ = fn.__name__
+    wrapper.__doc__ = fn.__doc__
+    return wrapper
+
+
+@small_pages
+@_fail_clean
+def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
+    """Run one detector over a scan; write its partial mask (its bit + the invalid bit)."""
+    if detector not in DETECTORS:
+        raise RfisieveError(f"unknown detector {detector!r}; expected one of {', '.join(DETECTORS)}")
+    _check_run(run)
+    with open_scan(scan_path, run.get("layout")) as scan, _Scheduler(run) as sched:
+        _check_band_matches(scan, band)
+        meta = _meta(scan, band)
+        with atomic_output(out_path) as tmp, h5py.File(tmp, "w") as f:
+            _create_mask_file(f, scan, int(run["chunk_dumps"]))
+            f.attrs["detector"] = detector
+            flags = f["flags"]
+            hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
+
+            def sink(c0, c1, res):
+                out, h = res[detector]
+                flags[c0:c1] = out
+                hist[...] += h
+
+            used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink)
+            _write_noise(f, used)
+            if detector == "sk":
+                _write_sk_diag(f, hist, meta, band, SK_EDGES)
+
+
+def _stack(planes):
+    return np.stack(planes, axis=-1)
+
+
+def _input_and_static(scan, a, b, meta):
+    flags = scan.read(a, b, ("flags",))["flags"] if scan.has_flags else None
+    return _extra_bits((b - a, scan.nchan, scan.nprod), flags, meta["static"])
+
+
+def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
+    """Second pass: set the cut bit on channels flagged above ``limit`` over the scan."""
+    cut = channel_cut(counts, ntime, limit)  # (chan, prod)
+    cut &= counts < ntime  # a channel flagged throughout gains nothing
+    if not cut.any():
+        return
+    for c0 in range(0, ntime, chunk_dumps):
+        c1 = min(ntime, c0 + chunk_dumps)
+        block = flags[c0:c1]
+        block[cut[None, :, :] & (block == 0)] = bits.CUT  # only what the cut adds
+        flags[c0:c1] = block
+
+
+@small_pages
+@_fail_clean
+def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progress=None):
+    """Merge partial masks with the upstream, invalid and known bits into the final mask.
+
+    Then grows the detector flags with the SIR operator (bit 5) and applies the
+    occupancy cuts (bit 6): per dump within each chunk, per channel over the scan.
+    """
+    _check_run(run)
+    chunk_dumps = int(run["chunk_dumps"])
+    partial_paths = [Path(p) for p in partial_paths]
+    with open_scan(scan_path, run.get("layout")) as scan:
+        _check_band_matches(scan, band)
+        meta = _meta(scan, band)
+        parts = []
+        try:
+            for pp in partial_paths:
+                try:
+                    h = h5py.File(pp, "r")
+                except OSError as err:
+                    raise ScanError(pp, f"partial mask cannot be opened ({err})") from None
+                parts.append(h)
+                if h["flags"].shape != scan.shape:
+                    raise ScanError(pp, f"partial mask has shape {h['flags'].shape}, scan has {scan.shape}")
+            with atomic_output(out_path) as tmp, h5py.File(tmp, "w") as f:
+                _create_mask_file(f, scan, chunk_dumps)
+                _write_attrs(f, band, band_source)
+                flags = f["flags"]
+                counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
+                chunks = _chunks(scan.ntime, chunk_dumps)
+                halo = merge_halo(band)
+                workers = max(1, int(run.get("workers") or 1))
+                local = _local_get("synchronous" if run.get("scheduler") == "synchronous" else "threads")
+                done = 0
+                for window in _windows(chunks, max(2, 2 * workers)):
+                    lo, hi = halo_span(window[0][0], window[-1][1], halo, scan.ntime)
+                    det = np.zeros((hi - lo, scan.nchan, scan.nprod), dtype=np.uint8)
+                    for h in parts:
+                        det |= h["flags"][lo:hi]
+                    extra = _input_and_static(scan, lo, hi, meta)
+                    graph = []
+                    for c0, c1 in window:
+                        a, b = (x - lo for x in halo_span(c0, c1, halo, scan.ntime))
+                        core = (c0 - lo - a, c1 - lo - a)
+                        graph.append(dask.delayed(_stack)(
+                            [dask.delayed(_merge_plane)(det[a:b, :, p], extra[a:b, :, p], band, core)
+                             for p in range(scan.nprod)]))
+                    for (c0, c1), out in zip(window, dask.compute(*graph, scheduler=local, num_workers=workers)):
+                        flags[c0:c1] = out
+                        counts += (out != 0).sum(axis=0)
+                        done += 1
+                        if progress:
+                            progress(done, len(chunks))
+                _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+                _copy_sk_diag(parts, f, meta, band, SK_EDGES)
+                for h in parts:
+                    if "noise_sigma" in h.attrs:
+                        f.attrs["noise_sigma"] = h.attrs["noise_sigma"]
+        finally:
+            for h in parts:
+                h.close()
+
+
+def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
+    """Both detectors and the merge in one pass over the scan (no partial masks).
+
+    Gives the same mask file as :func:`detect` for each detector followed by
+    :func:`merge` (tests/test_engine.py checks it), in one read of the scan: each
+    (chunk x product) task runs :func:`_flag_product` on its chunk with the detection
+    halo widened by the merge halo, and the driver writes the final mask (in a writer
+    thread, while the next window is flagged).  The per-channel occupancy cut is then
+    applied in a second pass over the finished mask, as in :func:`merge`.
+    """
+    out_path = Path(out_path)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    _flag_one_pass(scan_path, out_path, band, run, band_source, progress)
+
+
+@small_pages
+@_fail_clean
+def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
+    from concurrent.futures import ThreadPoolExecutor
+
+    _check_run(run)
+    chunk_dumps = int(run["chunk_dumps"])
+    with open_scan(scan_path, run.get("layout")) as scan, _Scheduler(run) as sched:
+        _check_band_matches(scan, band)
+        with atomic_output(out_path) as tmp, h5py.File(tmp, "w") as f:
+            _create_mask_file(f, scan, chunk_dumps)
+            _write_attrs(f, band, band_source)
+            flags = f["flags"]
+            counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
+            hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
+            pending = []
+
+            def write(c0, c1, out):
+                flags[c0:c1] = out
+                counts[...] += (out != 0).sum(axis=0)
+
+            with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
+                def sink(c0, c1, res):
+                    out, h = res["final"]
+                    hist[...] += h
+                    while pending and pending[0].done():
+                        pending.pop(0).result()  # re-raise a failed write at once
+                    pending.append(writer.submit(write, c0, c1, out))
+
+                used = _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink,
+                                      grow=merge_halo(band))
+                for fut in pending:
+                    fut.result()
+            _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+            _write_sk_diag(f, hist, used, band, SK_EDGES)
+            _write_noise(f, used)
