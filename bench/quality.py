@@ -282,7 +282,7 @@ FIELD_TARGETS = {"tdma": 0.85, "fracpulse": 0.75}
 
 
 def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
-    from rfisieve.engine.core import flag_scan
+    from rfisieve.engine import flag_scan
     from rfisieve.sim.field import field_scene, write_field_scene
 
     t0 = time.time()
@@ -310,7 +310,7 @@ def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
             "pol_fa": [float(decided[:, :, p][clean[:, :, p]].mean()) for p in range(mask.shape[2])],
             "per_bit_fa": {nm: float(np.count_nonzero(clean & ((mask & v) != 0)) / max(1, clean.sum()))
                            for nm, v in (("sk", bits.SK), ("sumthreshold", bits.SUMTHRESHOLD),
-                                         ("grown", bits.MORPHOLOGY), ("cut", bits.OCCUPANCY))}}
+                                         ("grown", bits.GROWN), ("cut", bits.CUT))}}
 
 
 def main_field(args, band, run):
@@ -392,6 +392,12 @@ def main(argv=None):
     band = band_settings(override)
     run = run_settings({"workers": args.workers, "scheduler": "threads", "chunk_dumps": 1024})
     if args.field is not None:
+        # the field scenes are judged with the shipped L-band config (its protected lines)
+        from rfisieve.config.defaults import merge
+        from rfisieve.config.load import load_band
+
+        band = merge(load_band(str(Path(__file__).resolve().parent.parent / "config" / "bands"), "L")[0],
+                     parse_set(args.sets))
         args.field = args.field or list(FIELD_SCENES)
         if args.ntime == NTIME and args.nchan == NCHAN:
             args.ntime, args.nchan = 4096, 1024

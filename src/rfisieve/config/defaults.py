@@ -29,11 +29,12 @@ BAND_DEFAULTS = {
         "start_scale": 4.0,      # threshold factor of the first iteration, falling to 1
         "background_time": 15.0, # smoothing scale of the background along time, dumps
         "background_freq": 5.0,  # smoothing scale of the background along frequency, channels
-        "bandpass_dumps": 256,   # dumps per block of the median bandpass divided out first (0 = off)
-        "persist_dumps": 256,    # longest block of the persistence test, dumps (0 = off)
+        "bandpass_dumps": 0,     # dumps per block of the median bandpass divided out first (0 = off;
+                                 # on in the L band, measured there: see config/bands/L.yaml)
+        "persist_dumps": 0,      # longest block of the persistence test, dumps (0 = off)
         "persist_sigma": 6.0,    # persistence threshold, sigma of a block mean
         "baseline_channels": 64, # half-width of the running median over channels, channels
-        "compact_sigma": 5.0,    # compact-box threshold, sigma of a normalised box sum (0 = off)
+        "compact_sigma": 0.0,    # compact-box threshold, sigma of a normalised box sum (0 = off)
     },
     "growth": {
         "enabled": True,
@@ -47,6 +48,7 @@ BAND_DEFAULTS = {
         "channel_limit": 0.8,    # flag a whole channel of a product above this fraction
         "dump_limit": 0.8,       # flag a whole dump of a product above this fraction
     },
+    "protect": [],               # [{start_mhz, stop_mhz, reason, source}] protected sky lines
     "known_bad": [],             # [{start_mhz, stop_mhz, reason}] known-bad ranges
     "emitters": [],              # [{name, start_mhz, stop_mhz, source}] site emitters
 }

@@ -129,3 +129,42 @@ def box_test(g, lev0, det, dt, df, thr, out):
                         if lev0[u, w] == 0 and not det[u, w]:
                             out[u, w] = True
     return hits
+
+
+@njit(**_opts)
+def local_quadratic(v, w, half, fallback, out):
+    """out[c] = value at c of the weighted least-squares quadratic through v over the
+    window c - half .. c + half (clipped at the ends), weights w; ``fallback[c]``
+    where the window holds too few weighted points."""
+    n = v.shape[0]
+    for c in range(n):
+        lo = max(0, c - half)
+        hi = min(n - 1, c + half)
+        s0 = s1 = s2 = s3 = s4 = 0.0
+        y0 = y1 = y2 = 0.0
+        cnt = 0
+        for k in range(lo, hi + 1):
+            wk = w[k]
+            if wk <= 0:
+                continue
+            u = (k - c) / (half + 1.0)
+            u2 = u * u
+            s0 += wk
+            s1 += wk * u
+            s2 += wk * u2
+            s3 += wk * u2 * u
+            s4 += wk * u2 * u2
+            y0 += wk * v[k]
+            y1 += wk * v[k] * u
+            y2 += wk * v[k] * u2
+            cnt += 1
+        if cnt < 6:
+            out[c] = fallback[c]
+            continue
+        # Cramer's rule for [[s0 s1 s2] [s1 s2 s3] [s2 s3 s4]] (a b c) = (y0 y1 y2); a
+        det = s0 * (s2 * s4 - s3 * s3) - s1 * (s1 * s4 - s3 * s2) + s2 * (s1 * s3 - s2 * s2)
+        if abs(det) < 1e-12 * max(1.0, s0) ** 3:
+            out[c] = fallback[c]
+            continue
+        da = y0 * (s2 * s4 - s3 * s3) - s1 * (y1 * s4 - s3 * y2) + s2 * (y1 * s3 - s2 * y2)
+        out[c] = da / det

@@ -35,6 +35,12 @@ __all__ = ["block_bandpass", "persistent_flags", "compact_flags", "block_lengths
 #: MAD to standard deviation for Gaussian noise, 1 / Phi^-1(3/4) (common practice).
 MAD_TO_SIGMA = 1.482602218505602
 
+#: Sub-blocks (dumps) in which a channel found by the persistence test is flagged, and
+#: the excess (sigma of the sub-block mean) it must show there: an emitter that
+#: switches off within a long block is not flagged while it is off.
+SUB_DUMPS = 64
+REFINE_SIGMA = 2.5
+
 #: Boxes (dumps, channels) of the compact-shape test: short pulses a few channels wide
 #: and a few dumps long (the 1 x 1 box is SumThreshold's M = 1 window already).
 COMPACT_SHAPES = ((1, 2), (1, 3), (1, 4), (1, 6), (2, 1), (2, 2), (2, 3), (3, 1), (3, 3))
@@ -143,9 +149,15 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     the baseline is rougher than the noise (ripple of a few channels' period), the
     threshold rises with it.  Only channels with n_j >= L / 4 are tested.  An
     emitter up to about h channels wide stands out of the running median (a median
-    ignores under half of its window).  The running median follows a monotone
-    edge or knee exactly; a spectrally smooth sky line is *not* told apart from
-    interference: protect its range (``protect``).
+    ignores under half of its window).  The excess is taken over two baselines and
+    the smaller one counts: the running median, which follows a monotone edge, knee
+    or shoulder exactly but cuts the tops of curved stretches, and a local quadratic
+    in log power over the same window (fitted twice, leaving out the channels that
+    stand out: a robust local regression, Cleveland 1979, JASA 74, 829), which
+    follows smooth curvature but not a sharp knee.  Interference must stand out
+    of both.  A spectrally smooth sky line is *not* told apart from interference:
+    protect its range (``protect``).  Each channel found in a block is flagged in
+    the sub-blocks of ``SUB_DUMPS`` where its own excess passes ``REFINE_SIGMA``.
 
     Parameters
     ----------
@@ -174,35 +186,162 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     """
     x = np.ascontiguousarray(values, dtype=np.float32)
     ex = np.ascontiguousarray(exclude, dtype=np.bool_)
-    det = np.ascontiguousarray(detected, dtype=np.bool_)
     n, m = x.shape
     out = np.zeros((n, m), np.bool_)
     if not (sigma > 0) or n == 0:
         return out
-    base = np.empty(bp.shape, np.float64)
-    for i in range(bp.shape[0]):
-        kernels.running_median(bp[i].astype(np.float64), int(half_width), base[i])
-    s = np.empty(m, np.float64)
-    cnt = np.empty(m, np.int64)
-    T = int(bandpass_dumps)
+    bases = _baselines(bp, int(half_width))
+    # sums over aligned sub-blocks of S dumps (every sample not excluded, detected
+    # ones too: leaving them out would bias a partly detected channel's mean low)
+    S = min(SUB_DUMPS, min(int(L) for L in lengths))
+    subs = _blocks(t0, n, S)
+    ssum = np.empty((len(subs), m), np.float64)
+    scnt = np.empty((len(subs), m), np.int64)
+    for q, (_, a, b) in enumerate(subs):
+        kernels.block_sums(x, ex, ex, a, b, ssum[q], scnt[q])
+    free = np.ones(m, np.bool_) if protect is None else ~np.asarray(protect, dtype=np.bool_)
+    first = int(t0) // S
+
+    def excess(q0, q1):
+        """zs over channels for sub-blocks q0 .. q1 - 1 (ok mask, zs): the smaller of
+        the excesses over the two baselines."""
+        s = ssum[q0:q1].sum(axis=0)
+        c = scnt[q0:q1].sum(axis=0)
+        ok = free & (c >= max(2, (subs[q1 - 1][2] - subs[q0][1]) // 4))
+        zs = np.zeros(m)
+        if ok.sum() < 8:
+            return ok & False, zs
+        i = rowblock[subs[q0][1]]
+        zs = None
+        for base in bases:
+            ratio = np.where(ok, s / np.maximum(c, 1) / base[i], 1.0)
+            g = np.median(ratio[ok])
+            z1 = (ratio / g - 1.0) * np.sqrt(c) / sigma
+            zs = z1 if zs is None else np.minimum(zs, z1)
+        return ok, zs
+
+    def refine(hit, q0, q1):
+        """Flag the hit channels in the sub-blocks where they stand out by REFINE_SIGMA."""
+        for q in range(q0, q1):
+            ok, zs = excess(q, q + 1)
+            keep = hit & ok & (zs > REFINE_SIGMA)
+            if keep.any():
+                a, b = subs[q][1], subs[q][2]
+                out[a:b] |= keep[None, :] & ~ex[a:b]
+
+    def sub_range(a, b):
+        return ((a + int(t0)) // S) - first, ((b - 1 + int(t0)) // S) - first + 1
+
     for L in lengths:
         for j, a, b in _blocks(t0, n, int(L)):
-            kernels.block_sums(x, ex, det, a, b, s, cnt)
-            ok = cnt >= max(2, int(L) // 4)
-            if protect is not None:
-                ok &= ~protect
-            if ok.sum() < 8:
+            q0, q1 = sub_range(a, b)
+            ok, zs = excess(q0, q1)
+            if not ok.any():
                 continue
-            i = rowblock[a]
-            ratio = s[ok] / cnt[ok] / base[i, ok]
-            g = np.median(ratio)
-            zs = (ratio / g - 1.0) * np.sqrt(cnt[ok]) / sigma
-            sc = MAD_TO_SIGMA * np.median(np.abs(zs - np.median(zs)))
-            hit = np.zeros(m, np.bool_)
-            hit[np.flatnonzero(ok)[zs > z * max(1.0, sc)]] = True
+            sc = MAD_TO_SIGMA * np.median(np.abs(zs[ok] - np.median(zs[ok])))
+            hit = ok & (zs > z * max(1.0, sc))
             if hit.any():
-                out[a:b] |= hit[None, :] & ~ex[a:b]
+                refine(hit, q0, q1)
+    for i, (k, a, b) in enumerate(_blocks(t0, n, int(bandpass_dumps))):
+        hit = fine_excess(bp[i], z, protect)
+        if not hit.any():
+            continue
+        # in the sub-blocks where the channel stands out of its neighbours' quadratic
+        for q in range(*sub_range(a, b)):
+            c = scnt[q]
+            mean = np.where(c > 0, ssum[q] / np.maximum(c, 1), np.nan)
+            kernels.fill_nan_1d(mean)
+            e = _loo_quadratic(np.log(np.maximum(mean, 1e-30)))
+            zs = e * np.sqrt(np.maximum(c, 1) / 1.5) / sigma
+            keep = hit & (c > 0) & (zs > REFINE_SIGMA)
+            if keep.any():
+                qa, qb = subs[q][1], subs[q][2]
+                out[qa:qb] |= keep[None, :] & ~ex[qa:qb]
     return out
+
+
+def _baselines(bp, half_width):
+    """The two frequency-robust baselines of each block's bandpass (see
+    :func:`persistent_flags`): the centred running median, and a local quadratic in
+    log power fitted with the channels that stand out of the first left out."""
+    med = np.empty(bp.shape, np.float64)
+    quad = np.empty(bp.shape, np.float64)
+    for i in range(bp.shape[0]):
+        row = bp[i].astype(np.float64)
+        kernels.running_median(row, half_width, med[i])
+        lb = np.log(np.maximum(row, 1e-30))
+        lm = np.log(np.maximum(med[i], 1e-30))
+        d = lb - lm
+        sc = MAD_TO_SIGMA * np.median(np.abs(d - np.median(d)))
+        w = (np.abs(d) <= 3.0 * sc).astype(np.float64) if sc > 0 else np.ones_like(d)
+        fit = np.empty_like(lb)
+        kernels.local_quadratic(lb, w, half_width, lm, fit)
+        # second pass: leave out what stands out of the first fit
+        d2 = lb - fit
+        sc2 = MAD_TO_SIGMA * np.median(np.abs(d2 - np.median(d2)))
+        if sc2 > 0:
+            w = (np.abs(d2) <= 3.0 * sc2).astype(np.float64)
+            kernels.local_quadratic(lb, w, half_width, lm, fit)
+        quad[i] = np.exp(fit)
+    return med, quad
+
+
+def _loo_quadratic(lb):
+    """lb(c) less its prediction (6 s_1 + 3 s_2 - 2 s_3) / 7 from the pairs' means
+    s_j = (lb(c - j) + lb(c + j)) / 2 (see :func:`fine_excess`); 0 on the three
+    outer channels at each end."""
+    m = lb.shape[0]
+    e = np.zeros(m)
+    if m < 7:
+        return e
+    c = np.arange(3, m - 3)
+    s1 = 0.5 * (lb[c - 1] + lb[c + 1])
+    s2 = 0.5 * (lb[c - 2] + lb[c + 2])
+    s3 = 0.5 * (lb[c - 3] + lb[c + 3])
+    e[c] = lb[c] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
+    return e
+
+
+def fine_excess(bp_row, z, protect=None):
+    r"""Channels of one block's bandpass that stand out of a local quadratic in log
+    power: narrow persistent emitters on steep slopes and knees.
+
+    Method: a centred running median returns the centre value itself on a steep
+    monotone slope, so a narrow carrier there hides in it.  Instead each channel's log
+    bandpass l(c) is predicted from its neighbours by the least-squares quadratic
+    through the pairs' means s_j = (l(c - j) + l(c + j)) / 2, j = 1, 2, 3 (exact for
+    cubics; the channel itself left out): p(c) = (6 s_1 + 3 s_2 - 2 s_3) / 7.  The
+    excess l - p is divided by its robust scatter over the band (1.4826 MAD: the
+    bandpass median's noise, about 1.25 / sqrt(2 T) of a dump's, times sqrt(3/2)
+    for the prediction, plus what the quadratic cannot follow); channels above ``z``
+    are flagged.  The three outer channels at each end are not tested.
+
+    Parameters
+    ----------
+    bp_row : ndarray (nchan,)
+        One block's bandpass (:func:`block_bandpass`).
+    z : float
+        Threshold in robust sigma.
+    protect : ndarray of bool, optional
+        Channels not tested.
+
+    Returns
+    -------
+    ndarray of bool (nchan,)
+    """
+    lb = np.log(np.maximum(np.asarray(bp_row, dtype=np.float64), 1e-30))
+    m = lb.shape[0]
+    hit = np.zeros(m, np.bool_)
+    if m < 16:
+        return hit
+    e = _loo_quadratic(lb)[3:m - 3]
+    sc = MAD_TO_SIGMA * np.median(np.abs(e - np.median(e)))
+    if not sc > 0:
+        return hit
+    hit[3:m - 3] = e > z * sc
+    if protect is not None:
+        hit &= ~np.asarray(protect, dtype=np.bool_)
+    return hit
 
 
 def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES):

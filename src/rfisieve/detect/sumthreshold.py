@@ -222,9 +222,9 @@ def threshold_factors(iterations, start_scale):
 
 def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32,
                          max_window_freq=128, iterations=3, start_scale=4.0,
-                         background_time=15.0, background_freq=5.0, bandpass_dumps=256,
-                         persist_dumps=256, persist_sigma=6.0, baseline_channels=64,
-                         compact_sigma=5.0, invalid=None, sigma=None, t0=0, protect=None):
+                         background_time=15.0, background_freq=5.0, bandpass_dumps=0,
+                         persist_dumps=0, persist_sigma=6.0, baseline_channels=64,
+                         compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
@@ -366,8 +366,8 @@ def _scratch():
 
 def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_freq=128,
           iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
-          invalid=None, sigma=None, t0=0, bandpass_dumps=256, persist_dumps=256, persist_sigma=6.0,
-          baseline_channels=64, compact_sigma=5.0, protect=None, noise_only=False):
+          invalid=None, sigma=None, t0=0, bandpass_dumps=0, persist_dumps=0, persist_sigma=6.0,
+          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False):
     """The flagger; returns (detections, sigma of the last iteration)."""
     x = np.ascontiguousarray(values, dtype=np.float32)
     if x.ndim != 2:
@@ -491,11 +491,11 @@ def sumthreshold_halo(settings):
     r_b = coarse_reach(bt)
     ct = cell_size(bt)
     halo = it * (r_st + r_b)
-    tb = int(s.get("bandpass_dumps", 256) or 0)
+    tb = int(s.get("bandpass_dumps", 0) or 0)
     if tb:
         halo += bandpass_reach(tb)
-        if s.get("persist_dumps", 256):
-            halo += max(block_lengths(s.get("persist_dumps", 256), tb) or (0,))
-    if s.get("compact_sigma", 5.0):
+        if s.get("persist_dumps", 0):
+            halo += max(block_lengths(s.get("persist_dumps", 0), tb) or (0,))
+    if s.get("compact_sigma", 0.0):
         halo += max(dt for dt, _ in COMPACT_SHAPES) - 1
     return int(-(-halo // ct) * ct)

@@ -114,7 +114,11 @@ def _skirt(nchan, c0, width, steep=1.0):
     """Spectral profile of a band-limited emitter: flat over ``width`` channels from
     c0 with logistic skirts of ``steep`` channels."""
     c = np.arange(nchan, dtype=np.float64)
-    return (1.0 / (1.0 + np.exp(-(c - c0 + 0.5) / steep))) * (1.0 / (1.0 + np.exp((c - c0 - width + 0.5) / steep)))
+    u = np.clip(-(c - c0 + 0.5) / steep, -50, 50)
+    v = np.clip((c - c0 - width + 0.5) / steep, -50, 50)
+    p = 1.0 / (1.0 + np.exp(u)) / (1.0 + np.exp(v))
+    p[p < 1e-3] = 0.0          # no skirt below -30 dB
+    return p
 
 
 def _free_range(rng, used, nchan, width, margin=40):
