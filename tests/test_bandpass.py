@@ -43,8 +43,6 @@ def test_bandpass_follows_a_steep_knee():
     assert np.max(np.abs(err)) < 0.2 * SIGMA, np.max(np.abs(err)) / SIGMA
 
 
-@pytest.mark.xfail(reason="open: the robust quadratic baseline of _baselines comes out biased on these "
-                          "planes (a direct fit gives the right value); found at the deadline", strict=False)
 def test_one_sigma_carrier_on_the_knee_is_found():
     # Check value: a 1-sigma carrier in every dump is a sqrt(n)-sigma excess of an
     # n-dump mean (radiometer equation); on the knee's steep slope it must be found in
@@ -60,8 +58,6 @@ def test_one_sigma_carrier_on_the_knee_is_found():
     assert hit[:, others].mean() < 0.003
 
 
-@pytest.mark.xfail(reason="open: the robust quadratic baseline of _baselines comes out biased on these "
-                          "planes (a direct fit gives the right value); found at the deadline", strict=False)
 def test_protected_range_is_honoured():
     # A smooth steady line (Gaussian, FWHM 14 channels, 1.2 sigma: the 21-cm line of the
     # issue) is flagged by the persistence test unless its channels are protected.
@@ -79,8 +75,6 @@ def test_protected_range_is_honoured():
     assert hit[:, on].mean() < 0.005
 
 
-@pytest.mark.xfail(reason="open: the robust quadratic baseline of _baselines comes out biased on these "
-                          "planes (a direct fit gives the right value); found at the deadline", strict=False)
 def test_persistence_test_finds_a_wide_block_absorbed_by_the_median():
     # An emitter 30 channels wide in every dump is held by the bandpass median (so
     # SumThreshold alone cannot see it) and must be found by the persistence test.

@@ -145,15 +145,17 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
 
     .. math:: e \sqrt{n_j} / \sigma > z \max(1, s_j)
 
-    with s_j the robust scatter (1.4826 MAD) of e sqrt(n_j) / sigma over channels: where
+    with s_j the robust scatter (1.4826 MAD) over channels of the excess over the
+    running median (below) in the same units: where
     the baseline is rougher than the noise (ripple of a few channels' period), the
     threshold rises with it.  Only channels with n_j >= L / 4 are tested.  An
     emitter up to about h channels wide stands out of the running median (a median
     ignores under half of its window).  The excess is taken over two baselines and
     the smaller one counts: the running median, which follows a monotone edge, knee
     or shoulder exactly but cuts the tops of curved stretches, and a local quadratic
-    in log power over the same window (fitted twice, leaving out the channels that
-    stand out: a robust local regression, Cleveland 1979, JASA 74, 829), which
+    in log power over the same window (leaving out the channels that stand out of
+    the running median: a robust local regression in the manner of Cleveland 1979,
+    JASA 74, 829), which
     follows smooth curvature but not a sharp knee.  Interference must stand out
     of both.  A spectrally smooth sky line is *not* told apart from interference:
     protect its range (``protect``).  Each channel found in a block is flagged in
@@ -210,20 +212,22 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
         ok = free & (c >= max(2, (subs[q1 - 1][2] - subs[q0][1]) // 4))
         zs = np.zeros(m)
         if ok.sum() < 8:
-            return ok & False, zs
+            return ok & False, zs, zs
         i = rowblock[subs[q0][1]]
-        zs = None
+        zs = []
         for base in bases:
             ratio = np.where(ok, s / np.maximum(c, 1) / base[i], 1.0)
             g = np.median(ratio[ok])
-            z1 = (ratio / g - 1.0) * np.sqrt(c) / sigma
-            zs = z1 if zs is None else np.minimum(zs, z1)
-        return ok, zs
+            zs.append((ratio / g - 1.0) * np.sqrt(c) / sigma)
+        # the smaller excess; the scatter of the running median's alone (the
+        # quadratic's large misses at sharp knees are negative there and would
+        # inflate it)
+        return ok, np.minimum(zs[0], zs[1]), zs[0]
 
     def refine(hit, q0, q1):
         """Flag the hit channels in the sub-blocks where they stand out by REFINE_SIGMA."""
         for q in range(q0, q1):
-            ok, zs = excess(q, q + 1)
+            ok, zs, _ = excess(q, q + 1)
             keep = hit & ok & (zs > REFINE_SIGMA)
             if keep.any():
                 a, b = subs[q][1], subs[q][2]
@@ -235,10 +239,10 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     for L in lengths:
         for j, a, b in _blocks(t0, n, int(L)):
             q0, q1 = sub_range(a, b)
-            ok, zs = excess(q0, q1)
+            ok, zs, zm = excess(q0, q1)
             if not ok.any():
                 continue
-            sc = MAD_TO_SIGMA * np.median(np.abs(zs[ok] - np.median(zs[ok])))
+            sc = MAD_TO_SIGMA * np.median(np.abs(zm[ok] - np.median(zm[ok])))
             hit = ok & (zs > z * max(1.0, sc))
             if hit.any():
                 refine(hit, q0, q1)
@@ -263,7 +267,10 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
 def _baselines(bp, half_width):
     """The two frequency-robust baselines of each block's bandpass (see
     :func:`persistent_flags`): the centred running median, and a local quadratic in
-    log power fitted with the channels that stand out of the first left out."""
+    log power fitted with the channels that stand out of the running median (by
+    more than 3 robust sigma of that difference over the band) left out.  The
+    quadratic is fitted once: near a sharp knee it is poor, and the scatter of its
+    residual there would make a second pass reject the clean channels instead."""
     med = np.empty(bp.shape, np.float64)
     quad = np.empty(bp.shape, np.float64)
     for i in range(bp.shape[0]):
@@ -276,12 +283,6 @@ def _baselines(bp, half_width):
         w = (np.abs(d) <= 3.0 * sc).astype(np.float64) if sc > 0 else np.ones_like(d)
         fit = np.empty_like(lb)
         kernels.local_quadratic(lb, w, half_width, lm, fit)
-        # second pass: leave out what stands out of the first fit
-        d2 = lb - fit
-        sc2 = MAD_TO_SIGMA * np.median(np.abs(d2 - np.median(d2)))
-        if sc2 > 0:
-            w = (np.abs(d2) <= 3.0 * sc2).astype(np.float64)
-            kernels.local_quadratic(lb, w, half_width, lm, fit)
         quad[i] = np.exp(fit)
     return med, quad
 
@@ -302,6 +303,26 @@ def _loo_quadratic(lb):
     return e
 
 
+def _loo_excess(lb):
+    """The smaller of lb's excess over three leave-one-out predictions: the
+    symmetric quadratic of :func:`_loo_quadratic`, and the straight lines through
+    the three channels on either side, (4 l(c -+ 1) + l(c -+ 2) - 2 l(c -+ 3)) / 3
+    (least squares through j = 1, 2, 3, at j = 0).  At a sharp knee (a kink of
+    the log bandpass) the channel lies on the line of one side or the other, so a
+    knee is not taken for a carrier; a carrier stands out of all three.  Returns
+    (min excess, symmetric excess); 0 on the three outer channels at each end."""
+    m = lb.shape[0]
+    sym = _loo_quadratic(lb)
+    if m < 7:
+        return sym, sym
+    c = np.arange(3, m - 3)
+    left = lb[c] - (4 * lb[c - 1] + lb[c - 2] - 2 * lb[c - 3]) / 3.0
+    right = lb[c] - (4 * lb[c + 1] + lb[c + 2] - 2 * lb[c + 3]) / 3.0
+    e = np.zeros(m)
+    e[c] = np.minimum(sym[c], np.minimum(left, right))
+    return e, sym
+
+
 def fine_excess(bp_row, z, protect=None):
     r"""Channels of one block's bandpass that stand out of a local quadratic in log
     power: narrow persistent emitters on steep slopes and knees.
@@ -310,11 +331,15 @@ def fine_excess(bp_row, z, protect=None):
     monotone slope, so a narrow carrier there hides in it.  Instead each channel's log
     bandpass l(c) is predicted from its neighbours by the least-squares quadratic
     through the pairs' means s_j = (l(c - j) + l(c + j)) / 2, j = 1, 2, 3 (exact for
-    cubics; the channel itself left out): p(c) = (6 s_1 + 3 s_2 - 2 s_3) / 7.  The
-    excess l - p is divided by its robust scatter over the band (1.4826 MAD: the
-    bandpass median's noise, about 1.25 / sqrt(2 T) of a dump's, times sqrt(3/2)
-    for the prediction, plus what the quadratic cannot follow); channels above ``z``
-    are flagged.  The three outer channels at each end are not tested.
+    cubics; the channel itself left out): p(c) = (6 s_1 + 3 s_2 - 2 s_3) / 7, and
+    by the straight lines through the three channels on either side; the smallest
+    excess counts (:func:`_loo_excess`: a sharp knee lies on one side's line).  It
+    is divided by the robust scatter over the band of the symmetric excess (1.4826
+    MAD: the bandpass median's noise, about 1.25 / sqrt(2 T) of a dump's, times
+    sqrt(3/2) for the prediction); channels above ``z`` are flagged.  The three
+    outer channels at each end are not tested.  In the sub-blocks (which only place
+    the found channel in time) the symmetric excess of the sub-block means counts,
+    scaled by sqrt(n / 1.5) / sigma (1.5: its variance over a sample's, 1 + 49/98).
 
     Parameters
     ----------
@@ -334,8 +359,9 @@ def fine_excess(bp_row, z, protect=None):
     hit = np.zeros(m, np.bool_)
     if m < 16:
         return hit
-    e = _loo_quadratic(lb)[3:m - 3]
-    sc = MAD_TO_SIGMA * np.median(np.abs(e - np.median(e)))
+    e, sym = _loo_excess(lb)
+    e, sym = e[3:m - 3], sym[3:m - 3]
+    sc = MAD_TO_SIGMA * np.median(np.abs(sym - np.median(sym)))
     if not sc > 0:
         return hit
     hit[3:m - 3] = e > z * sc
