@@ -51,6 +51,10 @@ PART_SIGMA = 1.0
 COMPACT_SHAPES = ((1, 2), (1, 3), (1, 4), (1, 6), (2, 1), (2, 2), (2, 3), (3, 1), (3, 3))
 
 
+#: Dumps averaged before the bandpass median (aligned to absolute dump numbers).
+GROUP_DUMPS = 4
+
+
 def _blocks(t0, n, length):
     """(k, a, b) for the aligned blocks of ``length`` dumps that overlap plane rows
     0 .. n - 1 (a, b: the block's rows within the plane)."""
@@ -78,7 +82,9 @@ def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
     .. math:: b_k(f) = \mathrm{median}\{x(t, f) : kT - T/2 \le t < (k+1)T + T/2\}
 
     over samples not excluded (a window of 2 T dumps centred on the block, so the
-    median has at least T / 2 dumps also at a scan's ends).  A median because an
+    median has at least T / 2 dumps also at a scan's ends), taken over the means
+    of aligned groups of ``GROUP_DUMPS`` dumps (the same noise as the median of the
+    dumps themselves, at a quarter of the cost).  A median because an
     emitter present in under half of the window does not move it much (breakdown
     point 1/2; Hampel 1974, JASA 69, 383).  Its noise is about 1.25 / sqrt(2 T) of a
     dump's (asymptotic variance of the median, pi / 2 sigma**2 / n).  Channels with
@@ -108,13 +114,23 @@ def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
     bp = np.empty((len(blocks), m), np.float32)
     rowblock = np.empty(n, np.int64)
     half = T // 2
-    buf = np.empty((m, min(n, 2 * T + 1)), np.float32)
+    # means over aligned groups of G dumps first: the median of n / G group means
+    # has the noise of the median of n dumps (both pi / 2 sigma**2 / n), at a
+    # G-th of the cost
+    G = GROUP_DUMPS if T % (2 * GROUP_DUMPS) == 0 else 1
+    off = int(t0) % G
+    ng = -(-(n + off) // G)
+    gm = np.empty((ng, m), np.float32)
+    gbad = np.empty((ng, m), np.bool_)
+    kernels.group_means(x, ex, off, G, gm, gbad)
+    buf = np.empty((m, min(ng, (2 * T) // G + 1)), np.float32)
     col = np.empty(m, np.float64)
     for i, (k, a, b) in enumerate(blocks):
         wa, wb = max(0, k * T - half - t0), min(n, (k + 1) * T + half - t0)
-        if buf.shape[1] < wb - wa:
-            buf = np.empty((m, wb - wa), np.float32)
-        kernels.column_medians(x, ex, wa, wb, col, buf)
+        ga, gb = (wa + off) // G, -(-(wb + off) // G)
+        if buf.shape[1] < gb - ga:
+            buf = np.empty((m, gb - ga), np.float32)
+        kernels.column_medians(gm, gbad, ga, gb, col, buf)
         kernels.fill_nan_1d(col)
         bp[i] = col
         rowblock[a:b] = i
@@ -195,100 +211,115 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     ex = np.ascontiguousarray(exclude, dtype=np.bool_)
     n, m = x.shape
     out = np.zeros((n, m), np.bool_)
-    if not (sigma > 0) or n == 0:
+    if not (sigma > 0) or n == 0 or m < 16:
         return out
     bases = _baselines(bp, int(half_width))
-    # sums over aligned sub-blocks of S dumps (every sample not excluded, detected
-    # ones too: leaving them out would bias a partly detected channel's mean low)
+    # sums over aligned parts of S dumps (every sample not excluded, detected ones
+    # too: leaving them out would bias a partly detected channel's mean low)
     S = min(PART_DUMPS, min(int(L) for L in lengths))
-    per_sub = max(1, SUB_DUMPS // S)
-    subs = _blocks(t0, n, S)
-    ssum = np.empty((len(subs), m), np.float64)
-    scnt = np.empty((len(subs), m), np.int64)
-    for q, (_, a, b) in enumerate(subs):
+    parts = _blocks(t0, n, S)
+    P = len(parts)
+    ssum = np.empty((P, m), np.float64)
+    scnt = np.empty((P, m), np.int64)
+    for q, (_, a, b) in enumerate(parts):
         kernels.block_sums(x, ex, ex, a, b, ssum[q], scnt[q])
+    pidx = np.array([k for k, _, _ in parts], np.int64)          # absolute part numbers
+    prow = np.array([a for _, a, _ in parts], np.int64)          # first row of each part
+    plen = np.array([b - a for _, a, b in parts], np.int64)
     free = np.ones(m, np.bool_) if protect is None else ~np.asarray(protect, dtype=np.bool_)
-    first = int(t0) // S
+    pblock = rowblock[prow]                                      # bandpass block of each part
 
-    def excess(q0, q1):
-        """zs over channels for sub-blocks q0 .. q1 - 1 (ok mask, zs): the smaller of
-        the excesses over the two baselines."""
-        s = ssum[q0:q1].sum(axis=0)
-        c = scnt[q0:q1].sum(axis=0)
-        ok = free & (c >= max(2, (subs[q1 - 1][2] - subs[q0][1]) // 4))
-        zs = np.zeros(m)
-        if ok.sum() < 8:
-            return ok & False, zs, zs
-        i = rowblock[subs[q0][1]]
+    csum = np.zeros((P + 1, m))
+    np.cumsum(ssum, axis=0, out=csum[1:])
+    ccnt = np.zeros((P + 1, m), np.int64)
+    np.cumsum(scnt, axis=0, out=ccnt[1:])
+    crow = np.r_[0, np.cumsum(plen)]
+    memo = {}
+
+    def grouped(k):
+        """Sums, counts, rows and bandpass block per group of k aligned parts, and
+        each part's group (memoised)."""
+        if k not in memo:
+            gid = pidx // k
+            new_group = np.r_[True, gid[1:] != gid[:-1]]
+            starts = np.flatnonzero(new_group)
+            ends = np.r_[starts[1:], P]
+            memo[k] = (csum[ends] - csum[starts], ccnt[ends] - ccnt[starts], crow[ends] - crow[starts],
+                       pblock[starts], np.cumsum(new_group) - 1)
+        return memo[k]
+
+    def excess(k):
+        """Per group of k parts: (ok, z over the smaller excess, z over the running
+        median's) and each part's group (see the docstring)."""
+        gs, gc, rows, blk, grp = grouped(k)
+        ok = free[None, :] & (gc >= np.maximum(2, rows // 4)[:, None])
+        enough = ok.sum(axis=1) >= 8
+        ok &= enough[:, None]
         zs = []
-        for base in bases:
-            ratio = np.where(ok, s / np.maximum(c, 1) / base[i], 1.0)
-            g = np.median(ratio[ok])
-            zs.append((ratio / g - 1.0) * np.sqrt(c) / sigma)
-        # the smaller excess; the scatter of the running median's alone (the
-        # quadratic's large misses at sharp knees are negative there and would
-        # inflate it)
-        return ok, np.minimum(zs[0], zs[1]), zs[0]
+        with np.errstate(all="ignore"):
+            mean = gs / np.maximum(gc, 1)
+            for base in bases:
+                ratio = mean / base[blk]
+                g = _row_medians(ratio, ok)
+                zs.append((ratio / np.where(enough, g, 1.0)[:, None] - 1.0) * np.sqrt(gc) / sigma)
+        return ok, np.minimum(zs[0], zs[1]), zs[0], grp
 
-    def refine(hit, q0, q1):
-        """Flag the hit channels in the sub-blocks where they stand out by
-        REFINE_SIGMA, and there in the parts where they stand out by PART_SIGMA."""
-        q = q0
-        while q < q1:
-            # the aligned sub-block holding part q
-            r1 = min(q1, q - (subs[q][0] % per_sub) + per_sub)
-            ok, zs, _ = excess(q, r1)
-            keep = hit & ok & (zs > REFINE_SIGMA)
-            if keep.any():
-                for r in range(q, r1):
-                    okp, zp, _ = excess(r, r + 1)
-                    kp = keep & okp & (zp > PART_SIGMA)
-                    if kp.any():
-                        a, b = subs[r][1], subs[r][2]
-                        out[a:b] |= kp[None, :] & ~ex[a:b]
-            q = r1
-
-    def fine_z(q0, q1):
-        """Symmetric leave-one-out excess of the mean spectrum of parts q0 .. q1 - 1,
+    def fine_z(k):
+        """Per group of k parts: symmetric leave-one-out excess of the mean spectrum,
         in sigma of that mean (its variance 1.5 times a sample's: 1 + 49/98)."""
-        c = scnt[q0:q1].sum(axis=0)
-        mean = np.where(c > 0, ssum[q0:q1].sum(axis=0) / np.maximum(c, 1), np.nan)
-        kernels.fill_nan_1d(mean)
+        gs, gc, _, _, grp = grouped(k)
+        with np.errstate(all="ignore"):
+            mean = np.where(gc > 0, gs / np.maximum(gc, 1), np.nan)
+        for row in mean:
+            kernels.fill_nan_1d(row)
         e = _loo_quadratic(np.log(np.maximum(mean, 1e-30)))
-        return c > 0, e * np.sqrt(np.maximum(c, 1) / 1.5) / sigma
+        return (gc > 0), e * np.sqrt(np.maximum(gc, 1) / 1.5) / sigma, grp
 
-    def sub_range(a, b):
-        return ((a + int(t0)) // S) - first, ((b - 1 + int(t0)) // S) - first + 1
-
+    per_sub = max(1, SUB_DUMPS // S)
+    okp, zp, _, gp = excess(1)                 # parts: k = 1, gp = arange
+    oks, zsub, _, gsub = excess(per_sub)       # sub-blocks
+    cand = np.zeros((P, m), np.bool_)
     for L in lengths:
-        for j, a, b in _blocks(t0, n, int(L)):
-            q0, q1 = sub_range(a, b)
-            ok, zs, zm = excess(q0, q1)
-            if not ok.any():
-                continue
-            sc = MAD_TO_SIGMA * np.median(np.abs(zm[ok] - np.median(zm[ok])))
-            hit = ok & (zs > z * max(1.0, sc))
-            if hit.any():
-                refine(hit, q0, q1)
-    for i, (k, a, b) in enumerate(_blocks(t0, n, int(bandpass_dumps))):
-        hit = fine_excess(bp[i], z, protect)
-        if not hit.any():
-            continue
-        # in the sub-blocks where the channel stands out of its neighbours' quadratic
-        q, q1 = sub_range(a, b)
-        while q < q1:
-            r1 = min(q1, q - (subs[q][0] % per_sub) + per_sub)
-            ok, zs = fine_z(q, r1)
-            keep = hit & ok & (zs > REFINE_SIGMA)
-            if keep.any():
-                for r in range(q, r1):
-                    okp, zp = fine_z(r, r + 1)
-                    kp = keep & okp & (zp > PART_SIGMA)
-                    if kp.any():
-                        qa, qb = subs[r][1], subs[r][2]
-                        out[qa:qb] |= kp[None, :] & ~ex[qa:qb]
-            q = r1
+        ok, zs, zm, grp = excess(int(L) // S)
+        with np.errstate(all="ignore"):
+            med = _row_medians(zm, ok)
+            sc = MAD_TO_SIGMA * _row_medians(np.abs(zm - med[:, None]), ok)
+        sc = np.where(np.isfinite(sc), np.maximum(1.0, sc), np.inf)
+        hit = ok & (zs > z * sc[:, None])
+        cand |= hit[grp]
+    # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
+    # the parts where it stands out by PART_SIGMA
+    flags = cand & (oks & (zsub > REFINE_SIGMA))[gsub] & okp & (zp > PART_SIGMA)
+    # narrow emitters on steep slopes: the bandpass block's fine test, placed in time
+    # by the symmetric leave-one-out excess of the sub-block and part means
+    nb = bp.shape[0]
+    fine = np.zeros((nb, m), np.bool_)
+    for i in range(nb):
+        fine[i] = fine_excess(bp[i], z, protect)
+    if fine.any():
+        fs_ok, fs_z, fs_g = fine_z(per_sub)
+        fp_ok, fp_z, _ = fine_z(1)
+        flags |= fine[pblock] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g] & fp_ok & (fp_z > PART_SIGMA)
+    if flags.any():
+        prow_of = np.repeat(np.arange(P), plen)
+        out[:] = flags[prow_of] & ~ex
     return out
+
+
+def _row_medians(a, ok):
+    """Median of each row of a over its ok entries (NaN for none)."""
+    out = np.empty(a.shape[0])
+    kernels.masked_row_medians(np.ascontiguousarray(a, dtype=np.float64), np.ascontiguousarray(ok), out)
+    return out
+
+
+def _running_mean(v, half):
+    """Mean of v over the window c - half .. c + half clipped to the ends."""
+    n = v.shape[0]
+    cs = np.concatenate(([0.0], np.cumsum(v)))
+    c = np.arange(n)
+    lo, hi = np.maximum(0, c - half), np.minimum(n, c + half + 1)
+    return (cs[hi] - cs[lo]) / (hi - lo)
 
 
 def _baselines(bp, half_width):
@@ -298,7 +329,7 @@ def _baselines(bp, half_width):
     more than 3 robust sigma of that difference over the band) left out.  The
     quadratic is fitted once: near a sharp knee it is poor, and the scatter of its
     residual there would make a second pass reject the clean channels instead.
-    Where its median absolute misfit over the window exceeds the running median's
+    Where its mean absolute misfit over the window exceeds the running median's
     (steps, knees) the second baseline is the running median too."""
     med = np.empty(bp.shape, np.float64)
     quad = np.empty(bp.shape, np.float64)
@@ -313,12 +344,10 @@ def _baselines(bp, half_width):
         fit = np.empty_like(lb)
         kernels.local_quadratic(lb, w, half_width, lm, fit)
         # where the quadratic follows the band worse than the running median (steps,
-        # sharp knees: the median of the absolute misfits over the window is larger),
+        # sharp knees: the mean absolute misfit over the window is larger),
         # the running median alone counts
-        s_med = np.empty_like(lb)
-        s_quad = np.empty_like(lb)
-        kernels.running_median(np.abs(d), half_width, s_med)
-        kernels.running_median(np.abs(lb - fit), half_width, s_quad)
+        s_med = _running_mean(np.abs(d), half_width)
+        s_quad = _running_mean(np.abs(lb - fit), half_width)
         quad[i] = np.where(s_quad < s_med, np.exp(fit), med[i])
     return med, quad
 
@@ -327,15 +356,15 @@ def _loo_quadratic(lb):
     """lb(c) less its prediction (6 s_1 + 3 s_2 - 2 s_3) / 7 from the pairs' means
     s_j = (lb(c - j) + lb(c + j)) / 2 (see :func:`fine_excess`); 0 on the three
     outer channels at each end."""
-    m = lb.shape[0]
-    e = np.zeros(m)
+    m = lb.shape[-1]
+    e = np.zeros(lb.shape)
     if m < 7:
         return e
     c = np.arange(3, m - 3)
-    s1 = 0.5 * (lb[c - 1] + lb[c + 1])
-    s2 = 0.5 * (lb[c - 2] + lb[c + 2])
-    s3 = 0.5 * (lb[c - 3] + lb[c + 3])
-    e[c] = lb[c] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
+    s1 = 0.5 * (lb[..., c - 1] + lb[..., c + 1])
+    s2 = 0.5 * (lb[..., c - 2] + lb[..., c + 2])
+    s3 = 0.5 * (lb[..., c - 3] + lb[..., c + 3])
+    e[..., c] = lb[..., c] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
     return e
 
 
@@ -436,7 +465,7 @@ def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES
     ndarray of bool
     """
     out = np.zeros(grid.shape, np.bool_)
-    for dt, df in shapes:
-        thr = int(math.floor(z * math.sqrt(dt * df) * unit_per_sigma))
-        kernels.box_test(grid, lev0, detected, int(dt), int(df), thr, out)
+    sh = np.array(shapes, dtype=np.int64).reshape(-1, 2)
+    thrs = np.array([int(math.floor(z * math.sqrt(dt * df) * unit_per_sigma)) for dt, df in sh], np.int64)
+    kernels.box_test(grid, lev0, detected, sh, thrs, out)
     return out

@@ -471,6 +471,14 @@ def sumthreshold_halo(settings):
     (iterations 3, windows to 32, background_time 15, c_t = 8): 3 * (57 + 44) =
     303, rounded up to 304 dumps.
 
+    With the bandpass divided out first (``bandpass_dumps`` = T), the residual at a
+    dump depends on its block's bandpass, a median over the block and half a block
+    on each side (reach 3 T / 2, :func:`rfisieve.detect.bandpass.bandpass_reach`),
+    so the detections reach that much further; the persistence test's blocks nest
+    in the bandpass blocks (its result at a dump depends on that block's window
+    only); the compact boxes add their height less one (2 dumps).  For the L band
+    (T = 256, boxes of up to 3 dumps): 303 + 384 + 2 = 689, rounded up to 696.
+
     Parameters
     ----------
     settings : dict
@@ -493,9 +501,10 @@ def sumthreshold_halo(settings):
     halo = it * (r_st + r_b)
     tb = int(s.get("bandpass_dumps", 0) or 0)
     if tb:
+        # the residual at a dump depends on its block's bandpass: reach 3 T / 2
         halo += bandpass_reach(tb)
-        if s.get("persist_dumps", 0):
-            halo += max(block_lengths(s.get("persist_dumps", 0), tb) or (0,))
+        # the persistence test's blocks nest in the bandpass blocks: its result at a
+        # dump depends on that block's window only (3 T / 2), already inside
     if s.get("compact_sigma", 0.0):
         halo += max(dt for dt, _ in COMPACT_SHAPES) - 1
     return int(-(-halo // ct) * ct)
