@@ -187,7 +187,10 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     values : ndarray (ntime, nchan)
         Power x (not divided by the bandpass).
     exclude, detected : ndarray of bool
-        Samples left out (invalid, flagged upstream) and already detected ones.
+        Samples left out (invalid, flagged upstream), and detections left out of
+        the block means (the flagger passes those more than ``STRONG_SIGMA`` above
+        its background: they are flagged already, and an intermittent strong
+        emitter's channel is not flagged between its pulses for them).
     bp, rowblock
         From :func:`block_bandpass` with ``bandpass_dumps``.
     t0 : int
@@ -214,15 +217,18 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     if not (sigma > 0) or n == 0 or m < 16:
         return out
     bases = _baselines(bp, int(half_width))
-    # sums over aligned parts of S dumps (every sample not excluded, detected ones
-    # too: leaving them out would bias a partly detected channel's mean low)
+    # sums over aligned parts of S dumps of the samples neither excluded nor in
+    # ``detected`` (the caller passes the strong detections only: leaving out every
+    # detection would bias a partly detected weak channel's mean low, keeping strong
+    # ones would let a radar's bright pulses flag its channel between them)
+    det = np.ascontiguousarray(detected, dtype=np.bool_)
     S = min(PART_DUMPS, min(int(L) for L in lengths))
     parts = _blocks(t0, n, S)
     P = len(parts)
     ssum = np.empty((P, m), np.float64)
     scnt = np.empty((P, m), np.int64)
     for q, (_, a, b) in enumerate(parts):
-        kernels.block_sums(x, ex, ex, a, b, ssum[q], scnt[q])
+        kernels.block_sums(x, ex, det, a, b, ssum[q], scnt[q])
     pidx = np.array([k for k, _, _ in parts], np.int64)          # absolute part numbers
     prow = np.array([a for _, a, _ in parts], np.int64)          # first row of each part
     plen = np.array([b - a for _, a, b in parts], np.int64)
@@ -352,7 +358,7 @@ def _baselines(bp, half_width):
     return med, quad
 
 
-def _loo_quadratic(lb):
+def _loo_quadratic(lb, nb=None):
     """lb(c) less its prediction (6 s_1 + 3 s_2 - 2 s_3) / 7 from the pairs' means
     s_j = (lb(c - j) + lb(c + j)) / 2 (see :func:`fine_excess`); 0 on the three
     outer channels at each end."""
@@ -360,15 +366,16 @@ def _loo_quadratic(lb):
     e = np.zeros(lb.shape)
     if m < 7:
         return e
+    nb = lb if nb is None else nb
     c = np.arange(3, m - 3)
-    s1 = 0.5 * (lb[..., c - 1] + lb[..., c + 1])
-    s2 = 0.5 * (lb[..., c - 2] + lb[..., c + 2])
-    s3 = 0.5 * (lb[..., c - 3] + lb[..., c + 3])
+    s1 = 0.5 * (nb[..., c - 1] + nb[..., c + 1])
+    s2 = 0.5 * (nb[..., c - 2] + nb[..., c + 2])
+    s3 = 0.5 * (nb[..., c - 3] + nb[..., c + 3])
     e[..., c] = lb[..., c] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
     return e
 
 
-def _loo_excess(lb):
+def _loo_excess(lb, nb=None):
     """lb's excess over leave-one-out predictions: the smaller of the excess over
     the symmetric quadratic of :func:`_loo_quadratic` and the larger of the excesses
     over the straight lines through the three channels on either side,
@@ -379,12 +386,13 @@ def _loo_excess(lb):
     channels straddle a rounded knee may miss it).  Returns
     (min excess, symmetric excess); 0 on the three outer channels at each end."""
     m = lb.shape[0]
-    sym = _loo_quadratic(lb)
+    nb = lb if nb is None else nb
+    sym = _loo_quadratic(lb, nb)
     if m < 7:
         return sym, sym
     c = np.arange(3, m - 3)
-    left = lb[c] - (4 * lb[c - 1] + lb[c - 2] - 2 * lb[c - 3]) / 3.0
-    right = lb[c] - (4 * lb[c + 1] + lb[c + 2] - 2 * lb[c + 3]) / 3.0
+    left = lb[c] - (4 * nb[c - 1] + nb[c - 2] - 2 * nb[c - 3]) / 3.0
+    right = lb[c] - (4 * nb[c + 1] + nb[c + 2] - 2 * nb[c + 3]) / 3.0
     e = np.zeros(m)
     e[c] = np.minimum(sym[c], np.maximum(left, right))
     return e, sym
@@ -427,11 +435,26 @@ def fine_excess(bp_row, z, protect=None):
     if m < 16:
         return hit
     e, sym = _loo_excess(lb)
-    e, sym = e[3:m - 3], sym[3:m - 3]
-    sc = MAD_TO_SIGMA * np.median(np.abs(sym - np.median(sym)))
+    inner = sym[3:m - 3]
+    sc = MAD_TO_SIGMA * np.median(np.abs(inner - np.median(inner)))
     if not sc > 0:
         return hit
-    hit[3:m - 3] = e > z * sc
+    # the predictions give the outer neighbours negative weight, so a strong carrier
+    # three channels away would lift a clean channel's excess: as neighbours, the
+    # channels found are replaced by the linear interpolation of the others, and the
+    # test is repeated until the channels found no longer change (at most 4 times)
+    found = e > z * sc
+    for _ in range(4):
+        if not found.any():
+            break
+        nb = np.where(found, np.nan, lb)
+        kernels.fill_nan_1d(nb)
+        e, _ = _loo_excess(lb, nb)
+        now = e > z * sc
+        if np.array_equal(now, found):
+            break
+        found = now
+    hit[3:m - 3] = found[3:m - 3]
     if protect is not None:
         hit &= ~np.asarray(protect, dtype=np.bool_)
     return hit

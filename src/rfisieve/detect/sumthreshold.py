@@ -351,6 +351,10 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
     return _flag(values, mask, invalid=invalid, t0=t0, noise_only=True, **s)[1]
 
 
+#: Detections this far above the background (in noise sigma) are left out of the
+#: persistence test's block means (see rfisieve.detect.bandpass.persistent_flags).
+STRONG_SIGMA = 4.0
+
 _local = threading.local()
 
 
@@ -438,7 +442,8 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         prev |= compact_flags(rg, lev0, prev, unit / float(chi1), float(compact_sigma))
     if bandpass_dumps and persist_dumps:
         lengths = block_lengths(persist_dumps, bandpass_dumps)
-        prev |= persistent_flags(raw, base_ex, prev, bp, rowblock, int(t0), sig, lengths,
+        strong = prev & (rg > STRONG_SIGMA * unit / float(chi1))
+        prev |= persistent_flags(raw, base_ex, strong, bp, rowblock, int(t0), sig, lengths,
                                  int(baseline_channels), float(persist_sigma),
                                  None if protect is None else np.asarray(protect, dtype=np.bool_),
                                  int(bandpass_dumps))
