@@ -84,11 +84,65 @@ def test_inspect_a_scan(tmp_path, capsys):
     assert "absent" in out
 
 
-def test_inspect_json(tmp_path, capsys):
+def test_inspect_json_gives_numbers_under_plain_keys(tmp_path, capsys):
+    import json
+
     path = tmp_path / "s.h5"
     make_scan(path, ntime=20, nchan=8, nprod=1, s2=True, accumulations=16)
     assert cli.main(["inspect", "--json", str(path)]) == 0
-    assert '"present: SK per dump"' in capsys.readouterr().out
+    info = json.loads(capsys.readouterr().out)
+    # make_scan: 20 dumps of 2 s from 1.8e9 s, 8 channels of 500 kHz from 1400 MHz
+    assert (info["ntime"], info["nchan"], info["nprod"]) == (20, 8, 1)
+    assert info["duration_s"] == 38.0 and info["integration_time_s"] == 2.0
+    assert info["freq_min_hz"] == 1.40e9 and info["channel_width_hz"] == 500e3
+    assert info["accumulations"] == 16 and info["has_s2"] is True and info["gaps"] == []
+    assert info["auto_products"] == ["q01h-q01h"] and info["upstream_flagged_fraction"] is None
+    assert all(" " not in key for key in info)
+
+
+def test_run_config_option_has_one_name(tmp_path):
+    # --run-config everywhere; run's old --config-file still works but is not shown.
+    for command in ("run", "inspect", "plan", "detect", "merge"):
+        res = _rfisieve(command, "--help")
+        assert "--run-config" in res.stdout and "--config-file" not in res.stdout, command
+    cfg = tmp_path / "run.yaml"
+    cfg.write_text("workers: 3\n")
+    scan = tmp_path / "a.h5"
+    make_scan(scan, ntime=10, nchan=8, nprod=1)
+    for option in ("--run-config", "--config-file"):
+        args = cli.build_parser(plugins=False).parse_args(["run", option, str(cfg), "--inputs", str(scan)])
+        assert args.run_config == str(cfg)
+
+
+def test_required_options_show_no_default_none():
+    for command in _subcommands():
+        res = _rfisieve(command, "--help")
+        assert "default: None" not in res.stdout, command
+
+
+def test_a_subcommand_module_that_fails_to_import_is_loud(tmp_path):
+    # A broken install must not look like a missing command.
+    (tmp_path / "rfisieve_broken_plugin.py").write_text("import numpy\nraise ImportError('half installed')\n")
+    code = ("import sys; from rfisieve import cli; "
+            "cli.PLUGIN_MODULES = cli.PLUGIN_MODULES + ('rfisieve_broken_plugin',); "
+            "sys.exit(cli.main(sys.argv[1:]))")
+    env = tool_env()
+    env["PYTHONPATH"] = str(tmp_path)
+    res = subprocess.run([sys.executable, "-c", code, "--help"], capture_output=True, text=True, env=env,
+                         cwd=ROOT, timeout=120)
+    _one_line_error(res, "rfisieve_broken_plugin", "half installed", "reinstall")
+
+
+def test_simulate_into_a_non_empty_folder_refuses_without_force(tmp_path):
+    out = tmp_path / "night"
+    out.mkdir()
+    (out / "notes.txt").write_text("an earlier night\n")
+    args = ["simulate", str(out), "--scans", "1", "--dumps", "16", "--channels", "16", "--quiet"]
+    _one_line_error(_rfisieve(*args), str(out), "not empty", "--force")
+    assert sorted(p.name for p in out.iterdir()) == ["notes.txt"]
+    res = _rfisieve(*args, "--force")
+    assert res.returncode == 0, res.stderr
+    assert "wrote 1 scan to" in res.stdout  # not "1 scans"
 
 
 def _one_line_error(res, *words):
@@ -132,6 +186,14 @@ def test_bad_run_override_is_a_one_line_error(tmp_path):
     path = tmp_path / "a.h5"
     make_scan(path, ntime=10, nchan=8, nprod=1)
     _one_line_error(_rfisieve("run", "--inputs", str(path), "--set", "workers=0", "--dry-run"), "workers")
+
+
+def test_set_error_is_blamed_on_set(tmp_path):
+    path = tmp_path / "a.h5"
+    make_scan(path, ntime=10, nchan=8, nprod=1)
+    res = _rfisieve("run", "--inputs", str(path), "--set", "chunk_dump=100", "--dry-run")
+    _one_line_error(res, "--set", "chunk_dump")
+    assert "config/config.yaml" not in res.stderr
 
 
 def test_run_builds_a_resumable_snakemake_command(tmp_path, capsys):

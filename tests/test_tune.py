@@ -1,5 +1,5 @@
-"""rfisieve tune: the sweep writes <band>.suggested.yaml beside the band config and
-leaves the band config and the input scans byte-identical; the injection helper."""
+"""rfisieve tune: the sweep writes <band>.suggested.yaml into --out (comments of the
+band config kept) and leaves the band config and the input scans byte-identical; the injection helper."""
 
 import hashlib
 import shutil
@@ -33,10 +33,14 @@ def test_tune_writes_suggestion_and_touches_nothing(tmp_path, capsys):
     assert rc == 0
     for p, h in before.items():
         assert _sha(p) == h, f"{p} was modified"
-    sugg = bands / "L.suggested.yaml"
+    sugg = tmp_path / "out" / "L.suggested.yaml"  # where --out says
     assert sugg.is_file()
     text = sugg.read_text()
     assert text.startswith("# Suggested band config for band L")
+    # the band file's unit comments are kept
+    for line in (bands / "L.yaml").read_text().splitlines():
+        if line.lstrip().startswith(("chi1:", "sigma:", "eta:")):
+            assert "#" + line.split("#", 1)[1] in text
     data = yaml.safe_load(text)
     assert data["band"] == "L"
     for section, key in (("sumthreshold", "chi1"), ("kurtosis", "sigma"), ("growth", "eta")):
@@ -46,7 +50,7 @@ def test_tune_writes_suggestion_and_touches_nothing(tmp_path, capsys):
 
     load_band_file(sugg, "L")
     assert (tmp_path / "out" / "tune_L.png").stat().st_size > 0
-    assert sorted(p.name for p in bands.iterdir()) == ["L.suggested.yaml", "L.yaml"]
+    assert sorted(p.name for p in bands.iterdir()) == ["L.yaml"]
     out = capsys.readouterr().out
     assert "occupancy" in out and "recall" in out
 

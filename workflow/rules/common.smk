@@ -18,6 +18,12 @@ WORKERS = int(RUN["workers"])
 LOCAL_DASK = not RUN["scheduler"].startswith("tcp://")
 # Workers of a dask.distributed cluster do not run on Snakemake's cores.
 DASK_THREADS = WORKERS if LOCAL_DASK else 1
+# Detect jobs that run at once on one machine (--cores // threads per job): they share
+# its memory budget. On a cluster each job has its node (its own memory request).
+try:
+    JOBS_AT_ONCE = max(1, int(workflow.cores) // DASK_THREADS) if workflow.local_exec else 1
+except Exception:  # no --cores (e.g. a dry run): one job's view
+    JOBS_AT_ONCE = 1
 
 # scan name -> path, scan name -> band (read from the files' `band` attribute).
 SCANS = {rfio.scan_name(p): p for p in rfconfig.expand_inputs(RUN["inputs"], source="inputs")}

@@ -24,4 +24,4 @@ for _detector in ("sk", "sumthreshold"):
         shell:
             "{RFISIEVE} detect {input.scan:q} --detector {params.detector} --plan {input.plan:q}"
             " --band-config {input.band:q} {params.run} --workers {threads}"
-            " --scheduler {RUN[scheduler]:q} --out {output:q} 2> {log:q}"
+            " --scheduler {RUN[scheduler]:q} --jobs-at-once {JOBS_AT_ONCE} --out {output:q} 2> {log:q}"

@@ -3,12 +3,13 @@
 Subcommands written here: ``run`` (the whole workflow through Snakemake), ``inspect``,
 ``thresholds`` and the stage commands the workflow rules call (``plan``, ``detect``,
 ``merge``).  Other modules add theirs through ``register_cli(subparsers)``; they are
-imported only when the parser is built, and a module that is missing or broken is
-left out rather than breaking the others.  Heavy libraries (numpy, h5py, dask) are
+imported only when the parser is built, and one that fails to import is an error
+(:class:`PluginImportError`): a broken install must not look like a missing command.  Heavy libraries (numpy, h5py, dask) are
 imported inside the commands so that ``rfisieve --help`` stays fast.
 """
 
 import argparse
+import contextlib
 import importlib
 import json
 import os
@@ -50,11 +51,26 @@ class _TopFormatter(argparse.RawDescriptionHelpFormatter, _Formatter):
     pass
 
 
+class PluginImportError(RfisieveError):
+    """A module that adds subcommands cannot be imported (a broken installation)."""
+
+
+#: The run-config option: one name in every subcommand.  ``--config-file`` (the name
+#: ``run`` once had) is still accepted, hidden from the help.
+RUN_CONFIG_HELP = "run config YAML (keys as in config/config.yaml)"
+
+
+def add_run_config_option(p, default_text="built-in defaults"):
+    """Add ``--run-config FILE`` (and the hidden alias ``--config-file``) to parser ``p``."""
+    p.add_argument("--run-config", dest="run_config", metavar="FILE",
+                   help=f"{RUN_CONFIG_HELP}; default: {default_text}")
+    p.add_argument("--config-file", dest="run_config", help=argparse.SUPPRESS)
+
+
 # -- shared options ------------------------------------------------------------
 def _add_run_options(p):
     g = p.add_argument_group("run settings (defaults: rfisieve.config.defaults.RUN_DEFAULTS)")
-    g.add_argument("--run-config", metavar="FILE",
-                   help="run config YAML (keys as in config/config.yaml); default: built-in defaults")
+    add_run_config_option(g)
     g.add_argument("--set", dest="sets", action="append", default=[], metavar="KEY=VALUE",
                    help="override one run-config key, value in YAML; dotted keys reach into "
                         "layout, e.g. --set chunk_dumps=512 --set layout.data=/vis (repeatable)")
@@ -66,6 +82,10 @@ def _add_parallel_options(p):
     p.add_argument("--scheduler", metavar="S",
                    help="threads | processes | synchronous | tcp://host:port of a dask.distributed "
                         "scheduler (overrides the run config)")
+    p.add_argument("--jobs-at-once", type=int, default=1, metavar="J",
+                   help="jobs like this one that run at the same time on this machine: they share its "
+                        "memory budget (25 %% of the memory, divided by J); the workflow passes "
+                        "--cores // workers")
 
 
 def _run_settings(args):
@@ -152,7 +172,9 @@ def cmd_detect(args):
     run = _run_settings(args)
     band, _ = _band_settings(args, args.scan, run)
     plan = _read_plan(args.plan)
-    engine.detect(args.scan, args.out, args.detector, band, run, plan=plan,
+    if args.jobs_at_once < 1:
+        raise ConfigError("--jobs-at-once", f"{args.jobs_at_once}: expected a whole number >= 1")
+    engine.detect(args.scan, args.out, args.detector, band, run, plan=plan, jobs=args.jobs_at_once,
                   progress=_Progress(f"detect {args.detector} {os.path.basename(args.scan)}"))
     return 0
 
@@ -191,32 +213,72 @@ def _products_text(names, limit=6):
     return f"{len(names)} ({shown}{', ...' if len(names) > limit else ''})"
 
 
-def inspect_scan(path, layout=None):
-    """Summary of one scan file as a dict of printable values (see ``rfisieve inspect``)."""
+def scan_facts(path, layout=None):
+    """What a scan file holds, as plain numbers and strings (``rfisieve inspect --json``).
+
+    Keys: ``file``, ``band``, ``ntime``, ``nchan``, ``nprod``, ``dtype``, ``complex``,
+    ``auto_products``, ``cross_products`` (lists), ``time_start_utc``, ``time_stop_utc``
+    (ISO 8601), ``time_start_s``, ``time_stop_s`` (seconds since 1970 UTC),
+    ``duration_s``, ``integration_time_s``, ``gaps`` (list of ``{after_dump, seconds}``,
+    where detection does not run across), ``freq_min_hz``, ``freq_max_hz``,
+    ``channel_width_hz``, ``accumulations``, ``presum``, ``d``,
+    ``upstream_flagged_fraction`` (null without ``/flags``), ``has_s2``.
+    """
     from rfisieve.io import scan as io
 
     with io.open_scan(path, layout) as scan:
-        autos = [p for p, a in zip(scan.products, scan.autos) if a]
-        crosses = [p for p, a in zip(scan.products, scan.autos) if not a]
-        f0, f1 = float(scan.freq.min()), float(scan.freq.max())
-        frac = _upstream_fraction(scan)
-        dtype = scan.dtype
+        t0, t1 = float(scan.time.min()), float(scan.time.max())
         return {
             "file": str(path),
-            "shape (time, chan, prod)": f"{scan.ntime} x {scan.nchan} x {scan.nprod}",
-            "dtype": f"{dtype} ({'complex visibilities, amplitude used' if scan.is_complex else 'real power'})",
             "band": scan.band,
-            "auto products": _products_text(autos),
-            "cross products": _products_text(crosses),
-            "time span (UTC)": f"{_utc(scan.time.min())} to {_utc(scan.time.max())} "
-                               f"({float(scan.time.max() - scan.time.min()) / 60:.1f} min)",
-            "integration time": f"{scan.integration_time:g} s per dump",
-            "frequency range": f"{f0 / 1e6:.4f} to {f1 / 1e6:.4f} MHz (channel centres)",
-            "channel width": f"{scan.channel_width / 1e3:g} kHz",
-            "accumulations": f"{scan.accumulations} raw spectra per dump (presum N = {scan.presum}, d = {scan.d:g})",
-            "upstream flags": "none (no /flags dataset)" if frac is None else f"{100 * frac:.3f} % flagged",
-            "/s2 (sum of squared powers)": "present: SK per dump" if scan.has_s2 else "absent: SK over blocks of dumps",
+            "ntime": scan.ntime,
+            "nchan": scan.nchan,
+            "nprod": scan.nprod,
+            "dtype": str(scan.dtype),
+            "complex": bool(scan.is_complex),
+            "auto_products": [p for p, a in zip(scan.products, scan.autos) if a],
+            "cross_products": [p for p, a in zip(scan.products, scan.autos) if not a],
+            "time_start_utc": _utc(t0),
+            "time_stop_utc": _utc(t1),
+            "time_start_s": t0,
+            "time_stop_s": t1,
+            "duration_s": t1 - t0,
+            "integration_time_s": float(scan.integration_time),
+            "gaps": [{"after_dump": int(i), "seconds": float(sec)} for i, sec in scan.gaps],
+            "freq_min_hz": float(scan.freq.min()),
+            "freq_max_hz": float(scan.freq.max()),
+            "channel_width_hz": float(scan.channel_width),
+            "accumulations": int(scan.accumulations),
+            "presum": int(scan.presum),
+            "d": float(scan.d),
+            "upstream_flagged_fraction": _upstream_fraction(scan),
+            "has_s2": bool(scan.has_s2),
         }
+
+
+def inspect_scan(path, layout=None):
+    """Summary of one scan file as a dict of printable values (see ``rfisieve inspect``)."""
+    f = scan_facts(path, layout)
+    frac = f["upstream_flagged_fraction"]
+    gaps = f["gaps"]
+    return {
+        "file": f["file"],
+        "shape (time, chan, prod)": f"{f['ntime']} x {f['nchan']} x {f['nprod']}",
+        "dtype": f"{f['dtype']} ({'complex visibilities, amplitude used' if f['complex'] else 'real power'})",
+        "band": f["band"],
+        "auto products": _products_text(f["auto_products"]),
+        "cross products": _products_text(f["cross_products"]),
+        "time span (UTC)": f"{f['time_start_utc']} to {f['time_stop_utc']} ({f['duration_s'] / 60:.1f} min)",
+        "time gaps": "none" if not gaps else "; ".join(
+            f"{g['seconds']:g} s after dump {g['after_dump']}" for g in gaps[:4]) + (
+            f"; ... ({len(gaps)} in all)" if len(gaps) > 4 else "") + ": each stretch is flagged alone",
+        "integration time": f"{f['integration_time_s']:g} s per dump",
+        "frequency range": f"{f['freq_min_hz'] / 1e6:.4f} to {f['freq_max_hz'] / 1e6:.4f} MHz (channel centres)",
+        "channel width": f"{f['channel_width_hz'] / 1e3:g} kHz",
+        "accumulations": f"{f['accumulations']} raw spectra per dump (presum N = {f['presum']}, d = {f['d']:g})",
+        "upstream flags": "none (no /flags dataset)" if frac is None else f"{100 * frac:.3f} % flagged",
+        "/s2 (sum of squared powers)": "present: SK per dump" if f["has_s2"] else "absent: SK over blocks of dumps",
+    }
 
 
 def cmd_inspect(args):
@@ -224,7 +286,7 @@ def cmd_inspect(args):
     status = 0
     for i, path in enumerate(args.scans):
         try:
-            info = inspect_scan(path, run.get("layout"))
+            info = (scan_facts if args.json else inspect_scan)(path, run.get("layout"))
         except RfisieveError as err:
             print(f"rfisieve: error: {err}", file=sys.stderr)
             status = 2
@@ -280,7 +342,7 @@ def snakemake_command(args, root):
     """``(command, outdir)``: the ``snakemake`` command line that ``rfisieve run`` starts from ``root``."""
     from rfisieve.config import load as config
 
-    config_file = os.path.abspath(args.config_file) if args.config_file else os.path.join(
+    config_file = os.path.abspath(args.run_config) if args.run_config else os.path.join(
         root, "config", "config.yaml")
     overrides = config.parse_set(args.sets)
     for key in ("bands_dir", "previous_run"):  # paths given here are relative to the current directory
@@ -290,7 +352,7 @@ def snakemake_command(args, root):
         overrides["inputs"] = [os.path.abspath(os.path.expanduser(p)) for p in args.inputs]
     if args.outdir:
         overrides["outdir"] = os.path.abspath(args.outdir)
-    run = config.load_run_config(config_file, overrides)
+    run = config.load_run_config(config_file, overrides, overrides_source=_overrides_source(args))
     # Checked here so that a glob with no match is one line, before Snakemake starts;
     # Snakemake runs in ``root``, so relative inputs of a config file are relative to it.
     # Corrupt scans and bands without a config are found here too, in the same way.
@@ -301,6 +363,7 @@ def snakemake_command(args, root):
                                  source="--inputs" if args.inputs else config_file)
     for band in sorted({io.scan_band(p, run["layout"]) for p in paths}):
         config.load_band(os.path.join(root, run["bands_dir"]), band)
+    args.night_paths, args.night_run = paths, run
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", os.path.join(root, "Snakefile"),
            "--directory", root, "--configfile", config_file,
            "--workflow-profile", _resolve_profile(root, args.profile),
@@ -316,7 +379,14 @@ def snakemake_command(args, root):
     return cmd, os.path.join(root, run["outdir"])
 
 
+def _overrides_source(args):
+    given = [name for name, value in (("--set", args.sets), ("--inputs", args.inputs), ("--outdir", args.outdir))
+             if value]
+    return " / ".join(given) or "--set"
+
+
 def cmd_run(args):
+    from rfisieve.cli import guard
     from rfisieve.config import load as config
 
     root = config.repo_root()
@@ -327,15 +397,21 @@ def cmd_run(args):
     if args.print_command:
         print(" ".join(_quote(c) for c in cmd))
         return 0
-    print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
-    t0 = time.monotonic()
-    proc = subprocess.Popen(cmd, cwd=str(root))
-    try:
-        rc = proc.wait()
-    except KeyboardInterrupt:  # Snakemake got the Ctrl-C too: let it mark unfinished jobs
-        print("rfisieve run: interrupted; waiting for snakemake to stop its jobs", file=sys.stderr)
-        rc = proc.wait()
-        raise RfisieveError("interrupted; run the same command again to finish the run") from None
+    # One run per outdir, from any checkout; leftovers of killed runs cleared (cli/guard.py).
+    with contextlib.nullcontext() if args.dry_run else guard.OutdirLock(outdir, root) as lock:
+        if lock is not None:
+            if lock.stale:
+                guard.say(f"removed the stale lock of {outdir} (held by {guard._describe(lock.stale)}, "
+                          "no longer running)")
+            guard.clear_stale_snakemake_lock(root)
+            guard.remove_leftovers(outdir)
+            guard.memory_advice(args.night_paths, args.night_run,
+                                os.path.join(str(root), args.night_run["bands_dir"]), args.cores)
+        print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
+        t0 = time.monotonic()
+        with guard.ChildGuard() as child:
+            rc = child.start(cmd, cwd=str(root)).wait()
+        child.check()  # SIGINT/SIGTERM/SIGHUP: snakemake was stopped; one line, exit 128 + signal
     if rc != 0:
         raise RfisieveError(f"the workflow stopped (snakemake exit status {rc}); read the failing job's "
                             "log under <outdir>/logs, fix it and rerun: finished scans are kept")
@@ -344,7 +420,9 @@ def cmd_run(args):
         for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
                           ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
                           ("logs", "logs/<stage>/<scan>.log")):
-            print(f"  {what:<14} {os.path.join(outdir, rel)}", file=sys.stderr)
+            path = os.path.join(outdir, rel)
+            if os.path.exists(path.split("<")[0] if "<" in path else path):  # e.g. not after --unlock
+                print(f"  {what:<14} {path}", file=sys.stderr)
     return 0
 
 
@@ -379,8 +457,7 @@ def build_parser(plugins=True):
     p.add_argument("--outdir", metavar="DIR", help="output directory; default: outdir of the run config")
     p.add_argument("--cores", type=int, default=os.cpu_count() or 1, metavar="N",
                    help="CPU cores Snakemake may use in total (each detect job takes `workers` of them)")
-    p.add_argument("--config-file", metavar="FILE",
-                   help="run config YAML; default: config/config.yaml of the repository")
+    add_run_config_option(p, "config/config.yaml of the repository")
     p.add_argument("--set", dest="sets", action="append", default=[], metavar="KEY=VALUE",
                    help="override one run-config key (YAML value), e.g. --set workers=4 (repeatable)")
     p.add_argument("--profile", metavar="P",
@@ -461,23 +538,43 @@ def build_parser(plugins=True):
     for name in PLUGIN_MODULES if plugins else ():
         try:
             module = importlib.import_module(name)
-        except ImportError as err:
-            if getattr(err, "name", None) == name:
-                continue  # not written yet
-            print(f"rfisieve: warning: {name} cannot be imported ({err}); its commands are missing",
-                  file=sys.stderr)
-            continue
+        except Exception as err:  # noqa: BLE001 - any failure means a broken installation
+            raise PluginImportError(
+                f"{name} cannot be imported ({type(err).__name__}: {' '.join(str(err).split())}); "
+                "its commands are missing: the installation is broken, reinstall with "
+                "`pip install -e <checkout>`") from err
         register = getattr(module, "register_cli", None)
-        if register is not None:
-            register(sub)
+        if register is None:
+            raise PluginImportError(f"{name} has no register_cli(); its commands are missing")
+        before = set(sub.choices)
+        register(sub)
+        for command in set(sub.choices) - before:
+            _plain_defaults(sub.choices[command])
     return parser
+
+
+def _plain_defaults(parser):
+    """Show defaults the way the own commands do: never "(default: None)".
+
+    A module that uses argparse's ArgumentDefaultsHelpFormatter gets ours instead,
+    and a help text that names ``%(default)s`` of an option without a default loses it.
+    """
+    if parser.formatter_class is argparse.ArgumentDefaultsHelpFormatter:
+        parser.formatter_class = _Formatter
+    for action in parser._actions:
+        if action.help and action.default is None and "(default: %(default)s)" in action.help:
+            action.help = action.help.replace(" (default: %(default)s)", "").replace("(default: %(default)s)", "")
 
 
 def main(argv=None):
     """Entry point of the ``rfisieve`` command; returns the exit status."""
     argv = list(sys.argv[1:] if argv is None else argv)
     # The other modules import numpy and friends: load them only when they may be needed.
-    parser = build_parser(plugins=not (argv and argv[0] in OWN_COMMANDS))
+    try:
+        parser = build_parser(plugins=not (argv and argv[0] in OWN_COMMANDS))
+    except PluginImportError as err:
+        print(f"rfisieve: error: {err}", file=sys.stderr)
+        return 2
     args = parser.parse_args(argv)
     if getattr(args, "func", None) is None:
         parser.print_help()
@@ -488,7 +585,7 @@ def main(argv=None):
         rc = args.func(args)
     except RfisieveError as err:
         print(f"rfisieve: error: {' '.join(str(err).split())}", file=sys.stderr)
-        return 2
+        return getattr(err, "status", 2)
     except KeyboardInterrupt:
         print("rfisieve: interrupted", file=sys.stderr)
         return 130

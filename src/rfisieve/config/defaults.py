@@ -1,78 +1,61 @@
-"""Band settings: the defaults every band config starts from, and how they are merged.
+"""Band and run settings: the defaults every config starts from, and how they are merged.
 
-A band config (``config/bands/<band>.yaml``) holds only what differs from these
-defaults; :func:`band_settings` returns the full, merged dictionary that the engine
-and the detectors' callers use.  The JSON schema in ``workflow/schemas/band.schema.yaml``
-describes the same keys; keep the two in step.
+The defaults have one home: the ``default`` of each key in the packaged JSON schemas
+(``rfisieve/data/band.schema.yaml`` and ``config.schema.yaml``), which Snakemake's
+``validate`` fills in for the workflow and :data:`BAND_DEFAULTS` / :data:`RUN_DEFAULTS`
+are read from here.  A band config (``config/bands/<band>.yaml``) holds only what differs
+from these defaults; :func:`band_settings` returns the full, merged dictionary that the
+engine and the detectors' callers use.  A new key takes one edit: its schema entry with
+a ``default`` (and a line in the shipped files if users should see it).
 """
 
 import copy
+from pathlib import Path
 
-#: Defaults for every band.  Units are in the key names or comments.
-BAND_DEFAULTS = {
-    "band": None,            # band name, as in the scan's ``band`` attribute
-    "description": "",
-    "kurtosis": {
-        "enabled": True,
-        "sigma": 3.5,        # thresholds where a Gaussian would hold norm.sf(sigma) per tail
-        "pfa": None,         # per-tail false-alarm probability; overrides sigma when set
-        "method": "auto",    # threshold method passed to sk_thresholds (see rfisieve.detect.kurtosis)
-        "block_dumps": 16,   # M of the block estimator, used when the scan has no /s2
-    },
-    "sumthreshold": {
-        "enabled": True,
-        "chi1": 8.0,             # first threshold chi_1, in robust noise sigma
-        "rho": 1.5,              # window threshold ratio: chi_M = chi_1 / rho**log2(M)
-        "max_window_time": 32,   # largest window along time, dumps (a power of two)
-        "max_window_freq": 128,  # largest window along frequency, channels (power of two)
-        "iterations": 3,         # background fits; the threshold is lowered step by step
-        "start_scale": 4.0,      # threshold factor of the first iteration, falling to 1
-        "background_time": 15.0, # smoothing scale of the background along time, dumps
-        "background_freq": 5.0,  # smoothing scale of the background along frequency, channels
-        "bandpass_dumps": 0,     # dumps per block of the median bandpass divided out first (0 = off;
-                                 # on in the L band, measured there: see config/bands/L.yaml)
-        "persist_dumps": 0,      # longest block of the persistence test, dumps (0 = off)
-        "persist_sigma": 6.0,    # persistence threshold, sigma of a block mean
-        "baseline_channels": 64, # half-width of the running median over channels, channels
-        "compact_sigma": 0.0,    # compact-box threshold, sigma of a normalised box sum (0 = off)
-    },
-    "growth": {
-        "enabled": True,
-        "eta": 0.1,              # SIR aggressiveness eta (0 = no growth, 1 = flag all)
-        "time": True,            # grow along time
-        "freq": True,            # grow along frequency
-        "reach_time": 16,        # longest reach of a growth interval to either side, dumps
-        "reach_freq": 4,         # longest reach of a growth interval to either side, channels
-    },
-    "cuts": {
-        "channel_limit": 0.8,    # flag a whole channel of a product above this fraction
-        "dump_limit": 0.8,       # flag a whole dump of a product above this fraction
-    },
-    "protect": [],               # [{start_mhz, stop_mhz, reason, source}] protected sky lines
-    "known_bad": [],             # [{start_mhz, stop_mhz, reason}] known-bad ranges
-    "emitters": [],              # [{name, start_mhz, stop_mhz, source}] site emitters
-}
+import yaml
 
-#: Defaults of the run config (config/config.yaml); the top-level key names
+#: The packaged schemas (the only copies; the Snakefile validates against them too).
+DATA_DIR = Path(__file__).resolve().parents[1] / "data"
+SCHEMA_NAMES = ("config.schema.yaml", "band.schema.yaml", "emitters.schema.yaml")
+
+_SCHEMAS = {}
+
+
+def schema_path(name):
+    """Path of the packaged schema ``name`` (e.g. ``"band.schema.yaml"``)."""
+    return DATA_DIR / name
+
+
+def schema(name):
+    """The parsed schema ``name`` (read once per process; do not modify it)."""
+    if name not in _SCHEMAS:
+        with open(schema_path(name), encoding="utf-8") as fh:
+            _SCHEMAS[name] = yaml.safe_load(fh)
+    return _SCHEMAS[name]
+
+
+def schema_defaults(node):
+    """The defaults of a schema object: ``default`` of each property, objects recursed.
+
+    An object property with ``properties`` gives the dict of its own properties'
+    defaults (so nested sections are complete); other properties give their ``default``;
+    a property without one is left out.
+    """
+    out = {}
+    for key, sub in node.get("properties", {}).items():
+        if sub.get("type") == "object" and "properties" in sub:
+            out[key] = schema_defaults(sub)
+        elif "default" in sub:
+            out[key] = copy.deepcopy(sub["default"])
+    return out
+
+
+#: Defaults for every band (from band.schema.yaml; units in its descriptions).
+BAND_DEFAULTS = schema_defaults(schema("band.schema.yaml"))
+
+#: Defaults of the run config (from config.schema.yaml); the top-level key names
 #: inputs, outdir, chunk_dumps and workers are a contract (DESIGN.md 2.4).
-RUN_DEFAULTS = {
-    "inputs": [],
-    "outdir": "results",
-    "chunk_dumps": 4096,
-    "workers": 2,
-    "scheduler": "threads",      # threads | processes | synchronous | tcp://host:port
-    "bands_dir": "config/bands",
-    "previous_run": None,        # a previous run.csv to compare occupancy with
-    "layout": {
-        "data": "/data",
-        "time": "/time",
-        "freq": "/freq",
-        "products": "/products",
-        "flags": "/flags",
-        "s2": "/s2",
-        "axes": ["time", "freq", "product"],  # axis order of data, flags and s2
-    },
-}
+RUN_DEFAULTS = schema_defaults(schema("config.schema.yaml"))
 
 
 def merge(defaults, override):

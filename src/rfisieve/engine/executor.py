@@ -7,7 +7,8 @@ from functools import partial
 import dask
 import numpy as np
 
-from rfisieve.engine.plan import _chunks, detect_halo, halo_span, noise_windows
+from rfisieve.engine.plan import (detect_halo, halo_span, noise_windows, segment_chunks, segment_of,
+                                  split_at_gaps, window_span)
 from rfisieve.engine.planes import (_assemble, _detect_product, _flag_product, _meta, _noise_task,
                                     _planes, _prepare)
 from rfisieve.errors import RfisieveError
@@ -83,105 +84,180 @@ def _windows(chunks, size):
         yield chunks[i:i + size]
 
 
-#: Share of the machine's memory that the chunks in flight may use.
+#: Share of the machine's memory that the chunks in flight may use, in all: jobs that
+#: run at the same time (``jobs``) divide it between them (:func:`memory_budget`).
 MEMORY_SHARE = 0.25
 
+#: Working bytes per sample of a chunk in work, beyond its stored samples: float32
+#: values, masks, background, residual and its integer grid (measured: bench/throughput.py).
+WORK_BYTES = 20
 
-def _window_chunks(scan, rows, wanted):
-    """Chunks per window: ``wanted``, fewer when memory would not hold them.
 
-    A chunk of ``rows`` dumps costs its stored samples plus about 20 bytes per sample of
-    working arrays (float32 values, masks, background, residual and its integer grid) per
-    product in work.
-    """
-    import psutil
+def memory_budget(jobs=1, total=None):
+    """Bytes one job's chunks in flight may use: MEMORY_SHARE of the machine's memory
+    (``total``, default: this machine's), divided between ``jobs`` jobs that run at once."""
+    if total is None:
+        import psutil
 
+        total = psutil.virtual_memory().total
+    return MEMORY_SHARE * total / max(1, int(jobs))
+
+
+def chunk_cost(scan):
+    """Bytes per dump of a chunk in work: its stored samples plus WORK_BYTES per sample."""
     itemsize = scan.dtype.itemsize + (1 if scan.has_flags else 0) + (4 if scan.has_s2 else 0)
-    per_chunk = rows * scan.nchan * scan.nprod * (itemsize + 20)
-    budget = MEMORY_SHARE * psutil.virtual_memory().total
-    if 2 * per_chunk > budget:  # a window and the one read ahead
-        raise RfisieveError(
-            f"{scan.path}: one chunk of {rows} dumps (with halos) x {scan.nchan} channels x {scan.nprod} "
-            f"products needs ~{per_chunk / 2**30:.1f} GiB, more than {MEMORY_SHARE:.0%} of this machine's "
-            "memory; lower chunk_dumps in the run config")
-    return max(1, min(int(wanted), int(budget // (2 * per_chunk))))
+    return scan.nchan * scan.nprod * (itemsize + WORK_BYTES)
 
 
-def _noise_prepass(scan, band, meta, sched, what):
-    """Per-product SumThreshold noise sigma: the median over the pre-pass windows."""
-    tasks = []
+def memory_advice(scan, chunk, halo, jobs=1, total=None):
+    """None when a window of one chunk and the one read ahead fit in this job's share of
+    memory; else the one-line advice (what is needed, what the share is, what to set)."""
+    per_dump = chunk_cost(scan)
+    rows = chunk + 2 * halo
+    budget = memory_budget(jobs, total)
+    need = 2 * rows * per_dump  # a window of at least one chunk and the one read ahead
+    if need <= budget:
+        return None
+    total = budget * max(1, int(jobs)) / MEMORY_SHARE
+    fit = int(budget // (2 * per_dump)) - 2 * halo  # the largest chunk_dumps that fits
+    what = (f"set chunk_dumps to at most {fit}" if fit >= 1 else
+            "even a chunk of one dump does not fit: run fewer jobs at once (fewer --cores, or more "
+            "workers per job) or use a machine with more memory")
+    gib = 2 ** 30
+    return (f"{scan.path}: a chunk of {chunk} dumps + 2 x {halo} halo dumps, x {scan.nchan} channels x "
+            f"{scan.nprod} products, needs ~{rows * per_dump / gib:.2f} GiB, twice that "
+            f"(~{need / gib:.2f} GiB) with the next chunk read ahead; this job's share is "
+            f"{budget / gib:.2f} GiB ({MEMORY_SHARE:.0%} of {total / gib:.1f} GiB, shared by {int(jobs)} "
+            f"job{'s' if int(jobs) != 1 else ''} at once): {what}")
+
+
+def _window_chunks(scan, chunk, halo, wanted, jobs=1):
+    """Chunks per window: ``wanted``, fewer when this job's share of memory would not hold
+    them (:func:`memory_budget`); a one-line RfisieveError with the advice when not even
+    one chunk fits (:func:`memory_advice`)."""
+    advice = memory_advice(scan, chunk, halo, jobs)
+    if advice is not None:
+        raise RfisieveError(advice)
+    per_chunk = (chunk + 2 * halo) * chunk_cost(scan)
+    return max(1, min(int(wanted), int(memory_budget(jobs) // (2 * per_chunk))))
+
+
+def _noise_prepass(scan, band, meta, sched, what, segments):
+    """Per-stretch, per-product SumThreshold noise sigma: the median over the pre-pass
+    windows of each contiguous stretch (dump numbers counted from the stretch's start)."""
+    tasks, owner = [], []
     task = dask.delayed(partial(_noise_task, band=band, meta=meta))
-    for a, b in noise_windows(scan.ntime):
-        block = scan.read(a, b, what)
-        for p in range(scan.nprod):
-            tasks.append(task(sched.put(_planes(block, 0, b - a, p)), p=p, t0=a))
-    values = np.array(dask.compute(*tasks, **sched.kwargs), dtype=np.float64)
-    values = values.reshape(-1, scan.nprod).T
+    for k, (s, e) in enumerate(segments):
+        for a, b in noise_windows(e - s):
+            block = scan.read(s + a, s + b, what)
+            for p in range(scan.nprod):
+                tasks.append(task(sched.put(_planes(block, 0, b - a, p)), p=p, t0=a))
+                owner.append((k, p))
+    values = dask.compute(*tasks, **sched.kwargs)
     sigmas = []
-    for row in values:
-        row = row[np.isfinite(row)]
-        sigmas.append(float(np.median(row)) if row.size else 1.0)
+    for k in range(len(segments)):
+        per_seg = []
+        for p in range(scan.nprod):
+            row = np.array([v for v, o in zip(values, owner) if o == (k, p)], dtype=np.float64)
+            row = row[np.isfinite(row)]
+            per_seg.append(float(np.median(row)) if row.size else 1.0)
+        sigmas.append(per_seg)
     return sigmas
 
 
-def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None):
-    """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
+def run_windows(sched, chunks, ntime, halo, size, read, build, sink, progress=None, first=None,
+                segments=None):
+    """The one executor of every stage: windows of chunks, read ahead, computed on dask.
 
-    Chunks go in windows (:meth:`_Scheduler.window`): the driver reads each window's dumps (with
-    halos) in one read, one window ahead in a reader thread, and sends each
-    (chunk x product) plane to the dask scheduler.  With ``grow`` (the merge halo) each
-    task runs both detectors and the merge (:func:`_flag_product`) on a halo widened by
-    ``grow``, and ``sink`` gets ``{"final": (mask, hist)}``.  Returns the scan metadata
-    used, including the pre-pass noise sigmas (``sigma``).
+    Chunks go in windows of ``size`` chunks.  ``read(a, b)`` reads rows [a, b) of the
+    scan (a window's chunks with ``halo`` dumps each side, clamped to the scan); it runs
+    one window ahead in a reader thread.  ``build(block, base, c0, c1, a, b)`` returns the
+    dask graph of chunk [c0, c1) whose halo rows [a, b) start at row ``a - base`` of the
+    block; ``sink(c0, c1, result)`` takes each chunk's computed result in chunk order.
+    ``first()``, when given, runs while the first window is being read.  With
+    ``segments`` (contiguous stretches ``[start, stop)``) halos stop at the gaps between
+    them (:func:`rfisieve.engine.plan.halo_span`); no chunk may straddle one.
     """
     from concurrent.futures import ThreadPoolExecutor
 
+    windows = list(_windows(chunks, size))
+    spans = [window_span(w, halo, ntime, segments) for w in windows]
+    done = 0
+    with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
+        ahead = reader.submit(read, *spans[0]) if windows else None
+        if first is not None:
+            first()
+        for k, window in enumerate(windows):
+            block = ahead.result()
+            if k + 1 < len(windows):
+                ahead = reader.submit(read, *spans[k + 1])
+            base = spans[k][0]
+            graph = [build(block, base, c0, c1, *halo_span(c0, c1, halo, ntime, segments)) for c0, c1 in window]
+            results = dask.compute(*graph, **sched.kwargs)
+            del block
+            for (c0, c1), result in zip(window, results):
+                sink(c0, c1, result)
+                done += 1
+                if progress:
+                    progress(done, len(chunks))
+
+
+def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None, jobs=1):
+    """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
+
+    Chunks go in windows (:meth:`_Scheduler.window`, :func:`run_windows`): the driver reads
+    each window's dumps (with halos) in one read, one window ahead in a reader thread,
+    and sends each (chunk x product) plane to the dask scheduler.  With ``grow`` (the
+    merge halo) each task runs both detectors and the merge (:func:`_flag_product`) on a
+    halo widened by ``grow``, and ``sink`` gets ``{"final": (mask, hist)}``.  Each
+    contiguous stretch of the scan (``scan.segments``) is flagged on its own: dump
+    numbers count from its first dump, its noise is its own, halos stop at its ends.
+    ``jobs`` is the number of such jobs running at once on this machine
+    (:func:`_window_chunks`).  Returns the scan metadata used, including the pre-pass
+    noise sigmas (``sigma``: per product, or per stretch and product when there are gaps).
+    """
     meta = _meta(scan, band)
     what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
     halo = plan["halo"] if plan else detect_halo(band, scan)
     if grow is not None:
         halo += grow
-    chunks = plan["chunks"] if plan else _chunks(scan.ntime, int(run["chunk_dumps"]))
-    rows = max(c1 - c0 for c0, c1 in chunks) + 2 * halo
-    windows = list(_windows(chunks, _window_chunks(scan, rows, sched.window(scan.nprod))))
-    spans = [halo_span(w[0][0], w[-1][1], halo, scan.ntime) for w in windows]
-    done = 0
-    with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
+    segments = scan.segments
+    chunks = split_at_gaps(plan["chunks"], segments) if plan else segment_chunks(
+        segments, int(run["chunk_dumps"]))
+    longest = max(c1 - c0 for c0, c1 in chunks)
+    size = _window_chunks(scan, longest, halo, sched.window(scan.nprod), jobs)
+    names = ["final"] if grow is not None else list(detectors)
+    prep_task = dask.delayed(partial(_prepare, meta=meta))
+    tasks = {}  # stretch -> (flag task, detect task), band and meta bound once (dask
+    #             would walk these nested dicts for every task)
+
+    def noise():
         # the first window is read while the noise pre-pass runs
-        ahead = reader.submit(scan.read, *spans[0], what) if windows else None
+        sigmas = [None] * len(segments)
         if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
-            meta["sigma"] = _noise_prepass(scan, band, meta, sched, what)
-        # band and meta bound once: dask would walk these nested dicts for every task
-        flag_task = dask.delayed(partial(_flag_product, band=band, meta=meta))
-        prep_task = dask.delayed(partial(_prepare, meta=meta))
-        det_task = dask.delayed(partial(_detect_product, band=band, meta=meta))
-        for k, window in enumerate(windows):
-            block = ahead.result()
-            if k + 1 < len(windows):
-                ahead = reader.submit(scan.read, *spans[k + 1], what)
-            base = spans[k][0]
-            graph = []
-            for c0, c1 in window:
-                a, b = halo_span(c0, c1, halo, scan.ntime)
-                if grow is not None:
-                    parts = [flag_task(sched.put(_planes(block, a - base, b - base, p)), p=p,
-                                       t0=a, core=(c0 - a, c1 - a), grow=grow)
-                             for p in range(scan.nprod)]
-                    graph.append([dask.delayed(_assemble)(parts, scan.nprod)])
-                    continue
-                preps = [prep_task(sched.put(_planes(block, a - base, b - base, p)), p=p)
-                         for p in range(scan.nprod)]
-                per_det = []
-                for det in detectors:
-                    parts = [det_task(preps[p], p=p, detector=det, t0=a, core=(c0 - a, c1 - a))
-                             for p in range(scan.nprod)]
-                    per_det.append(dask.delayed(_assemble)(parts, scan.nprod))
-                graph.append(per_det)
-            results = dask.compute(*graph, **sched.kwargs)
-            del block
-            for (c0, c1), per_det in zip(window, results):
-                sink(c0, c1, dict(zip(["final"] if grow is not None else detectors, per_det)))
-                done += 1
-                if progress:
-                    progress(done, len(chunks))
+            sigmas = _noise_prepass(scan, band, meta, sched, what, segments)
+            meta["sigma"] = sigmas[0] if len(segments) == 1 else sigmas
+        for k, sig in enumerate(sigmas):
+            m = meta if sig is None else dict(meta, sigma=sig)
+            tasks[k] = (dask.delayed(partial(_flag_product, band=band, meta=m)),
+                        dask.delayed(partial(_detect_product, band=band, meta=m)))
+
+    def build(block, base, c0, c1, a, b):
+        k = segments.index(list(segment_of(c0, segments)))
+        flag_task, det_task = tasks[k]
+        t0 = a - segments[k][0]  # dump numbers count from the stretch's first dump
+        if grow is not None:
+            parts = [flag_task(sched.put(_planes(block, a - base, b - base, p)), p=p,
+                               t0=t0, core=(c0 - a, c1 - a), grow=grow)
+                     for p in range(scan.nprod)]
+            return [dask.delayed(_assemble)(parts, scan.nprod)]
+        preps = [prep_task(sched.put(_planes(block, a - base, b - base, p)), p=p)
+                 for p in range(scan.nprod)]
+        return [dask.delayed(_assemble)([det_task(preps[p], p=p, detector=det, t0=t0, core=(c0 - a, c1 - a))
+                                         for p in range(scan.nprod)], scan.nprod)
+                for det in detectors]
+
+    run_windows(sched, chunks, scan.ntime, halo, size, lambda a, b: scan.read(a, b, what), build,
+                lambda c0, c1, per_det: sink(c0, c1, dict(zip(names, per_det))), progress, first=noise,
+                segments=segments)
     return meta

@@ -1,6 +1,16 @@
 """Planning a scan: chunks of dumps and the halo rules of each stage.
 
 See :mod:`rfisieve.engine` for the halo rule and the two ways through a scan.
+
+Gaps in time
+------------
+A scan whose ``/time`` jumps by more than ``GAP_FACTOR`` integration times
+(:mod:`rfisieve.io.scan`) is flagged as contiguous stretches (``scan.segments``), each
+on its own, as if it were a scan of its own: chunks never straddle a gap
+(:func:`segment_chunks`), halos stop at gaps (:func:`halo_span`), dump numbers that
+align SumThreshold's background cells and the kurtosis blocks count from the stretch's
+first dump, the noise pre-pass and the per-channel cut are per stretch.  So a stretch
+gets exactly the mask it would get alone (tests/test_gaps.py).
 """
 
 from pathlib import Path
@@ -67,9 +77,42 @@ def _chunks(ntime, chunk_dumps):
     return [[s, min(s + chunk_dumps, ntime)] for s in range(0, ntime, chunk_dumps)]
 
 
-def halo_span(c0, c1, halo, ntime):
-    """Rows [a, b) read for chunk [c0, c1) with ``halo`` dumps each side, clamped to the scan."""
-    return max(0, c0 - halo), min(ntime, c1 + halo)
+def segment_chunks(segments, chunk_dumps):
+    """Chunks of ``chunk_dumps`` dumps within each contiguous stretch ``[start, stop)``:
+    a chunk never straddles a gap."""
+    return [[s + a, s + b] for s, e in segments for a, b in _chunks(e - s, chunk_dumps)]
+
+
+def split_at_gaps(chunks, segments):
+    """``chunks`` with every chunk that straddles a stretch boundary cut there."""
+    out = []
+    for c0, c1 in chunks:
+        for s, e in segments:
+            a, b = max(c0, s), min(c1, e)
+            if a < b:
+                out.append([a, b])
+    return out
+
+
+def segment_of(dump, segments):
+    """The stretch ``(start, stop)`` that holds dump number ``dump``."""
+    for s, e in segments:
+        if s <= dump < e:
+            return s, e
+    raise ValueError(f"dump {dump} lies in no stretch of {segments}")
+
+
+def halo_span(c0, c1, halo, ntime, segments=None):
+    """Rows [a, b) read for chunk [c0, c1) with ``halo`` dumps each side, clamped to the
+    scan, or to the chunk's contiguous stretch when ``segments`` are given."""
+    lo, hi = (0, ntime) if not segments else segment_of(c0, segments)
+    return max(lo, c0 - halo), min(hi, c1 + halo)
+
+
+def window_span(window, halo, ntime, segments=None):
+    """Rows [a, b) read for a window of chunks: every chunk's :func:`halo_span`."""
+    spans = [halo_span(c0, c1, halo, ntime, segments) for c0, c1 in window]
+    return min(a for a, _ in spans), max(b for _, b in spans)
 
 
 def _check_run(run):
@@ -96,7 +139,9 @@ def plan_scan(scan_path, band, run):
             "chunk_dumps": int(run["chunk_dumps"]),
             "halo": detect_halo(band, scan),
             "sir_halo": merge_halo(band),
-            "chunks": _chunks(scan.ntime, int(run["chunk_dumps"])),
+            "chunks": segment_chunks(scan.segments, int(run["chunk_dumps"])),
+            "segments": scan.segments,
+            "gaps": [{"after_dump": i, "seconds": sec} for i, sec in scan.gaps],
             "has_s2": bool(scan.has_s2),
             "products": list(scan.products),
             "autos": [bool(a) for a in scan.autos],

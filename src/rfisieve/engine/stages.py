@@ -10,9 +10,9 @@ import numpy as np
 
 from rfisieve import bits
 from rfisieve.detect.masks import channel_cut
-from rfisieve.engine.executor import _local_get, _run_detection, _Scheduler, _windows
+from rfisieve.engine.executor import _run_detection, _Scheduler, run_windows
 from rfisieve.engine.pages import small_pages
-from rfisieve.engine.plan import _check_band_matches, _check_run, _chunks, halo_span, merge_halo
+from rfisieve.engine.plan import _check_band_matches, _check_run, merge_halo, segment_chunks, segment_of
 from rfisieve.engine.planes import DETECTORS, SK_EDGES, _extra_bits, _merge_plane, _meta
 from rfisieve.errors import RfisieveError, ScanError
 from rfisieve.io.maskfile import (_copy_sk_diag, _create_mask_file, _write_attrs, _write_noise,
@@ -36,8 +36,11 @@ def _fail_clean(fn):
 
 @small_pages
 @_fail_clean
-def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
-    """Run one detector over a scan; write its partial mask (its bit + the invalid bit)."""
+def detect(scan_path, out_path, detector, band, run, plan=None, progress=None, jobs=1):
+    """Run one detector over a scan; write its partial mask (its bit + the invalid bit).
+
+    ``jobs``: detect jobs running at once on this machine; they share the memory budget.
+    """
     if detector not in DETECTORS:
         raise RfisieveError(f"unknown detector {detector!r}; expected one of {', '.join(DETECTORS)}")
     _check_run(run)
@@ -55,7 +58,7 @@ def detect(scan_path, out_path, detector, band, run, plan=None, progress=None):
                 flags[c0:c1] = out
                 hist[...] += h
 
-            used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink)
+            used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink, jobs=jobs)
             _write_noise(f, used)
             if detector == "sk":
                 _write_sk_diag(f, hist, meta, band, SK_EDGES)
@@ -70,14 +73,21 @@ def _input_and_static(scan, a, b, meta):
     return _extra_bits((b - a, scan.nchan, scan.nprod), flags, meta["static"])
 
 
-def _channel_cut_pass(flags, counts, ntime, limit, chunk_dumps):
-    """Second pass: set the cut bit on channels flagged above ``limit`` over the scan."""
+def _channel_cut_pass(flags, counts, segments, limit, chunk_dumps):
+    """Second pass: set the cut bit on channels flagged above ``limit`` over each
+    contiguous stretch (``counts[k]``: flagged samples per channel of stretch ``k``)."""
+    for (start, stop), seg_counts in zip(segments, counts):
+        _channel_cut_stretch(flags, seg_counts, start, stop, limit, chunk_dumps)
+
+
+def _channel_cut_stretch(flags, counts, start, stop, limit, chunk_dumps):
+    ntime = stop - start
     cut = channel_cut(counts, ntime, limit)  # (chan, prod)
     cut &= counts < ntime  # a channel flagged throughout gains nothing
     if not cut.any():
         return
-    for c0 in range(0, ntime, chunk_dumps):
-        c1 = min(ntime, c0 + chunk_dumps)
+    for c0 in range(start, stop, chunk_dumps):
+        c1 = min(stop, c0 + chunk_dumps)
         block = flags[c0:c1]
         block[cut[None, :, :] & (block == 0)] = bits.CUT  # only what the cut adds
         flags[c0:c1] = block
@@ -94,7 +104,7 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
     _check_run(run)
     chunk_dumps = int(run["chunk_dumps"])
     partial_paths = [Path(p) for p in partial_paths]
-    with open_scan(scan_path, run.get("layout")) as scan:
+    with open_scan(scan_path, run.get("layout")) as scan, _Scheduler(run) as sched:
         _check_band_matches(scan, band)
         meta = _meta(scan, band)
         parts = []
@@ -111,32 +121,31 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 _create_mask_file(f, scan, chunk_dumps)
                 _write_attrs(f, band, band_source)
                 flags = f["flags"]
-                counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
-                chunks = _chunks(scan.ntime, chunk_dumps)
+                segments = scan.segments  # contiguous stretches: growth and cuts stop at gaps
+                counts = np.zeros((len(segments), scan.nchan, scan.nprod), dtype=np.int64)
                 halo = merge_halo(band)
-                workers = max(1, int(run.get("workers") or 1))
-                local = _local_get("synchronous" if run.get("scheduler") == "synchronous" else "threads")
-                done = 0
-                for window in _windows(chunks, max(2, 2 * workers)):
-                    lo, hi = halo_span(window[0][0], window[-1][1], halo, scan.ntime)
+
+                def read(lo, hi):
                     det = np.zeros((hi - lo, scan.nchan, scan.nprod), dtype=np.uint8)
                     for h in parts:
                         det |= h["flags"][lo:hi]
-                    extra = _input_and_static(scan, lo, hi, meta)
-                    graph = []
-                    for c0, c1 in window:
-                        a, b = (x - lo for x in halo_span(c0, c1, halo, scan.ntime))
-                        core = (c0 - lo - a, c1 - lo - a)
-                        graph.append(dask.delayed(_stack)(
-                            [dask.delayed(_merge_plane)(det[a:b, :, p], extra[a:b, :, p], band, core)
-                             for p in range(scan.nprod)]))
-                    for (c0, c1), out in zip(window, dask.compute(*graph, scheduler=local, num_workers=workers)):
-                        flags[c0:c1] = out
-                        counts += (out != 0).sum(axis=0)
-                        done += 1
-                        if progress:
-                            progress(done, len(chunks))
-                _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+                    return lo, det, _input_and_static(scan, lo, hi, meta)
+
+                def build(block, base, c0, c1, a, b):
+                    lo, det, extra = block
+                    core = (c0 - a, c1 - a)
+                    return dask.delayed(_stack)(
+                        [dask.delayed(_merge_plane)(sched.put(det[a - lo:b - lo, :, p]),
+                                                    sched.put(extra[a - lo:b - lo, :, p]), band, core)
+                         for p in range(scan.nprod)])
+
+                def sink(c0, c1, out):
+                    flags[c0:c1] = out
+                    counts[segments.index(list(segment_of(c0, segments)))] += (out != 0).sum(axis=0)
+
+                run_windows(sched, segment_chunks(segments, chunk_dumps), scan.ntime, halo,
+                            max(2, 2 * sched.workers), read, build, sink, progress, segments=segments)
+                _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
                 _copy_sk_diag(parts, f, meta, band, SK_EDGES)
                 for h in parts:
                     if "noise_sigma" in h.attrs:
@@ -146,7 +155,7 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 h.close()
 
 
-def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
+def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, jobs=1):
     """Both detectors and the merge in one pass over the scan (no partial masks).
 
     Gives the same mask file as :func:`detect` for each detector followed by
@@ -158,12 +167,12 @@ def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None):
     """
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    _flag_one_pass(scan_path, out_path, band, run, band_source, progress)
+    _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs)
 
 
 @small_pages
 @_fail_clean
-def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
+def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1):
     from concurrent.futures import ThreadPoolExecutor
 
     _check_run(run)
@@ -174,13 +183,14 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
             _create_mask_file(f, scan, chunk_dumps)
             _write_attrs(f, band, band_source)
             flags = f["flags"]
-            counts = np.zeros((scan.nchan, scan.nprod), dtype=np.int64)
+            segments = scan.segments
+            counts = np.zeros((len(segments), scan.nchan, scan.nprod), dtype=np.int64)
             hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
             pending = []
 
             def write(c0, c1, out):
                 flags[c0:c1] = out
-                counts[...] += (out != 0).sum(axis=0)
+                counts[segments.index(list(segment_of(c0, segments)))] += (out != 0).sum(axis=0)
 
             with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
                 def sink(c0, c1, res):
@@ -191,9 +201,9 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress):
                     pending.append(writer.submit(write, c0, c1, out))
 
                 used = _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink,
-                                      grow=merge_halo(band))
+                                      grow=merge_halo(band), jobs=jobs)
                 for fut in pending:
                     fut.result()
-            _channel_cut_pass(flags, counts, scan.ntime, band["cuts"]["channel_limit"], chunk_dumps)
+            _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
             _write_sk_diag(f, hist, used, band, SK_EDGES)
             _write_noise(f, used)

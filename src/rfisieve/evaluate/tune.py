@@ -228,7 +228,7 @@ def run_tune(band_name, scans, bands_dir="config/bands", out_dir=None, values=5,
     with open(out_dir / f"tune_{band_name}.json", "w", encoding="utf-8") as fh:
         json.dump({"meta": meta, "rows": rows,
                    "suggestion": {f"{s}.{k}": v for (s, k), v in suggestion.items()}}, fh, indent=2)
-    sugg_path = write_suggestion(bands_dir, band_name, source, suggestion, meta, rows)
+    sugg_path = write_suggestion(out_dir, band_name, source, suggestion, meta, rows)
     return {"rows": rows, "suggestion": suggestion, "plot": str(plot), "table": table,
             "suggested_path": str(sugg_path)}
 
@@ -278,19 +278,19 @@ def plot_rows(rows, suggestion, path, band_name):
     plt.close(fig)
 
 
-def write_suggestion(bands_dir, band_name, source, suggestion, meta, rows):
-    """Write ``<bands_dir>/<band>.suggested.yaml`` (never ``<band>.yaml``); return its path."""
-    import yaml
+def write_suggestion(out_dir, band_name, source, suggestion, meta, rows):
+    """Write ``<out_dir>/<band>.suggested.yaml`` (never ``<band>.yaml``); return its path.
 
+    The band config's text is kept, comments and all, with the suggested values put in
+    (:func:`rfisieve.config.load.set_yaml_values`).
+    """
     from rfisieve.config import load as config
 
-    path = Path(bands_dir) / f"{band_name}.suggested.yaml"
+    path = Path(out_dir) / f"{band_name}.suggested.yaml"
     if path.resolve() == Path(source["path"]).resolve():  # pragma: no cover - guarded by the name
         raise RfisieveError(f"{path}: refusing to overwrite the band config")
-    data = yaml.safe_load(source["text"]) or {}
-    for (section, key), value in suggestion.items():
-        data.setdefault(section, {})[key] = float(value)
-    config.validate(data, "band.schema.yaml", path)
+    body = config.set_yaml_values(source["text"], {sk: float(v) for sk, v in suggestion.items()})
+    config.validate(config.parse_yaml(body) or {}, "band.schema.yaml", path)
     header = [
         f"# Suggested band config for band {band_name}, written by `rfisieve tune` on "
         f"{time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}.",
@@ -317,7 +317,7 @@ def write_suggestion(bands_dir, band_name, source, suggestion, meta, rows):
                           f"{100 * cur[0]['occupancy']:.3f} % -> {100 * pick[0]['occupancy']:.3f} %, recall "
                           f"{cur[0]['recall'] or 0:.4f} -> {pick[0]['recall'] or 0:.4f})")
     header.append(f"# To use it: review, then copy over {Path(source['path']).name} yourself.")
-    text = "\n".join(header) + "\n\n" + yaml.safe_dump(data, sort_keys=False, allow_unicode=True)
+    text = "\n".join(header) + "\n\n" + body
     with atomic_output(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
         fh.write(text)
     return path
@@ -359,8 +359,9 @@ def register_cli(subparsers):
             "operator's eta). For each value: the occupancy on the real data, and the recall of\n"
             "synthetic interference of known strength (INR 1, 2, 5) injected into a copy of it.\n"
             "The input scans and the band config are never modified: the copies live in a\n"
-            "temporary directory, and the suggestion goes to <bands-dir>/<band>.suggested.yaml.\n"
-            "Writes a table (stdout), <out>/tune_<band>.png and <out>/tune_<band>.json.\n\n"
+            "temporary directory. Writes a table (stdout), <out>/tune_<band>.png,\n"
+            "<out>/tune_<band>.json and the suggestion <out>/<band>.suggested.yaml (the band\n"
+            "config with the suggested values put in, its comments kept).\n\n"
             "Suggestion: per parameter, the value of highest recall whose occupancy is at most\n"
             "the occupancy budget above the sweep's lowest occupancy."),
         epilog="example: rfisieve tune --band L --scans 'night1/*_L_*.h5' --out tune-L")
@@ -369,7 +370,8 @@ def register_cli(subparsers):
                    help="sample scan files (paths or globs) of that band")
     p.add_argument("--bands-dir", default="config/bands", metavar="DIR",
                    help="directory of the band configs (default: %(default)s)")
-    p.add_argument("--out", metavar="DIR", help="directory for the plot and the table (default: tune-<band>)")
+    p.add_argument("--out", metavar="DIR",
+                   help="directory for the plot, the table and the suggested band config (default: tune-<band>)")
     p.add_argument("--values", type=int, default=5, metavar="N",
                    help="values per parameter, centred on the current one (default: %(default)s)")
     p.add_argument("--max-dumps", type=int, default=2048, metavar="N",

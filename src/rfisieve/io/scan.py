@@ -6,34 +6,63 @@ Users whose files use other dataset names or axis orders describe them in the ru
 config's ``layout`` (see :data:`rfisieve.config.defaults.RUN_DEFAULTS`); nothing beyond that
 table is assumed.
 
+Checks beyond the shapes: ``/time`` strictly increasing (the first bad dump is
+named); a step of more than :data:`GAP_FACTOR` integration times is a gap, and the
+scan's contiguous stretches (:attr:`Scan.segments`) are flagged each on its own;
+``/flags`` boolean or integer; product names strings ``<inputA>-<inputB>``, each
+once; an ``/s2`` that holds no finite value is ignored with a warning (spectral
+kurtosis then runs over blocks of dumps), rather than making every sample invalid.
+
 Outputs are written to a temporary name in the destination directory and renamed
 when complete (:func:`atomic_output`), so an interrupted run never leaves a file that
-looks finished.
+looks finished.  Their temporary names match :data:`PARTIAL_GLOBS`, so that leftovers
+of a killed run can be found and removed (:func:`remove_partials`).
 """
 
 import contextlib
+import datetime
 import hashlib
 import os
+import re
+import sys
 import tempfile
 from pathlib import Path
 
 import h5py
 import numpy as np
 
+from rfisieve.config.load import scan_name  # noqa: F401  (re-exported: io.scan.scan_name)
 from rfisieve.errors import ScanError
 from rfisieve.io.hdf5 import attr_str as _attr_str
 from rfisieve.config.defaults import RUN_DEFAULTS
 
 AXES = ("time", "freq", "product")
 
+#: A step in ``/time`` longer than this many integration times is a gap: detection
+#: does not run across it (common practice: a dump is late by less than half its length).
+GAP_FACTOR = 1.5
 
-def scan_name(path):
-    """The scan's name: its file name without ``.h5`` (DESIGN.md 2.2 ``<scan>``)."""
-    name = Path(path).name
-    for suffix in (".h5", ".hdf5"):
-        if name.endswith(suffix):
-            return name[: -len(suffix)]
-    return name
+#: The documented form of a product name (DESIGN.md 2.1): ``<inputA>-<inputB>``.
+PRODUCT_NAME = re.compile(r"^[^\s-]+-[^\s-]+$")
+
+#: Temporary names of :func:`atomic_output` (hidden, in the destination directory):
+#: ``.<name>.partial.<random>[<suffix>]``, and ``.<name>.<random>.partial`` of older versions.
+PARTIAL_GLOBS = (".*.partial.*", ".*.partial")
+
+_WARNED = set()
+
+
+def warn(path, message):
+    """One warning line on stderr (once per file and message in a process)."""
+    if (str(path), message) not in _WARNED:
+        _WARNED.add((str(path), message))
+        print(f"rfisieve: warning: {path}: {message}", file=sys.stderr, flush=True)
+
+
+def _utc(t):
+    return datetime.datetime.fromtimestamp(float(t), datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
 
 
 def _layout(layout):
@@ -46,7 +75,17 @@ def _open_readonly(path):
     path = Path(path)
     if not path.exists():
         raise ScanError(path, "no such file")
-    if not h5py.is_hdf5(path):
+    if path.is_dir():
+        raise ScanError(path, "is a directory, not a scan file")
+    try:
+        with open(path, "rb"):
+            pass
+        is_hdf5 = h5py.is_hdf5(path)
+    except PermissionError:
+        raise ScanError(path, "cannot be read (permission denied)") from None
+    except OSError as err:
+        raise ScanError(path, f"cannot be read ({err.strerror or _short(err)})") from None
+    if not is_hdf5:
         raise ScanError(path, "not an HDF5 file (truncated, or another format)")
     try:
         return h5py.File(path, "r")
@@ -153,7 +192,7 @@ class Scan:
         else:
             if prod.shape != (self.nprod,):
                 raise ScanError(path, f"{prod.name} has shape {prod.shape}, expected ({self.nprod},)")
-            self.products = [_attr_str(p) for p in prod[()]]
+            self.products = self._product_names(prod)
         self.autos = np.array([_is_auto(p) for p in self.products], dtype=bool)
 
         self._flags = self._dataset("flags", required=False)
@@ -161,7 +200,17 @@ class Scan:
         for ds in (self._flags, self._s2):
             if ds is not None and ds.shape != data.shape:
                 raise ScanError(path, f"{ds.name} has shape {ds.shape}, expected {data.shape} like {data.name}")
+        if self._flags is not None and self._flags.dtype.kind not in "biu":
+            raise ScanError(path, f"{self._flags.name} has dtype {self._flags.dtype}; upstream flags must be "
+                                  "boolean or integer (nonzero = flagged)")
+        if self._s2 is not None and self._s2.dtype.kind not in "fiu":
+            raise ScanError(path, f"{self._s2.name} has dtype {self._s2.dtype}, expected float32")
         self.has_flags = self._flags is not None
+        self.warnings = []
+        if self._s2 is not None and not self._any_finite(self._s2):
+            self._note(f"{self._s2.name} holds no finite value; it is ignored and spectral kurtosis "
+                       "runs over blocks of dumps instead of per dump")
+            self._s2 = None
         self.has_s2 = self._s2 is not None
 
         attrs = {k: f.attrs[k] for k in f.attrs}
@@ -184,6 +233,59 @@ class Scan:
             raise ScanError(path, f"root attribute voltage = {voltage!r}, expected 'complex' or 'real'")
         self.voltage = voltage
         self.d = 1.0 if voltage == "complex" else 0.5
+        self._check_time()
+
+    def _note(self, message):
+        self.warnings.append(message)
+        warn(self.path, message)
+
+    def _product_names(self, prod):
+        """Product names as str, each of the form ``<inputA>-<inputB>`` and given once."""
+        if prod.dtype.kind not in "OSU":
+            raise ScanError(self.path, f"{prod.name} has dtype {prod.dtype}; product names must be strings "
+                                       "'<inputA>-<inputB>'")
+        names = []
+        for i, raw in enumerate(prod[()]):
+            if not isinstance(raw, (bytes, str, np.bytes_, np.str_)):
+                raise ScanError(self.path, f"{prod.name}[{i}] = {raw!r} is not a string '<inputA>-<inputB>'")
+            name = _attr_str(raw)
+            if not PRODUCT_NAME.match(name):
+                raise ScanError(self.path, f"{prod.name}[{i}] = {name!r} is not of the form '<inputA>-<inputB>' "
+                                           "(two input names without '-' or spaces, joined by '-')")
+            if name in names:
+                raise ScanError(self.path, f"{prod.name}[{i}] = {name!r} repeats {prod.name}[{names.index(name)}]")
+            names.append(name)
+        return names
+
+    def _any_finite(self, ds):
+        """Whether ``ds`` holds a finite value (stops at the first one: cheap when it does)."""
+        step = max(1, (1 << 20) // max(1, self.nchan * self.nprod))
+        for start in range(0, self.ntime, step):
+            if np.isfinite(self._read(ds, start, start + step)).any():
+                return True
+        return False
+
+    def _check_time(self):
+        """``/time`` strictly increasing; steps above GAP_FACTOR dumps split the scan."""
+        name, t = self.layout["time"], self.time
+        step = np.diff(t)
+        bad = np.flatnonzero(~(step > 0))
+        if bad.size:
+            i = int(bad[0]) + 1
+            how = (f"repeats at dump {i} ({_utc(t[i])}, the time of dump {i - 1})" if step[i - 1] == 0 else
+                   f"goes back in time at dump {i} ({_utc(t[i])}, {t[i] - t[i - 1]:+g} s after dump {i - 1})")
+            raise ScanError(self.path, f"{name} {how}; dumps must be in time order, each once")
+        limit = GAP_FACTOR * self.integration_time
+        after = np.flatnonzero(step > limit)
+        #: gaps as (index of the dump before the gap, length of the step in s)
+        self.gaps = [(int(i), float(step[i])) for i in after]
+        edges = [0] + [int(i) + 1 for i in after] + [self.ntime]
+        #: contiguous stretches [start, stop) of dumps, flagged each on its own
+        self.segments = [[a, b] for a, b in zip(edges[:-1], edges[1:])]
+        if self.gaps:
+            self._note(f"{name} has {len(self.gaps)} gap(s) longer than {GAP_FACTOR:g} integration times "
+                       f"(first {self.gaps[0][1]:g} s after dump {self.gaps[0][0]}); the {len(self.segments)} "
+                       "stretches are flagged each on its own")
 
     def _vector(self, key, n):
         ds = self._dataset(key)
@@ -275,6 +377,24 @@ def open_scan(path, layout=None):
     return Scan(path, layout)
 
 
+def remove_partials(directory):
+    """Remove the temporary files that :func:`atomic_output` left under ``directory``.
+
+    Only files whose name matches :data:`PARTIAL_GLOBS` are removed: those of runs that
+    were killed (SIGKILL, power loss) before they could clean up.  Call it only while no
+    other process writes under ``directory`` (``rfisieve run`` holds the outdir lock).
+    Returns the paths removed.
+    """
+    removed = []
+    found = {p for pattern in PARTIAL_GLOBS for p in Path(directory).rglob(pattern)} if Path(directory).is_dir() else ()
+    for path in sorted(found):
+        if path.is_file() and not path.is_symlink():
+            with contextlib.suppress(FileNotFoundError):
+                path.unlink()
+                removed.append(path)
+    return removed
+
+
 def _umask():
     mask = os.umask(0)
     os.umask(mask)
@@ -289,7 +409,7 @@ def atomic_output(path, suffix=None):
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix or ".partial", dir=path.parent)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.partial.", suffix=suffix or "", dir=path.parent)
     os.close(fd)
     tmp = Path(tmp)
     try:

@@ -51,9 +51,11 @@ def parse_emitters(entries, path="<emitters>", site=None):
 def _load_yaml(path):
     import yaml
 
+    from rfisieve.config.load import parse_yaml  # refuses duplicate keys
+
     try:
         with open(path) as fh:
-            return yaml.safe_load(fh) or {}
+            return parse_yaml(fh) or {}
     except OSError as err:
         raise ConfigError(path, f"cannot read ({err.strerror})") from None
     except yaml.YAMLError as err:
@@ -92,10 +94,9 @@ def load_emitters(path=None, bands_dir=None, bands=None):
     if path:
         if not os.path.isfile(path):
             raise ConfigError(path, "emitter list not found")
-        doc = _load_yaml(path)
-        if not isinstance(doc, dict) or "emitters" not in doc:
-            raise ConfigError(path, "no top-level 'emitters' list")
-        out += parse_emitters(doc["emitters"], path)
+        from rfisieve.config.load import load_emitter_list  # emitters.schema.yaml
+
+        out += parse_emitters(load_emitter_list(path)["emitters"], path)
     if bands_dir and os.path.isdir(bands_dir):
         names = sorted(bands) if bands is not None else sorted(
             f[:-5] for f in os.listdir(bands_dir) if f.endswith(".yaml"))

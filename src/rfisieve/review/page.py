@@ -457,7 +457,7 @@ def summary_text(outdir, top=TOP_RANGES, threshold=None):
     tot = run_totals(overview)
     frac = tot["flagged"] / tot["samples"] if tot["samples"] else float("nan")
     out = [f"rfisieve run {os.path.abspath(outdir)}",
-           f"  observed {_utc(tot['start'])} to {_utc(tot['stop'])}: {tot['scans']} scans, "
+           f"  observed {_utc(tot['start'])} to {_utc(tot['stop'])}: {tot['scans']} scan{'s' if tot['scans'] != 1 else ''}, "
            f"bands {', '.join(tot['bands']) or 'none'}, {tot['hours']:.2f} h",
            f"  flagged {_pct(frac)} of {tot['samples']:,} samples", ""]
     rows = [[name, f"{int(tot['bits'][k]):,}", _pct(tot["bits"][k] / tot["samples"] if tot["samples"] else np.nan)]

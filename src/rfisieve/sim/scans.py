@@ -536,6 +536,12 @@ def _handle(args):
     from rfisieve.errors import RfisieveError
     bands = tuple(b.strip() for b in args.bands.split(",") if b.strip())
     s2 = "all" if args.s2 else ("none" if args.no_s2 else "one")
+    out = Path(args.outdir)
+    if out.is_dir() and any(out.iterdir()) and not args.force:
+        raise RfisieveError(f"{out}: the folder is not empty; simulating into it would mix two nights "
+                            "(use an empty folder, or --force to write into it anyway)")
+    if out.exists() and not out.is_dir():
+        raise RfisieveError(f"{out}: exists and is not a folder")
     try:
         result = simulate_night(args.outdir, nscans=args.scans, bands=bands,
                                 ntime=args.dumps, nchan=args.channels,
@@ -548,7 +554,7 @@ def _handle(args):
     out = Path(args.outdir)
     if not args.quiet:
         for s in result["scans"]:
-            extras = [f"{s['shape'][2]} products", s["dtype"]]
+            extras = [f"{s['shape'][2]} product{'s' if s['shape'][2] != 1 else ''}", s["dtype"]]
             if s["s2"]:
                 extras.append("/s2")
             if s["dropped_dumps"]:
@@ -559,7 +565,8 @@ def _handle(args):
             print(f"  {s['scan']}: {s['shape'][0]} dumps x {s['shape'][1]} channels, "
                   f"{', '.join(extras)}; {100 * s['interfered_fraction']:.1f}% of samples "
                   f"with interference")
-    print(f"wrote {len(result['scans'])} scans to {out / 'scans'} and their truth files to "
+    n = len(result["scans"])
+    print(f"wrote {n} scan{'s' if n != 1 else ''} to {out / 'scans'} and their truth files to "
           f"{out / 'truth'} ({result['elapsed_s']:.1f} s)")
     return 0
 
@@ -605,5 +612,7 @@ def register_cli(subparsers):
     p.add_argument("--s2-accumulations", type=int, default=128, metavar="M",
                    help="raw spectra per dump in scans that record /s2 (default: %(default)s)")
     p.add_argument("--quiet", action="store_true", help="print only the closing line")
+    p.add_argument("--force", action="store_true",
+                   help="write into OUTDIR even when it is not empty (files of the same name are replaced)")
     p.set_defaults(func=_handle)
     return p
