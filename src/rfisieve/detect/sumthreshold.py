@@ -30,7 +30,7 @@ from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_res
 from rfisieve.detect.bandpass import (COMPACT_SHAPES, bandpass_reach, block_bandpass, block_lengths, compact_flags,
                                       persistent_flags)
 
-__all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger",
+__all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger", "combined_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
 
 
@@ -316,6 +316,62 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
                  baseline_channels=baseline_channels, compact_sigma=compact_sigma, protect=protect)[0]
 
 
+def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=None, **settings):
+    r"""SumThreshold on auto products of one feed pair together (both polarizations).
+
+    Method: one emitter reaches both polarizations (at strengths s_a, s_b) and their
+    noise is independent, so the sum of the normalised residuals
+    z = (r_a / sigma_a + r_b / sigma_b) / sqrt(2) has unit noise and the excess
+    (s_a + s_b) / sqrt(2): for s_b = 0.8 s_a, 1.27 times a's own signal-to-noise
+    (sums of independent Gaussians; common practice).  Each product is flagged on its
+    own (:func:`sumthreshold_flagger`, so a product hit alone is still flagged), its
+    last residual kept; SumThreshold (:func:`sumthreshold`, along time, then along
+    frequency with the time pass's detections as flagged, thresholds chi_1 = ``chi1``)
+    runs on z with every product's detections as flagged; a sample found on z is
+    flagged in *every* product of the pair (the emitter is in both).  A sample
+    invalid in any product is invalid in z.
+
+    Parameters
+    ----------
+    planes : sequence of ndarray (ntime, nchan)
+        The products' powers x.
+    sigmas : sequence of float
+        Each product's noise sigma (:func:`sumthreshold_noise`).
+    masks, invalids : sequence of ndarray of bool, optional
+        Per product, as for :func:`sumthreshold_flagger`.
+    t0, protect, **settings
+        As for :func:`sumthreshold_flagger`.
+
+    Returns
+    -------
+    list of ndarray of bool
+        Each product's detections: its own, or'ed with those on z.
+    """
+    k = len(planes)
+    masks = [None] * k if masks is None else list(masks)
+    invalids = [None] * k if invalids is None else list(invalids)
+    s = dict(settings)
+    s.pop("enabled", None)
+    own, zs = [], []
+    for x, sig, mk, inv in zip(planes, sigmas, masks, invalids):
+        r = np.zeros(np.shape(x), np.float32)
+        det = _flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, residual_out=r, **s)[0]
+        own.append(det)
+        zs.append(r)
+    bad = np.zeros(np.shape(planes[0]), np.bool_)
+    for x, inv in zip(planes, invalids):
+        bad |= ~np.isfinite(np.asarray(x))
+        if inv is not None:
+            bad |= np.asarray(inv, dtype=np.bool_)
+    z = (np.sum(zs, axis=0) / np.sqrt(k)).astype(np.float32)
+    flagged = np.logical_or.reduce(own)
+    chi1 = float(s.get("chi1", 8.0))
+    rho = float(s.get("rho", 1.5))
+    hit = sumthreshold(z, flagged, chi1, rho, s.get("max_window_time", 32), 0, bad)
+    hit |= sumthreshold(z, flagged | hit, chi1, rho, s.get("max_window_freq", 128), 1, bad)
+    return [d | (hit & ~bad) for d in own]
+
+
 def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
     """Robust noise sigma of the relative residual r = x / B - 1 at the last
     iteration of :func:`sumthreshold_flagger` on this plane.
@@ -371,8 +427,11 @@ def _scratch():
 def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_freq=128,
           iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
           invalid=None, sigma=None, t0=0, bandpass_dumps=0, persist_dumps=0, persist_sigma=6.0,
-          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False):
-    """The flagger; returns (detections, sigma of the last iteration)."""
+          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, residual_out=None):
+    """The flagger; returns (detections, sigma of the last iteration).  With
+    ``residual_out`` (float32 (ntime, nchan)) it also gets the last iteration's
+    residual in noise sigma (from the grid: clipped at 2 chi_1 above, -M_max chi_1
+    below; 0 where invalid)."""
     x = np.ascontiguousarray(values, dtype=np.float32)
     if x.ndim != 2:
         raise ValueError("values must be a 2-D (time, channel) plane")
@@ -435,6 +494,8 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         # frequency pass on lev0 joined by the time detections in det
         _st_freq(rg, lev0, rowbad, colbad, unit, float(rho), np_f, det, True)
         det, prev = prev, det
+    if residual_out is not None and np.isfinite(sig):
+        np.multiply(rg, float(chi1) / unit, out=residual_out, casting="unsafe")
     if noise_only or not np.isfinite(sig):
         return prev, sig
     if compact_sigma:
