@@ -413,21 +413,72 @@ def _pipe_lags(npass):
     return lag, final_lag, R
 
 
+@njit(inline="always", **_opts)
+def _sweep_passes(x, rows, K, L, ring, s, last, thrs, lims, npass, lag, RM):
+    """Step K of the one-sweep SumThreshold shared by :func:`st_time_pipe` (lines
+    are the channels of a plane, ``rows`` the dumps) and :func:`_tile_sweep`
+    (lines are a tile's columns, ``rows`` the identity): passes q = 2 .. npass,
+    pass q at line position K - lag[q], on the levels in the ring buffer (the
+    position's value is x[rows[k], c]).  Window sums run at s's width (exact on the
+    grid); last[q, c] holds the last position whose window of pass q exceeded its
+    limit; windows ending at j = kq - M + 1 and later mark free samples with level
+    q + 1.  Plain 2-D indexing (no row views: their reference counting would cost
+    more than the wide loops)."""
+    m = x.shape[1]
+    one = np.uint8(1)
+    zero = np.uint8(0)
+    for q in range(2, npass + 1):
+        kq = K - lag[q]
+        M = 1 << (q - 1)
+        if kq < 0 or kq >= L + M - 1:
+            continue
+        thr = thrs[q]
+        lim = lims[q]
+        qm = np.uint8(q - 1)
+        newlev = np.uint8(q + 1)
+        j = kq - M + 1
+        kq32 = np.int32(kq)
+        j32 = np.int32(j)
+        if kq < L and kq >= M:
+            ka = kq & RM
+            ta = rows[kq]
+            ko = (kq - M) & RM
+            to = rows[kq - M]
+            for c in range(m):
+                a = ring[ka, c]
+                u = thr if np.uint8(a - one) <= qm else x[ta, c]
+                a2 = ring[ko, c]
+                o = thr if np.uint8(a2 - one) <= qm else x[to, c]
+                s[q, c] = s[q, c] + u - o          # stored at s's width: exact
+                last[q, c] = kq32 if s[q, c] > lim else last[q, c]
+        elif kq < L:
+            ka = kq & RM
+            ta = rows[kq]
+            for c in range(m):
+                a = ring[ka, c]
+                s[q, c] = s[q, c] + (thr if np.uint8(a - one) <= qm else x[ta, c])
+            if j >= 0:
+                for c in range(m):
+                    last[q, c] = kq32 if s[q, c] > lim else last[q, c]
+        if j >= 0:
+            kj = j & RM
+            for c in range(m):
+                a = ring[kj, c]
+                ring[kj, c] = newlev if (last[q, c] >= j32 and a == zero) else a
+
+
 @njit(**_opts)
-def _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last):
+def _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last, ident_rows):
     """All SumThreshold passes q = 1 .. npass along axis 0 of the tile v[:L, :B]
     (lines are the B columns, no invalid sample) in one sweep, as
-    :func:`st_time_pipe` does on a plane; the final levels are written back to
-    lv[:L] (0 free, 1 input-flagged, q + 1 detected by pass q).  v is on the
-    grid of :func:`to_grid`, thrs and lims (M thrs) from :func:`grid_thresholds`;
-    ring (R, B) uint8, s (npass + 1, B) of v's dtype, last (npass + 1, B) int32
-    are scratch.
-    Plain 2-D indexing (no row views: their reference counting would cost more
-    than the B-wide loops)."""
+    :func:`st_time_pipe` does on a plane (:func:`_sweep_passes`); the final levels
+    are written back to lv[:L] (0 free, 1 input-flagged, q + 1 detected by pass
+    q).  v is on the grid of :func:`to_grid`, thrs and lims (M thrs) from
+    :func:`grid_thresholds`; ring (R, B) uint8, s (npass + 1, B) of v's dtype,
+    last (npass + 1, B) int32 are scratch; ident_rows = 0, 1, 2, ... (>= L)."""
     B = v.shape[1]
     RM = ring.shape[0] - 1
     two = np.uint8(2)
-    one = np.uint8(1)
     zero = np.uint8(0)
     c1 = thrs[1]
     for q in range(npass + 1):
@@ -442,42 +493,7 @@ def _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last):
                 if npass >= 1:
                     a = two if (a == zero and v[K, b] > c1) else a
                 ring[kr, b] = a
-        for q in range(2, npass + 1):
-            kq = K - lag[q]
-            M = 1 << (q - 1)
-            if kq < 0 or kq >= L + M - 1:
-                continue
-            thr = thrs[q]
-            lim = lims[q]
-            qm = np.uint8(q - 1)
-            newlev = np.uint8(q + 1)
-            j = kq - M + 1
-            kq32 = np.int32(kq)
-            j32 = np.int32(j)
-            if kq < L and kq >= M:
-                ka = kq & RM
-                ko = (kq - M) & RM
-                kx = kq - M
-                for b in range(B):
-                    a = ring[ka, b]
-                    u = thr if np.uint8(a - one) <= qm else v[kq, b]
-                    a2 = ring[ko, b]
-                    o = thr if np.uint8(a2 - one) <= qm else v[kx, b]
-                    s[q, b] = s[q, b] + u - o          # stored at s's width: exact
-                    last[q, b] = kq32 if s[q, b] > lim else last[q, b]
-            elif kq < L:
-                ka = kq & RM
-                for b in range(B):
-                    a = ring[ka, b]
-                    s[q, b] = s[q, b] + (thr if np.uint8(a - one) <= qm else v[kq, b])
-                if j >= 0:
-                    for b in range(B):
-                        last[q, b] = kq32 if s[q, b] > lim else last[q, b]
-            if j >= 0:
-                kj = j & RM
-                for b in range(B):
-                    a = ring[kj, b]
-                    ring[kj, b] = newlev if (last[q, b] >= j32 and a == zero) else a
+        _sweep_passes(v, ident_rows, K, L, ring, s, last, thrs, lims, npass, lag, RM)
         r = K - final_lag
         if r >= 0:
             kr = r & RM
@@ -605,13 +621,14 @@ def st_freq(x, lev0, cols, partial, thrs, lims, npass, det, merge, B):
     ring = np.zeros((R, B), np.uint8)
     s = np.empty((npass + 1, B), x.dtype)
     last = np.empty((npass + 1, B), np.int32)
+    ident_rows = np.arange(max(L, 1), dtype=np.int64)
     one = np.uint8(LEV_INPUT)
     zero = np.uint8(0)
     inv = np.uint8(LEV_INVALID)
     for t0 in range(0, n, B):
         nb = min(B, n - t0)
         _gather(x, lev0, det, cols, ident, merge, t0, nb, L, v, lv)
-        _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last)
+        _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last, ident_rows)
         _scatter(lv, det, cols, ident, merge, partial, t0, nb, L)
     vv = np.empty(m, x.dtype)
     ll = np.empty(m, np.uint8)
@@ -877,20 +894,12 @@ def st_time_pipe(x, lev0, rows, partial, thrs, lims, npass, det, merge):
     once."""
     n, m = x.shape
     L = rows.shape[0]
-    lag = np.zeros(npass + 2, np.int64)       # lag[q]: dumps pass q trails the load
-    for q in range(3, npass + 1):
-        lag[q] = lag[q - 1] + (1 << (q - 2)) - 1
-    Mmax = 1 << max(npass - 1, 0)
-    final_lag = (lag[npass] if npass >= 2 else 0) + Mmax - 1
-    R = 1
-    while R < final_lag + 2:
-        R *= 2
+    lag, final_lag, R = _pipe_lags(npass)     # lag[q]: dumps pass q trails the load
     RM = R - 1
     ring = np.zeros((R, m), np.uint8)
     s = np.zeros((max(npass, 1) + 1, m), x.dtype)
     last = np.full((max(npass, 1) + 1, m), -1, np.int32)
     two = np.uint8(2)
-    one = np.uint8(1)
     zero = np.uint8(0)
     c1 = thrs[1]
     for K in range(L + final_lag):
@@ -902,44 +911,7 @@ def st_time_pipe(x, lev0, rows, partial, thrs, lims, npass, det, merge):
                 if npass >= 1:
                     a = two if (a == zero and x[t, c] > c1) else a
                 ring[kr, c] = a
-        for q in range(2, npass + 1):
-            kq = K - lag[q]
-            M = 1 << (q - 1)
-            if kq < 0 or kq >= L + M - 1:
-                continue
-            thr = thrs[q]
-            lim = lims[q]
-            qm = np.uint8(q - 1)
-            newlev = np.uint8(q + 1)
-            j = kq - M + 1
-            kq32 = np.int32(kq)
-            j32 = np.int32(j)
-            if kq < L and kq >= M:
-                ka = kq & RM
-                ta = rows[kq]
-                ko = (kq - M) & RM
-                to = rows[kq - M]
-                for c in range(m):
-                    a = ring[ka, c]
-                    u = thr if np.uint8(a - one) <= qm else x[ta, c]
-                    a2 = ring[ko, c]
-                    o = thr if np.uint8(a2 - one) <= qm else x[to, c]
-                    s[q, c] = s[q, c] + u - o          # stored at s's width: exact
-                    last[q, c] = kq32 if s[q, c] > lim else last[q, c]
-            elif kq < L:
-                ka = kq & RM
-                ta = rows[kq]
-                for c in range(m):
-                    a = ring[ka, c]
-                    s[q, c] = s[q, c] + (thr if np.uint8(a - one) <= qm else x[ta, c])
-                if j >= 0:
-                    for c in range(m):
-                        last[q, c] = kq32 if s[q, c] > lim else last[q, c]
-            if j >= 0:
-                kj = j & RM
-                for c in range(m):
-                    a = ring[kj, c]
-                    ring[kj, c] = newlev if (last[q, c] >= j32 and a == zero) else a
+        _sweep_passes(x, rows, K, L, ring, s, last, thrs, lims, npass, lag, RM)
         r = K - final_lag
         if r >= 0:
             t = rows[r]
