@@ -24,7 +24,7 @@ import threading
 
 import numpy as np
 
-from rfisieve.detect import _kernels as kernels
+from rfisieve.detect import _sumthreshold_kernels as kernels
 from rfisieve.detect import _bandpass_kernels as bpk
 from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
 from rfisieve.detect.bandpass import (COMPACT_SHAPES, bandpass_reach, block_bandpass, block_lengths, compact_flags,
@@ -100,7 +100,7 @@ def to_grid(values, chi1, max_window, out=None):
 
 
 def _grid_args(chi1, max_window):
-    """(scale, lo, hi) of :func:`rfisieve.detect._kernels.to_grid` for chi1 > 0."""
+    """(scale, lo, hi) of :func:`rfisieve.detect._sumthreshold_kernels.to_grid` for chi1 > 0."""
     unit = grid_unit(max_window)[0]
     return unit / chi1, -float(window_sizes(max_window)[-1] * unit), 2.0 * unit
 
