@@ -362,22 +362,7 @@ def coarse_solve(mom, radii, cf, out):
                     a[j, ii * 5 + k] = mom[i0 + ii, k, j]
         w = ib * 5
         for r in radii:
-            for q in range(w):
-                sm[q] = 0.0
-            for j in range(min(r, nfc)):
-                for q in range(w):
-                    sm[q] += a[j, q]
-            for j in range(nfc):
-                ad = j + r
-                su = j - r - 1
-                if ad < nfc:
-                    for q in range(w):
-                        sm[q] += a[ad, q]
-                if su >= 0:
-                    for q in range(w):
-                        sm[q] -= a[su, q]
-                for q in range(w):
-                    b[j, q] = sm[q]
+            box_axis0_f64(a[:, :w], r, b[:, :w], sm)
             a, b = b, a
         for ii in range(ib):
             i = i0 + ii

@@ -138,6 +138,23 @@ def _pipe_lags(npass):
 
 
 @njit(inline="always", **_opts)
+def _sweep_load(x, lev, rows, K, ring, RM, npass, c1):
+    """Load line position K of the one-sweep SumThreshold into the ring buffer: the
+    input level of x[rows[K], c], or 2 (detected by pass 1) where free and above
+    chi_1 (c1)."""
+    m = x.shape[1]
+    t = rows[K]
+    kr = K & RM
+    two = np.uint8(2)
+    zero = np.uint8(0)
+    for c in range(m):
+        a = lev[t, c]
+        if npass >= 1:
+            a = two if (a == zero and x[t, c] > c1) else a
+        ring[kr, c] = a
+
+
+@njit(inline="always", **_opts)
 def _sweep_passes(x, rows, K, L, ring, s, last, thrs, lims, npass, lag, RM):
     """Step K of the one-sweep SumThreshold shared by :func:`st_time_pipe` (lines
     are the channels of a plane, ``rows`` the dumps) and :func:`_tile_sweep`
@@ -211,12 +228,7 @@ def _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last, iden
             last[q, b] = -1
     for K in range(L + final_lag):
         if K < L:
-            kr = K & RM
-            for b in range(B):
-                a = lv[K, b]
-                if npass >= 1:
-                    a = two if (a == zero and v[K, b] > c1) else a
-                ring[kr, b] = a
+            _sweep_load(v, lv, ident_rows, K, ring, RM, npass, c1)
         _sweep_passes(v, ident_rows, K, L, ring, s, last, thrs, lims, npass, lag, RM)
         r = K - final_lag
         if r >= 0:
@@ -409,13 +421,7 @@ def st_time_pipe(x, lev0, rows, partial, thrs, lims, npass, det, merge):
     c1 = thrs[1]
     for K in range(L + final_lag):
         if K < L:
-            t = rows[K]
-            kr = K & RM
-            for c in range(m):
-                a = lev0[t, c]
-                if npass >= 1:
-                    a = two if (a == zero and x[t, c] > c1) else a
-                ring[kr, c] = a
+            _sweep_load(x, lev0, rows, K, ring, RM, npass, c1)
         _sweep_passes(x, rows, K, L, ring, s, last, thrs, lims, npass, lag, RM)
         r = K - final_lag
         if r >= 0:
