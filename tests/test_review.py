@@ -23,7 +23,7 @@ from rfisieve.review import occupancy as occ
 
 from rfisieve.review import page as review
 
-PRODUCTS = ["q01h-q01h", "q01h-q02h", "q02h-q02h"]
+PRODUCTS = ["pier1.a-pier1.a", "pier1.a-pier2.a", "pier2.a-pier2.a"]
 PNG_SIG = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
 
 
