@@ -52,7 +52,7 @@ COMPACT_SHAPES = ((1, 2), (1, 3), (1, 4), (1, 6), (2, 1), (2, 2), (2, 3), (3, 1)
 
 
 #: Dumps averaged before the bandpass median (aligned to absolute dump numbers).
-GROUP_DUMPS = 4
+GROUP_DUMPS = 8
 
 
 def _blocks(t0, n, length):
@@ -254,36 +254,50 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
                        pblock[starts], np.cumsum(new_group) - 1)
         return memo[k]
 
-    def excess(k):
+    every4 = (np.arange(m) % 4) == 0
+
+    def excess(k, cols=None):
         """Per group of k parts: (ok, z over the smaller excess, z over the running
-        median's) and each part's group (see the docstring)."""
+        median's) and each part's group (see the docstring); with ``cols``, only for
+        those channels, the groups' gains then taken over every fourth channel (the
+        gain is common to all channels: a quarter of them pins it to well under the
+        thresholds' resolution)."""
         gs, gc, rows, blk, grp = grouped(k)
         ok = free[None, :] & (gc >= np.maximum(2, rows // 4)[:, None])
         enough = ok.sum(axis=1) >= 8
         ok &= enough[:, None]
+        gain_ok = ok if cols is None else ok & every4[None, :]
         zs = []
         with np.errstate(all="ignore"):
             mean = gs / np.maximum(gc, 1)
             for base in bases:
                 ratio = mean / base[blk]
-                g = _row_medians(ratio, ok)
-                zs.append((ratio / np.where(enough, g, 1.0)[:, None] - 1.0) * np.sqrt(gc) / sigma)
-        return ok, np.minimum(zs[0], zs[1]), zs[0], grp
+                g = _row_medians(ratio, gain_ok)
+                g = np.where(np.isfinite(g) & enough, g, 1.0)
+                rc = ratio if cols is None else ratio[:, cols]
+                cc = gc if cols is None else gc[:, cols]
+                zs.append((rc / g[:, None] - 1.0) * np.sqrt(cc) / sigma)
+        okc = ok if cols is None else ok[:, cols]
+        return okc, np.minimum(zs[0], zs[1]), zs[0], grp
 
-    def fine_z(k):
-        """Per group of k parts: symmetric leave-one-out excess of the mean spectrum,
-        in sigma of that mean (its variance 1.5 times a sample's: 1 + 49/98)."""
+    def fine_z(k, cols):
+        """Per group of k parts, for channels ``cols`` (at least 3 from the ends):
+        the symmetric leave-one-out excess of the mean spectrum, in sigma of that
+        mean (its variance 1.5 times a sample's: 1 + 49/98); not ok where a channel
+        of the seven has no sample."""
         gs, gc, _, _, grp = grouped(k)
+        idx = cols[:, None] + np.arange(-3, 4)[None, :]
+        c7 = gc[:, idx]
         with np.errstate(all="ignore"):
-            mean = np.where(gc > 0, gs / np.maximum(gc, 1), np.nan)
-        for row in mean:
-            kernels.fill_nan_1d(row)
-        e = _loo_quadratic(np.log(np.maximum(mean, 1e-30)))
-        return (gc > 0), e * np.sqrt(np.maximum(gc, 1) / 1.5) / sigma, grp
+            lm = np.log(np.maximum(gs[:, idx] / np.maximum(c7, 1), 1e-30))
+            s1 = 0.5 * (lm[..., 2] + lm[..., 4])
+            s2 = 0.5 * (lm[..., 1] + lm[..., 5])
+            s3 = 0.5 * (lm[..., 0] + lm[..., 6])
+            e = lm[..., 3] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
+        ok = (c7 > 0).all(axis=2)
+        return ok, e * np.sqrt(np.maximum(c7[..., 3], 1) / 1.5) / sigma, grp
 
     per_sub = max(1, SUB_DUMPS // S)
-    okp, zp, _, gp = excess(1)                 # parts: k = 1, gp = arange
-    oks, zsub, _, gsub = excess(per_sub)       # sub-blocks
     cand = np.zeros((P, m), np.bool_)
     for L in lengths:
         ok, zs, zm, grp = excess(int(L) // S)
@@ -293,19 +307,26 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
         sc = np.where(np.isfinite(sc), np.maximum(1.0, sc), np.inf)
         hit = ok & (zs > z * sc[:, None])
         cand |= hit[grp]
-    # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
-    # the parts where it stands out by PART_SIGMA
-    flags = cand & (oks & (zsub > REFINE_SIGMA))[gsub] & okp & (zp > PART_SIGMA)
+    flags = np.zeros((P, m), np.bool_)
+    cols = np.flatnonzero(cand.any(axis=0))
+    if cols.size:
+        # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
+        # the parts where it stands out by PART_SIGMA
+        okp, zp, _, _ = excess(1, cols)
+        oks, zsub, _, gsub = excess(per_sub, cols)
+        flags[:, cols] = cand[:, cols] & (oks & (zsub > REFINE_SIGMA))[gsub] & okp & (zp > PART_SIGMA)
     # narrow emitters on steep slopes: the bandpass block's fine test, placed in time
     # by the symmetric leave-one-out excess of the sub-block and part means
     nb = bp.shape[0]
     fine = np.zeros((nb, m), np.bool_)
     for i in range(nb):
         fine[i] = fine_excess(bp[i], z, protect)
-    if fine.any():
-        fs_ok, fs_z, fs_g = fine_z(per_sub)
-        fp_ok, fp_z, _ = fine_z(1)
-        flags |= fine[pblock] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g] & fp_ok & (fp_z > PART_SIGMA)
+    cols = np.flatnonzero(fine.any(axis=0))
+    if cols.size:
+        fs_ok, fs_z, fs_g = fine_z(per_sub, cols)
+        fp_ok, fp_z, _ = fine_z(1, cols)
+        flags[:, cols] |= (fine[pblock][:, cols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g]
+                           & fp_ok & (fp_z > PART_SIGMA))
     if flags.any():
         prow_of = np.repeat(np.arange(P), plen)
         out[:] = flags[prow_of] & ~ex
