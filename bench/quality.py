@@ -444,15 +444,17 @@ def main(argv=None):
             if not name.startswith("noise_") and name != "noise":
                 pooled["ours"] = add_counts(pooled["ours"], res["ours"])
                 pooled["clip"] = add_counts(pooled["clip"], res["clip"])
-    print("\n== all scenes with interference, pooled (each scene's clip at its own matched sigma)")
-    pa, pb = finish(pooled["ours"], kinds_all), finish(pooled["clip"], kinds_all)
-    bins = INR_BINS[1:] + (">=1",)
-    print(f"   {'recall ours / clip':<22}" + "".join(f" {bn:>15}" for bn in bins))
-    for label, ea, eb in [("all kinds", pa["recall_by_inr"], pb["recall_by_inr"])] + \
-            [(f"  {k}", pa["recall_by_kind"][k], pb["recall_by_kind"][k]) for k in sorted(pa["recall_by_kind"])]:
-        print(f"   {label:<22}" + "".join(
-            " " + f"{_r(ea[bn]['recall'])} {_r(eb[bn]['recall'])}".rjust(15) if ea[bn]["samples"] else " " * 16
-            for bn in bins))
+    pa, pb = {"recall_by_kind": {}}, {}
+    if pooled["ours"] is not None:     # scenes with interference were run
+        print("\n== all scenes with interference, pooled (each scene's clip at its own matched sigma)")
+        pa, pb = finish(pooled["ours"], kinds_all), finish(pooled["clip"], kinds_all)
+        bins = INR_BINS[1:] + (">=1",)
+        print(f"   {'recall ours / clip':<22}" + "".join(f" {bn:>15}" for bn in bins))
+        for label, ea, eb in [("all kinds", pa["recall_by_inr"], pb["recall_by_inr"])] + \
+                [(f"  {k}", pa["recall_by_kind"][k], pb["recall_by_kind"][k]) for k in sorted(pa["recall_by_kind"])]:
+            print(f"   {label:<22}" + "".join(
+                " " + f"{_r(ea[bn]['recall'])} {_r(eb[bn]['recall'])}".rjust(15) if ea[bn]["samples"] else " " * 16
+                for bn in bins))
 
     # -- targets --------------------------------------------------------------------
     print("\n== targets")
