@@ -1,8 +1,8 @@
 """Known-emitter list and matching.
 
-Check values: GPS L1 carrier 1575.42 MHz and its 20.46 MHz signal band (IS-GPS-200,
-3.3.1.1); the 1400-1427 MHz passive band (ITU Radio Regulations No. 5.340);
-GSM-900 downlink 925-960 MHz (3GPP TS 45.005).  All from memory of those documents.
+Check values: GPS L1 carrier 1575.42 MHz (IS-GPS-200, section 3.3.1.1) and its 20.46 MHz
+band (2 x 10.23 MHz, from memory); the 1400-1427 MHz passive band (ITU Radio Regulations
+No. 5.340); GSM-900 downlink 925-960 MHz (3GPP TS 45.005).  All from memory of those documents.
 """
 
 import pytest
@@ -30,7 +30,7 @@ def test_gps_l1_channel_is_annotated(shipped):
     assert "GPS L1" in names
     gps = next(e for e in shipped if e["name"] == "GPS L1")
     assert (gps["start_mhz"] + gps["stop_mhz"]) / 2 == pytest.approx(1575.42)   # IS-GPS-200
-    assert gps["stop_mhz"] - gps["start_mhz"] == pytest.approx(20.46)          # IS-GPS-200 3.3.1.1
+    assert gps["stop_mhz"] - gps["start_mhz"] == pytest.approx(20.46)          # 2 x 10.23 MHz (from memory)
 
 
 def test_protected_and_mobile_bands(shipped):
@@ -63,3 +63,35 @@ def test_bad_entry_is_config_error(tmp_path):
     with pytest.raises(ConfigError) as err:
         load_emitters(str(p))
     assert "stop_mhz" in str(err.value) and str(p) in str(err.value)
+
+
+def test_gps_l1_cites_its_interface_document(shipped):
+    # IS-GPS-200, section 3.3.1.1 (frequency plan): L1 = 1575.42 MHz
+    gps = next(e for e in shipped if e["name"] == "GPS L1")
+    assert "IS-GPS-200" in gps["source"] and "3.3.1.1" in gps["source"] and "1575.42" in gps["source"]
+
+
+def test_duplicate_names_are_merged(tmp_path):
+    from rfisieve.review.emitters import in_band, merge_duplicates
+
+    (tmp_path / "L.yaml").write_text(
+        "band: L\nemitters:\n"
+        "  - {name: GLONASS L1, start_mhz: 1597.5, stop_mhz: 1606.5, source: 'GLONASS ICD (from memory)'}\n"
+        "  - {name: Site radar, start_mhz: 1300, stop_mhz: 1301, source: site survey}\n")
+    em = load_emitters(bands_dir=str(tmp_path))
+    shown = merge_duplicates(in_band(em, 1590.0, 1610.0))
+    glonass = [e for e in shown if "glonass l1" in e["name"].lower()]
+    assert len(glonass) == 1 and glonass[0]["site"] is None           # the shipped entry is kept
+    assert glonass[0]["also"] == [("config/bands/L.yaml", "GLONASS ICD (from memory)")]
+    # different names, or ranges that do not overlap, stay apart
+    assert len(merge_duplicates(in_band(em, 1290.0, 1310.0))) == len(in_band(em, 1290.0, 1310.0))
+
+
+def test_aliases_merge_a_site_entry_into_the_shipped_one(tmp_path):
+    from rfisieve.review.emitters import in_band, merge_duplicates
+
+    (tmp_path / "L.yaml").write_text(
+        "band: L\nemitters:\n  - {name: Aircraft DME, start_mhz: 962, stop_mhz: 1213, source: 'site list'}\n")
+    em = load_emitters(bands_dir=str(tmp_path))
+    names = [e["name"] for e in merge_duplicates(in_band(em, 1000.0, 1010.0))]
+    assert "Aircraft DME" not in names and "DME / TACAN" in names   # "aliases" in config/emitters.yaml

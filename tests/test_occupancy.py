@@ -92,11 +92,11 @@ def test_counts_match_brute_force_in_csv_and_h5(tmp_path):
         assert r["band"] == "L" and int(r["channel"]) == ch
         assert float(r["freq_mhz"]) == pytest.approx(freq[ch] / 1e6, abs=1e-6)
         assert int(r["samples"]) == b["samples"][ch]
-        assert float(r["flagged"]) == pytest.approx(b["flagged"][ch] / b["samples"][ch], rel=1e-9)
+        assert float(r["flagged_fraction"]) == pytest.approx(b["flagged"][ch] / b["samples"][ch], rel=1e-9)
         for k, name in enumerate(bits.NAMES):
-            assert float(r[name]) == pytest.approx(b["bits"][k][ch] / b["samples"][ch], rel=1e-9, abs=1e-12)
+            assert float(r[f"{name}_fraction"]) == pytest.approx(b["bits"][k][ch] / b["samples"][ch], rel=1e-9, abs=1e-12)
         for p, prod in enumerate(PRODUCTS):
-            assert float(r[f"flagged_{prod}"]) == pytest.approx(b["prod"][p][ch] / m.shape[0], rel=1e-9, abs=1e-12)
+            assert float(r[f"flagged_fraction_{prod}"]) == pytest.approx(b["prod"][p][ch] / m.shape[0], rel=1e-9, abs=1e-12)
 
 
 def test_two_cause_sample_counts_once_overall():
@@ -149,7 +149,7 @@ def test_run_aggregation_is_sample_weighted_across_grids(tmp_path):
     fa3 = np.count_nonzero(ma[:, 3]) / ma[:, 3].size
     fb1 = np.count_nonzero(mb[:, 1]) / mb[:, 1].size
     expect = (fa3 * ma[:, 3].size + fb1 * mb[:, 1].size) / (ma[:, 3].size + mb[:, 1].size)
-    assert float(r[head.index("flagged")]) == pytest.approx(expect, rel=1e-9)
+    assert float(r[head.index("flagged_fraction")]) == pytest.approx(expect, rel=1e-9)
     assert r[head.index("freq_mhz")] == "1403.000000"
 
 

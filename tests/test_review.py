@@ -93,8 +93,8 @@ def test_page_parses_and_every_image_decodes(run):
     p.feed(page)
     p.close()
     assert "html" in p.tags and "table" in p.tags
-    # 1 band + 2 scan images + 2 kurtosis plots
-    assert len(p.imgs) == 5
+    # the night + 1 band + 2 scan images + 2 kurtosis plots
+    assert len(p.imgs) == 6
     import matplotlib.image as mpimg
     for src in p.imgs:
         assert src.startswith("data:image/png;base64,")   # self-contained: nothing loaded from disk
@@ -122,7 +122,7 @@ def test_run_csv_is_the_sample_weighted_sum(run):
             fl += np.count_nonzero(b[:, ch - 2])
             sm += b[:, ch - 2].size
         assert int(r["samples"]) == sm
-        assert float(r["flagged"]) == pytest.approx(fl / sm, rel=1e-9)
+        assert float(r["flagged_fraction"]) == pytest.approx(fl / sm, rel=1e-9)
         assert int(r["scans"]) == (2 if ch >= 2 else 1)
 
 
@@ -142,7 +142,7 @@ def test_change_since_previous_run(run, tmp_path):
         rows = list(csv.reader(fh))
     head = rows[0]
     for r in rows[1:]:
-        r[head.index("flagged")] = "0"
+        r[head.index("flagged_fraction")] = "0"
     with open(prev, "w", newline="") as fh:
         csv.writer(fh).writerows(rows)
     scans = sorted(str(p) for p in (out / "occupancy").glob("night_*.h5"))
@@ -208,3 +208,228 @@ def test_cli_help_and_bad_input(tmp_path, capsys):
     assert main(["summary", str(tmp_path)]) == 2
     err = capsys.readouterr().err
     assert "run.h5" in err and err.count("\n") == 1
+
+
+# ---------------------------------------------------------------------------
+# issue 13: a page the scientist trusts at 9 am
+# ---------------------------------------------------------------------------
+
+@pytest.mark.parametrize("sigma", [3.0, 4.0, 5.0, 6.0])
+@pytest.mark.parametrize("m", [8, 16, 64, 256, 1024])
+def test_sk_histogram_range_covers_both_thresholds(sigma, m):
+    # thresholds from the public API; PFA per tail = Gaussian tail beyond sigma (scipy.stats.norm.sf)
+    from scipy.stats import norm
+
+    from rfisieve.engine.planes import sk_histogram_edges
+    from rfisieve.review.plots import sk_ranges, sk_summary
+    from rfisieve.sk import sk_thresholds
+
+    lower, upper = sk_thresholds(m, 1, 1.0, pfa=norm.sf(sigma))
+    edges = sk_histogram_edges(lower, upper, m, 1, 1.0)
+    assert np.allclose(np.diff(edges), edges[1] - edges[0])    # uniform (the block kernel needs it)
+    assert edges[0] <= lower and edges[-2] > upper               # the last bin only clips values beyond
+    # SK <= M N d + 1 (S2/S1^2 <= 1, from the definition): the bins reach it when they may
+    assert edges[-2] >= min(m + 1.0, 0.99 * 8192 * (edges[1] - edges[0]))
+    # a histogram with both tails: the drawn ranges hold both thresholds
+    counts = np.zeros(len(edges) - 1, np.int64)
+    centre = np.searchsorted(edges, 1.0) - 1
+    counts[centre] = 1000
+    low = np.searchsorted(edges, lower) - 2        # a bin wholly below the lower threshold, if any
+    if low >= 0:
+        counts[low] = 5
+    counts[np.searchsorted(edges, upper) + 1] = 5
+    summ = sk_summary({"edges": edges, "counts": counts,
+                       "attrs": {"m": m, "n": 1, "d": 1.0, "lower": lower, "upper": upper}})[0]
+    core, whole = sk_ranges(summ, counts, edges)
+    for lo, hi in (core, whole):
+        assert lo <= lower < upper <= hi
+    assert summ["beyond"] == 0 and not summ["cut_off"]
+    assert summ["outside"] == pytest.approx(counts[counts < 1000].sum() / counts.sum())
+
+
+def _sk_case(edges, counts, upper):
+    return {"edges": edges, "counts": np.asarray(counts)[None, :],
+            "attrs": {"m": 16, "n": 1, "d": 1.0, "lower": 0.3, "upper": upper, "mode": "block"}}
+
+
+def test_kurtosis_card_says_check_when_sk_flags_lie_beyond_the_histogram(tmp_path):
+    from rfisieve.review.plots import sk_diagnostic, sk_summary
+
+    rng = np.random.default_rng(3)
+    sd = np.sqrt(4 * 16**2 / (15 * 18 * 19))      # Var of SK for N = d = 1 (Nita et al. 2007)
+    # the issue's case: fixed edges 0..3, sigma 4 at M = 16 puts the upper threshold at 3.17;
+    # 7,840 SK values above it were clipped into the last bin
+    edges = np.linspace(0, 3, 301)
+    vals = np.clip(np.concatenate([rng.normal(1, sd, 50000), np.full(7840, 5.0)]), 0, 3 - 1e-9)
+    counts = np.histogram(vals, edges)[0]
+    old = sk_summary(_sk_case(edges, counts, 3.17))[0]
+    assert old["verdict"] == "check" and old["cut_off"] and old["beyond"] >= 7840
+    assert old["outside"] is None                 # not "0.00 %": unknown
+    # new edges reach past the threshold, but values beyond their end still mean "check"
+    edges = np.linspace(0, 4.0, 401)
+    ok = np.histogram(rng.normal(1, sd, 50000), edges)[0]
+    assert sk_summary(_sk_case(edges, ok, 3.17))[0]["verdict"] == "ok"
+    beyond = ok.copy()
+    beyond[-1] += 12
+    summ = sk_summary(_sk_case(edges, beyond, 3.17))[0]
+    assert summ["verdict"] == "check" and summ["beyond"] == 12
+    assert sk_diagnostic(tmp_path / "k.png", _sk_case(edges, beyond, 3.17))["verdict"] == "check"
+    assert (tmp_path / "k.png").read_bytes()[:8] == PNG_SIG
+    # and the page's card says it
+    from rfisieve.review.page import render_page
+
+    html_text = render_page(str(tmp_path), [], {}, [], [], {"band": {}, "scan": {}, "kurtosis": {}}, {"s": summ},
+                            None, 0.2, None)
+    overview = html_text.split('id="overview"')[1].split('id="failed"')[0]
+    assert '<div class="v">check</div><div class="k">kurtosis check' in overview and ">ok<" not in overview
+
+
+def test_time_axis_is_utc_clock_time_across_midnight(tmp_path):
+    import datetime as dt
+
+    from rfisieve.review.plots import scan_image, utc_ticks
+
+    t0 = dt.datetime(2026, 12, 1, 23, 40, tzinfo=dt.timezone.utc).timestamp()
+    ticks, labels = utc_ticks(t0, t0 + 3600)       # 23:40 .. 00:40 UTC
+    assert labels[0] == "23:40" and "00:00" in labels and labels[-1] == "00:40"
+    for t, lab in zip(ticks, labels):
+        assert lab == dt.datetime.fromtimestamp(t, tz=dt.timezone.utc).strftime("%H:%M")   # stdlib datetime
+    # a rendered scan image: its time axis carries these labels
+    nt, nc = 1801, 16                              # 2 s dumps: 23:40:00 .. 00:40:00
+    m = np.zeros((nt, nc, 1), np.uint8)
+    m[::7, 3] = bits.SUMTHRESHOLD
+    counts = occ.mask_counts(m, image_bins=(64, 16))
+    counts.update(time=t0 + 2.0 * np.arange(nt), freq=1.4e9 + 1e6 * np.arange(nc), products=["a-a"],
+                  attrs={"scan": "s", "band": "L", "ntime": nt})
+    import matplotlib.pyplot as plt
+
+    seen = {}
+    orig = plt.Figure.savefig
+
+    def grab(fig, *a, **k):
+        for ax in fig.axes:
+            seen.setdefault("y", []).extend(t.get_text() for t in ax.get_yticklabels())
+            seen.setdefault("ylabel", []).append(ax.get_ylabel())
+            seen.setdefault("xlabel", []).append(ax.get_xlabel())
+        return orig(fig, *a, **k)
+
+    plt.Figure.savefig = grab
+    try:
+        scan_image(tmp_path / "s.png", counts)
+    finally:
+        plt.Figure.savefig = orig
+    times = [t for t in seen["y"] if ":" in t]
+    assert "00:00" in times and any(t.startswith("23:") for t in times)
+    assert all(len(t) == 5 and t[2] == ":" for t in times)
+    assert any("UTC" in lab for lab in seen["ylabel"])
+    assert any("2026-12-01 23:40 to 2026-12-02 00:40 UTC" in lab for lab in seen["xlabel"])
+
+
+def test_page_names_failed_scans_and_the_settings_diff(run, tmp_path):
+    out, *_ = run
+    scans = sorted(str(p) for p in (out / "occupancy").glob("night_*.h5"))
+    dest = tmp_path / "night2"
+    dest.mkdir()
+    (dest / "failed_scans.csv").write_text(
+        "scan,path,stage,reason\n"
+        "qro_20261202_0133_L,/data/qro_20261202_0133_L.h5,detect,/data/qro_20261202_0133_L.h5: not an HDF5 "
+        "file (truncated, or another format)\n")
+    # the previous run: same occupancy except a few channels; its settings had chi1 = 8
+    prev_dir = tmp_path / "prev" / "occupancy"
+    prev_dir.mkdir(parents=True)
+    with open(out / "occupancy" / "run.csv", newline="") as fh:
+        rows = list(csv.reader(fh))
+    rows[1][rows[0].index("flagged_fraction")] = "0.5"
+    with open(prev_dir / "run.csv", "w", newline="") as fh:
+        csv.writer(fh).writerows(rows)
+    import json
+
+    old = {"L": {"band": "L", "sumthreshold": {"chi1": 8.0, "rho": 1.5}, "kurtosis": {"sigma": 4.0}}}
+    new = {"band": "L", "sumthreshold": {"chi1": 7.5, "rho": 1.5}, "kurtosis": {"sigma": 4.0}}
+    with h5py.File(prev_dir / "run.h5", "w") as f:
+        f.attrs["band_settings_json"] = json.dumps(old)
+    for name in ("night_a", "night_b"):       # the masks of this run record the settings used
+        with h5py.File(out / "flags" / f"{name}.h5", "a") as f:
+            f.attrs["band_settings"] = json.dumps(new)
+            f.attrs["rfisieve_version"] = "0.1.0"
+    index = review.build_review(str(dest), scans, previous=str(prev_dir / "run.csv"))
+    p = _Collect()
+    p.feed(open(index, encoding="utf-8").read())
+    text = " ".join(p.text)
+    assert "qro_20261202_0133_L" in text and "not an HDF5 file" in text
+    top = text.split("Most occupied channel ranges")[0]
+    assert "qro_20261202_0133_L" in top                       # near the top, before the ranges
+    assert "sumthreshold.chi1" in text and "8" in text and "7.5" in text
+    change = text.split("Change since the previous run")[1].split("Scans")[0]
+    assert "sumthreshold.chi1" in change and "rho" not in change  # only what changed
+    assert "rfisieve 0.1.0" in text
+    page = open(index, encoding="utf-8").read()
+    assert "white-space: nowrap" in page and " %<" not in page     # cells do not wrap ("10.5 / %")
+
+
+def test_unchanged_band_gets_one_line_and_no_previous_says_how(run, tmp_path):
+    out, *_ = run
+    scans = sorted(str(p) for p in (out / "occupancy").glob("night_*.h5"))
+    index = review.build_review(str(tmp_path / "a"), scans, previous=str(out / "occupancy" / "run.csv"))
+    page = open(index, encoding="utf-8").read()
+    change = page.split('id="change"')[1].split('id="scans"')[0]
+    assert "occupancy unchanged" in change and "<table" not in change
+    index = review.build_review(str(tmp_path / "b"), scans)
+    change = open(index, encoding="utf-8").read().split('id="change"')[1].split('id="scans"')[0]
+    assert "previous_run" in change and "--previous" in change
+
+
+def test_engine_mask_opens_with_gzip_alone_and_the_page_shows_the_data(tmp_path):
+    # gzip (deflate) is built into every HDF5 library (HDF5 docs, H5Z_FILTER_DEFLATE); LZF is not
+    import json
+
+    from scanfactory import make_scan
+
+    from rfisieve.config.defaults import band_settings, run_settings
+    from rfisieve.engine import flag_scan
+
+    scan = tmp_path / "scans" / "qro_gz_L.h5"
+    scan.parent.mkdir()
+    make_scan(scan, ntime=300, nchan=32, nprod=2, seed=4)
+    band = band_settings({"band": "L"})
+    band["protect"] = [{"start_mhz": 0.0, "stop_mhz": 1e6, "reason": "test: the whole band", "source": "this test"}]
+    out = tmp_path / "out"
+    mask = out / "flags" / "qro_gz_L.h5"
+    flag_scan(scan, mask, band, run_settings({"chunk_dumps": 128}))
+    with h5py.File(mask, "r") as f:
+        assert f["flags"].compression == "gzip"
+        assert f["flags"].compression_opts is not None and h5py.h5z.filter_avail(h5py.h5z.FILTER_DEFLATE)
+        assert f["flags"][()].shape == (300, 32, 2)
+        assert "s since 1970" in f["time"].attrs["units"] and "Hz" in f["freq"].attrs["units"]
+        g = f["diagnostics/sk"]
+        edges = g["edges"][()]
+        assert edges[0] <= g.attrs["lower"] < g.attrs["upper"] < edges[-2]
+        assert g["counts"].shape[-1] == len(edges) - 1
+    occ_h5 = out / "occupancy" / "qro_gz_L.h5"
+    occ.occupancy_of_mask(mask, out / "occupancy" / "qro_gz_L.csv", occ_h5)
+    index = review.build_review(str(out), [str(occ_h5)])
+    page = open(index, encoding="utf-8").read()
+    assert "Data not shown" not in page                      # the scan file was read for the data image
+    assert "test: the whole band" in page and "flagged inside" in page
+    assert json.loads(h5py.File(out / "occupancy" / "run.h5", "r").attrs["band_settings_json"])["L"]["protect"]
+
+
+def test_scan_csv_names_fractions_and_gives_the_time_span(run):
+    out, *_ = run
+    with open(out / "occupancy" / "night_a.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    r = rows[0]
+    assert r["first_dump_utc"] == "2027-01-15T08:00:00Z"        # 1.8e9 s after 1970-01-01 (stdlib datetime)
+    assert r["last_dump_utc"] == "2027-01-15T08:00:58Z"         # 29 dumps of 2 s later
+    assert "flagged_fraction" in r and "sk_fraction" in r and "flagged_fraction_q01h-q01h" in r
+    assert "flagged" not in r
+
+
+def test_a_night_where_every_scan_failed_still_gets_a_page(tmp_path):
+    (tmp_path / "failed_scans.csv").write_text(
+        "scan,path,stage,reason\nqro_x_L,/d/qro_x_L.h5,plan,/d/qro_x_L.h5: no such file\n")
+    from rfisieve.cli import main
+
+    assert main(["review", str(tmp_path)]) == 0
+    page = (tmp_path / "report" / "index.html").read_text(encoding="utf-8")
+    assert "qro_x_L" in page and "no such file" in page

@@ -14,8 +14,34 @@ from rfisieve.engine.plan import _sumthreshold_settings
 DETECTORS = ("sk", "sumthreshold")
 
 
-#: Bin edges of the SK histogram kept for the review's kurtosis diagnostic.
+#: Bin edges of the SK histogram when SK is off (the review's kurtosis diagnostic; with SK
+#: on, the edges follow the thresholds: :func:`sk_histogram_edges`).
 SK_EDGES = np.linspace(0.0, 3.0, 301)
+
+#: SK histogram: bins between the two thresholds, and most bins in all (uniform bins:
+#: the block-SK histogram kernel needs them).
+SK_BINS_BETWEEN = 100
+SK_MAX_BINS = 8192
+
+
+def sk_histogram_edges(lower, upper, m, n=1, d=1.0):
+    """Uniform edges of the SK histogram kept for the review, from 0 past both thresholds.
+
+    SK lies in [0, M N d + 1] (S2 / S1^2 lies in [1/M, 1]; DESIGN.md 3).  The bins are
+    (upper - lower) / 100 wide and reach that bound unless that takes more than
+    :data:`SK_MAX_BINS` bins, and always reach a quarter of the thresholds' distance past
+    the upper one.  One more bin follows: larger values are clipped into it, so the
+    review knows how many values lie beyond the histogram's range.
+    """
+    w = (float(upper) - float(lower)) / SK_BINS_BETWEEN
+    nb = int(min(np.ceil((m * n * d + 1.0) / w), SK_MAX_BINS))
+    nb = max(nb, int(np.ceil(float(upper) / w)) + SK_BINS_BETWEEN // 4)
+    return np.linspace(0.0, (nb + 1) * w, nb + 2)
+
+
+def _sk_edges(meta):
+    """The SK histogram edges of a scan (``meta`` of :func:`_meta`)."""
+    return meta["sk"]["edges"] if "sk" in meta else SK_EDGES
 
 
 def _meta(scan, band):
@@ -52,6 +78,7 @@ def _meta(scan, band):
         sk["lower"], sk["upper"] = sk_thresholds(m, n, scan.d, pfa=pfa, method=k["method"])
         if not scan.has_s2:
             sk["table"] = sk_threshold_table(m, n, scan.d, pfa=pfa, method=k["method"])
+        sk["edges"] = sk_histogram_edges(sk["lower"], sk["upper"], m, n, scan.d)
         meta["sk"] = sk
     return meta
 
@@ -146,7 +173,7 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
 def _kurtosis(prep, values, excluded, sk, t0, core):
     from rfisieve.detect.kurtosis import sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
 
-    m, n, d = sk["m"], sk["n"], sk["d"]
+    m, n, d, edges = sk["m"], sk["n"], sk["d"], sk["edges"]
     valid = ~excluded
     if sk["mode"] == "s2":
         s2 = prep["s2"]
@@ -155,10 +182,10 @@ def _kurtosis(prep, values, excluded, sk, t0, core):
         with np.errstate(all="ignore"):
             ski = sk_estimator(values[rows].astype(np.float64) * m, s2[rows].astype(np.float64), m, n, d)
         ski = ski[valid[rows]]
-        counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], SK_EDGES[0], SK_EDGES[-1] - 1e-9), SK_EDGES)
+        counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], edges[0], edges[-1] - 1e-9), edges)
         return hit, counts.astype(np.int64)
     hit = sk_flag_blocks(values, valid, m, n, d, thresholds=sk["table"], t0=t0)
-    return hit, sk_block_histogram(values, valid, m, n, d, SK_EDGES, t0=t0, rows=core)
+    return hit, sk_block_histogram(values, valid, m, n, d, edges, t0=t0, rows=core)
 
 
 def _flag_product(planes, p, band, meta, t0, core, grow):
@@ -185,7 +212,10 @@ def _flag_product(planes, p, band, meta, t0, core, grow):
 
 def _assemble(parts, nprod):
     outs = [pt[0] for pt in parts]
-    hist = np.zeros((nprod, len(SK_EDGES) - 1), dtype=np.int64)
+    nbins = next((len(pt[1]) for pt in parts if pt[1] is not None), None)
+    if nbins is None:   # no SK histogram in this chunk (SK off, or no auto product)
+        return np.stack(outs, axis=-1), None
+    hist = np.zeros((nprod, nbins), dtype=np.int64)
     for p, pt in enumerate(parts):
         if pt[1] is not None:
             hist[p] += pt[1]

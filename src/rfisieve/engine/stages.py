@@ -13,7 +13,7 @@ from rfisieve.detect.masks import channel_cut
 from rfisieve.engine.executor import _run_detection, _Scheduler, run_windows
 from rfisieve.engine.pages import small_pages
 from rfisieve.engine.plan import _check_band_matches, _check_run, merge_halo, segment_chunks, segment_of
-from rfisieve.engine.planes import DETECTORS, SK_EDGES, _extra_bits, _merge_plane, _meta
+from rfisieve.engine.planes import DETECTORS, _extra_bits, _merge_plane, _meta, _sk_edges
 from rfisieve.errors import RfisieveError, ScanError
 from rfisieve.io.maskfile import (_copy_sk_diag, _create_mask_file, _write_attrs, _write_noise,
                                   _write_sk_diag)
@@ -51,17 +51,18 @@ def detect(scan_path, out_path, detector, band, run, plan=None, progress=None, j
             _create_mask_file(f, scan, int(run["chunk_dumps"]))
             f.attrs["detector"] = detector
             flags = f["flags"]
-            hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
+            hist = np.zeros((scan.nprod, len(_sk_edges(meta)) - 1), dtype=np.int64)
 
             def sink(c0, c1, res):
                 out, h = res[detector]
                 flags[c0:c1] = out
-                hist[...] += h
+                if h is not None:
+                    hist[...] += h
 
             used = _run_detection(scan, [detector], band, run, plan, sched, progress, sink, jobs=jobs)
             _write_noise(f, used)
             if detector == "sk":
-                _write_sk_diag(f, hist, meta, band, SK_EDGES)
+                _write_sk_diag(f, hist, meta, band, _sk_edges(meta))
 
 
 def _stack(planes):
@@ -146,7 +147,7 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 run_windows(sched, segment_chunks(segments, chunk_dumps), scan.ntime, halo,
                             max(2, 2 * sched.workers), read, build, sink, progress, segments=segments)
                 _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
-                _copy_sk_diag(parts, f, meta, band, SK_EDGES)
+                _copy_sk_diag(parts, f, meta, band, _sk_edges(meta))
                 for h in parts:
                     if "noise_sigma" in h.attrs:
                         f.attrs["noise_sigma"] = h.attrs["noise_sigma"]
@@ -185,7 +186,7 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1
             flags = f["flags"]
             segments = scan.segments
             counts = np.zeros((len(segments), scan.nchan, scan.nprod), dtype=np.int64)
-            hist = np.zeros((scan.nprod, len(SK_EDGES) - 1), dtype=np.int64)
+            hist = []   # the SK histogram's length follows the thresholds: summed as it arrives
             pending = []
 
             def write(c0, c1, out):
@@ -195,7 +196,8 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1
             with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
                 def sink(c0, c1, res):
                     out, h = res["final"]
-                    hist[...] += h
+                    if h is not None:
+                        hist[:] = [h if not hist else hist[0] + h]
                     while pending and pending[0].done():
                         pending.pop(0).result()  # re-raise a failed write at once
                     pending.append(writer.submit(write, c0, c1, out))
@@ -205,5 +207,7 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1
                 for fut in pending:
                     fut.result()
             _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
-            _write_sk_diag(f, hist, used, band, SK_EDGES)
+            edges = _sk_edges(used)
+            hist = hist[0] if hist else np.zeros((scan.nprod, len(edges) - 1), np.int64)
+            _write_sk_diag(f, hist, used, band, edges)
             _write_noise(f, used)

@@ -13,14 +13,22 @@ from rfisieve.detect.masks import bit_attrs
 from rfisieve.io.scan import file_identity
 
 
+#: gzip (deflate) level of /flags: gzip is built into every HDF5 library, so tools outside
+#: Python read the mask without a plug-in (LZF needs one).  Level 1 costs least time.
+MASK_GZIP_LEVEL = 1
+
+
 def _create_mask_file(f, scan, chunk_dumps):
     rows = max(1, min(scan.ntime, chunk_dumps, (1 << 20) // max(1, scan.nchan * scan.nprod)))
     f.create_dataset(
         "flags", shape=(scan.ntime, scan.nchan, scan.nprod), dtype=np.uint8,
-        chunks=(rows, scan.nchan, scan.nprod), compression="lzf", shuffle=False, fillvalue=0,
+        chunks=(rows, scan.nchan, scan.nprod), compression="gzip", compression_opts=MASK_GZIP_LEVEL,
+        shuffle=False, fillvalue=0,
     )
     f.create_dataset("time", data=scan.time)
     f.create_dataset("freq", data=scan.freq)
+    f["time"].attrs["units"] = "s since 1970-01-01T00:00:00 UTC (dump centre)"
+    f["freq"].attrs["units"] = "Hz (channel centre)"
     f.create_dataset("products", data=np.array(scan.products, dtype=object), dtype=h5py.string_dtype())
     f.attrs["scan"] = scan.name
     f.attrs["band"] = scan.band
@@ -35,7 +43,7 @@ def _write_sk_diag(f, hist, meta, band, edges):
     sk = meta.get("sk")
     g = f.require_group("diagnostics/sk")
     g.create_dataset("edges", data=edges)
-    g.create_dataset("counts", data=hist)
+    g.create_dataset("counts", data=hist, compression="gzip", compression_opts=MASK_GZIP_LEVEL)
     if sk:
         lower, upper = sk["lower"], sk["upper"]
         for key in ("m", "n", "d", "pfa", "method", "mode"):

@@ -1,8 +1,9 @@
 """Known emitters and protected bands: load the list and match frequency ranges against it.
 
 The shipped list is ``config/emitters.yaml`` (key ``emitters``: entries with ``name``,
-``start_mhz``, ``stop_mhz``, ``kind`` = ``emitter`` or ``protected``, and ``source``,
-the public document the range comes from, or "from memory").  A site adds its own
+``start_mhz``, ``stop_mhz``, ``kind`` = ``emitter`` or ``protected``, ``source``, the
+public document the range comes from, or "from memory", and optional ``aliases``, other
+names of the same emitter, used to merge duplicates).  A site adds its own
 entries per band under the key ``emitters`` of ``config/bands/<band>.yaml``
 (``{name, start_mhz, stop_mhz, source}``, kind defaults to ``emitter``); these are
 merged in with ``site`` set to the band name.
@@ -30,8 +31,11 @@ def _check_entry(entry, path, where):
     kind = entry.get("kind", "emitter")
     if kind not in KINDS:
         raise ConfigError(path, f"{where}: emitter {entry['name']!r}: kind must be one of {KINDS}, got {kind!r}")
+    aliases = entry.get("aliases") or []
+    if not isinstance(aliases, list) or not all(isinstance(a, str) for a in aliases):
+        raise ConfigError(path, f"{where}: emitter {entry['name']!r}: aliases must be a list of names")
     return {"name": str(entry["name"]), "start_mhz": start, "stop_mhz": stop, "kind": kind,
-            "source": str(entry.get("source", "not given"))}
+            "source": str(entry.get("source", "not given")), "aliases": list(aliases)}
 
 
 def parse_emitters(entries, path="<emitters>", site=None):
@@ -140,3 +144,44 @@ def match_emitters(start_mhz, stop_mhz, emitters):
 def in_band(emitters, fmin_mhz, fmax_mhz):
     """Emitters overlapping ``[fmin_mhz, fmax_mhz]`` (for marking plots)."""
     return [e for e in emitters if e["stop_mhz"] > fmin_mhz and e["start_mhz"] < fmax_mhz]
+
+
+def _name_key(name):
+    """A name without parenthesised details, case and punctuation: "GLONASS L1 (FDMA)" -> "glonass l1"."""
+    import re
+
+    base = re.sub(r"\([^)]*\)", " ", str(name)).lower()
+    return " ".join(re.sub(r"[^a-z0-9]+", " ", base).split())
+
+
+def _cited(e):
+    return "from memory" not in e.get("source", "")
+
+
+def merge_duplicates(emitters):
+    """One entry per emitter: entries whose names (or ``aliases``) agree, ignoring case,
+    punctuation and parenthesised details, and whose ranges overlap are merged.
+
+    The entry kept is the shipped one (``site`` None) before a band config's, and
+    within those the one whose source cites a document rather than memory; its name,
+    range and source stand, and ``also`` lists the other entries' ``(where, source)``
+    (``where`` = ``config/bands/<band>.yaml`` or ``config/emitters.yaml``).
+    """
+    def keys(e):
+        return {_name_key(n) for n in [e["name"], *e.get("aliases", [])]}
+
+    kept = []
+    for e in sorted(emitters, key=lambda e: (e.get("site") is not None, not _cited(e), e["start_mhz"])):
+        twin = next((k for k in kept if keys(k) & keys(e) and k["kind"] == e["kind"]
+                     and e["start_mhz"] < k["stop_mhz"] and k["start_mhz"] < e["stop_mhz"]), None)
+        if twin is None:
+            kept.append(dict(e, also=list(e.get("also", []))))
+        else:
+            twin["also"].append((where_from(e), e["source"]))
+    kept.sort(key=lambda e: (e["start_mhz"], e["stop_mhz"], e["name"]))
+    return kept
+
+
+def where_from(e):
+    """Which file an entry comes from (for the page's tables)."""
+    return f"config/bands/{e['site']}.yaml" if e.get("site") else "config/emitters.yaml"

@@ -4,13 +4,23 @@
 (:mod:`rfisieve.review.occupancy`) into ``<outdir>/occupancy/run.csv`` and ``run.h5``, draws
 the figures into ``<outdir>/report/`` and writes ``<outdir>/report/index.html``, one
 self-contained page (images embedded as base64 ``data:`` URIs) that opens from disk.
+It also reads, read-only, each scan's mask file (settings and version as used), the scan
+file itself (a downsampled dynamic spectrum) and ``<outdir>/failed_scans.csv``
+(:mod:`rfisieve.review.provenance`); each of these may be missing, and the page says so.
+
+Page, top to bottom: overview cards (the kurtosis card says "check" whenever its inputs
+are cut off), failed or skipped scans, flagged samples by cause, the night, the most
+occupied ranges, occupancy by frequency (emitters, protected ranges), change since the
+previous run (settings diff beside the occupancy change), scans (data above mask),
+products, kurtosis check, the settings as used, the mask bits.  All times are UTC.
 
 Figures written (file names are fixed so the workflow can declare them):
 
+* ``report/night.png``: flagged fraction over the night, one panel per band, scans shaded;
 * ``report/band_<band>.png``: occupancy vs frequency, stacked by first cause, emitters marked;
-* ``report/scan_<scan>.png``: time x frequency occupancy image with margins;
-* ``report/kurtosis_<scan>.png``: SK histogram over its expected density and thresholds
-  (a placeholder saying so when the mask has no SK diagnostics);
+* ``report/scan_<scan>.png``: the data (relative to the bandpass) above the mask, same axes;
+* ``report/kurtosis_<scan>.png``: SK histogram around the thresholds over its expected
+  density, and over its whole range (a placeholder when the mask has no SK diagnostics);
 * ``report/change_<band>.png``: change per channel since ``--previous`` (only with it).
 
 ``rfisieve summary OUTDIR`` prints the run overview and the most occupied ranges from
@@ -28,13 +38,17 @@ import os
 import numpy as np
 
 from rfisieve.review import occupancy as occ
-from rfisieve.review.emitters import load_emitters, match_emitters
+from rfisieve.review.emitters import load_emitters, match_emitters, merge_duplicates, where_from
 from rfisieve.errors import ConfigError, ScanError
 from rfisieve.io.scan import atomic_output
 from rfisieve.review.occupancy import BIT_NAMES, fraction
 
 RANGE_FRACTION = 0.2   # a channel belongs to an occupied range at this flagged fraction
 TOP_RANGES = 15
+#: Name of the any-cause fraction column of run.csv, newest first (older runs: ``flagged``).
+FLAGGED_COLUMNS = ("flagged_fraction", "flagged")
+#: Fractions closer than this count as unchanged (run.csv keeps 10 significant digits).
+SAME = 1e-9
 
 
 # ---------------------------------------------------------------------------
@@ -44,18 +58,16 @@ TOP_RANGES = 15
 def annotated_ranges(bands, emitters, threshold=RANGE_FRACTION):
     """Occupied ranges of every band (:func:`rfisieve.review.occupancy.occupied_ranges`) with matching emitters.
 
-    Returns a list of dicts (``band`` and ``emitters`` added), largest flagged sample count first.
+    Returns a list of dicts (``band`` and ``emitters`` added, duplicates merged by
+    :func:`rfisieve.review.emitters.merge_duplicates`), largest flagged sample count first.
     """
     out = []
     for band, agg in bands.items():
         for r in occ.occupied_ranges(agg["freq"], agg["flagged"], agg["samples"], threshold, agg["primary"]):
             r["band"] = band
-            seen, ems = set(), []
-            for e in match_emitters(r["start_mhz"], r["stop_mhz"], emitters):
-                if e["name"].lower() not in seen:   # a site entry repeating a shipped one
-                    seen.add(e["name"].lower())
-                    ems.append(e)
-            r["emitters"] = ems
+            ems = merge_duplicates(match_emitters(r["start_mhz"], r["stop_mhz"], emitters))
+            r["emitters"] = sorted(ems, key=lambda e: -(min(e["stop_mhz"], r["stop_mhz"])
+                                                       - max(e["start_mhz"], r["start_mhz"])))
             out.append(r)
     out.sort(key=lambda r: -r["flagged"])
     return out
@@ -89,18 +101,32 @@ def read_previous(path):
             rows = list(csv.DictReader(fh))
     except (OSError, csv.Error) as err:
         raise ConfigError(path, f"cannot read as CSV ({err})") from None
-    if rows and not {"band", "freq_mhz", "flagged"} <= set(rows[0]):
-        raise ConfigError(path, "not a run.csv (needs columns band, freq_mhz, flagged)")
+    col = next((c for c in FLAGGED_COLUMNS if rows and c in rows[0]), None)
+    if rows and (col is None or not {"band", "freq_mhz"} <= set(rows[0])):
+        raise ConfigError(path, "not a run.csv (needs columns band, freq_mhz and flagged_fraction or flagged)")
     for r in rows:
         try:
             f = float(r["freq_mhz"]) * 1e6
-            v = float(r["flagged"]) if r["flagged"] != "" else np.nan
+            v = float(r[col]) if r[col] != "" else np.nan
         except ValueError:
             raise ConfigError(path, f"bad number in row {r}") from None
         out.setdefault(r["band"], ([], []))
         out[r["band"]][0].append(f)
         out[r["band"]][1].append(v)
     return {b: (occ.freq_key(v[0]), np.array(v[1], float)) for b, v in out.items()}
+
+
+def previous_total(path):
+    """Flagged fraction of a previous run as a whole (run.csv rows weighted by ``samples``), or None."""
+    try:
+        with open(str(path), newline="") as fh:
+            rows = list(csv.DictReader(fh))
+        col = next((c for c in FLAGGED_COLUMNS if rows and c in rows[0]), None)
+        pairs = [(float(r["samples"]), float(r[col])) for r in rows if col and r.get(col) not in ("", None)]
+    except (OSError, csv.Error, KeyError, ValueError):
+        return None
+    n = sum(p[0] for p in pairs)
+    return sum(a * b for a, b in pairs) / n if n else None
 
 
 def previous_on_grid(prev, band, freq_hz):
@@ -125,10 +151,35 @@ def _utc(t):
     return _dt.datetime.fromtimestamp(float(t), tz=_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
 
 
+def _count(n, word):
+    """``1 scan``, ``2 scans``."""
+    return f"{n} {word}{'' if n == 1 else 's'}"
+
+
 def _pct(x, digits=2):
+    """A fraction as a percentage; number and sign joined by a no-break space (no wrapped cells)."""
     if x is None or not np.isfinite(x):
         return "n/a"
-    return f"{100 * x:.{digits}f} %"
+    return f"{100 * x:.{digits}f}\u00a0%"
+
+
+def night_series(scans, points=600):
+    """Flagged fraction over time per band for the night plot: {band: [dict per scan]}."""
+    out = {}
+    for s in scans:
+        a = s["attrs"]
+        t = np.asarray(s["time"], float)
+        if not len(t):
+            continue
+        fl = np.asarray(s["dump/flagged"], float)
+        sm = np.asarray(s["dump/samples"], float)
+        starts = occ.bin_starts(len(t), points)[:-1]
+        tb = np.add.reduceat(t, starts) / np.diff(np.append(starts, len(t)))
+        frac = fraction(np.add.reduceat(fl, starts), np.add.reduceat(sm, starts))
+        dt = float(a.get("integration_time") or 0.0)
+        out.setdefault(str(a["band"]), []).append(
+            {"name": str(a["scan"]), "time": tb, "frac": frac, "start": t[0] - dt / 2, "stop": t[-1] + dt / 2})
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -136,12 +187,17 @@ def _pct(x, digits=2):
 # ---------------------------------------------------------------------------
 
 def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_dir=None,
-                 threshold=RANGE_FRACTION):
+                 threshold=RANGE_FRACTION, data_preview=True):
     """Write run.csv, run.h5, the figures and index.html for the run in ``outdir``.
 
-    Returns the path of ``index.html``.
+    Besides the per-scan occupancy files it reads, read-only, each scan's mask file
+    (settings and version, :func:`rfisieve.review.provenance.mask_provenance`), the
+    scan file itself for a downsampled dynamic spectrum (``data_preview``), and
+    ``<outdir>/failed_scans.csv``.  Returns the path of ``index.html``.
     """
+    from rfisieve import __version__
     from rfisieve.review import plots as rp
+    from rfisieve.review import provenance as pv
 
     scans = [occ.read_scan_h5(p) for p in scan_files]
     names = [str(s["attrs"]["scan"]) for s in scans]
@@ -153,6 +209,10 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     overview = occ.scan_overview(scans)
     emitters = load_emitters(emitters_path, bands_dir=bands_dir, bands=list(bands))
     prev = read_previous(previous) if previous else None
+    provs = {str(s["attrs"]["scan"]): pv.mask_provenance(s["attrs"].get("mask")) for s in scans}
+    settings = pv.band_settings_of([(str(s["attrs"]["band"]), provs[str(s["attrs"]["scan"])]) for s in scans])
+    failed, failed_note = pv.read_failed(outdir)
+    prev_settings, prev_where = pv.previous_settings(previous) if previous else (None, None)
 
     occ_dir = os.path.join(outdir, "occupancy")
     rep_dir = os.path.join(outdir, "report")
@@ -160,12 +220,18 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     os.makedirs(rep_dir, exist_ok=True)
     occ.write_csv(os.path.join(occ_dir, "run.csv"), occ.run_table(bands))
     occ.write_run_h5(os.path.join(occ_dir, "run.h5"), bands, overview,
-                     attrs={"emitters_json": json.dumps(emitters), "range_fraction": float(threshold)})
+                     attrs={"emitters_json": json.dumps(emitters), "range_fraction": float(threshold),
+                            "band_settings_json": json.dumps(settings, sort_keys=True),
+                            "rfisieve_version": __version__})
 
-    figs = {"band": {}, "scan": {}, "kurtosis": {}, "change": {}}
+    figs = {"band": {}, "scan": {}, "kurtosis": {}, "change": {}, "night": None, "shown": {}, "data_note": {}}
+    if scans:
+        p = os.path.join(rep_dir, "night.png")
+        rp.night_fraction(p, night_series(scans))
+        figs["night"] = p
     for band, agg in bands.items():
         p = os.path.join(rep_dir, f"band_{band}.png")
-        rp.band_occupancy(p, band, agg, emitters)
+        figs["shown"][band] = rp.band_occupancy(p, band, agg, emitters)
         figs["band"][band] = p
         if prev is not None:
             p = os.path.join(rep_dir, f"change_{band}.png")
@@ -175,18 +241,26 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     sk_summaries = {}
     for s in scans:
         name = str(s["attrs"]["scan"])
+        data, note = None, "not read (data_preview=False)"
+        if data_preview:
+            ident = provs[name].get("input") or {}
+            data, note = pv.data_preview(ident.get("path"), s["image/time_start"], s["image/chan_start"],
+                                         expect_size=ident.get("size"))
+        figs["data_note"][name] = note
         p = os.path.join(rep_dir, f"scan_{name}.png")
-        rp.scan_image(p, s)
+        rp.scan_image(p, s, data=data, data_note=note if data is not None else "")
         figs["scan"][name] = p
         p = os.path.join(rep_dir, f"kurtosis_{name}.png")
         sk = s.get("sk") or {"edges": np.linspace(0, 3, 2), "counts": np.zeros((1, 1), np.int64), "attrs": {}}
-        rp.sk_diagnostic(p, sk, title=f"Spectral kurtosis of scan {name}: measured vs expected")
-        sk_summaries[name] = rp.sk_summary(sk)[0]
+        sk_summaries[name] = rp.sk_diagnostic(p, sk, title=f"Spectral kurtosis of scan {name}: measured vs expected")
         figs["kurtosis"][name] = p
 
     ranges = annotated_ranges(bands, emitters, threshold)
+    ctx = {"provs": provs, "settings": settings, "failed": failed, "failed_note": failed_note,
+           "prev_settings": prev_settings, "prev_where": prev_where, "version": __version__,
+           "prev_total": previous_total(previous) if previous else None}
     page = render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev,
-                       threshold, previous)
+                       threshold, previous, ctx)
     index = os.path.join(rep_dir, "index.html")
     with atomic_output(index) as tmp, open(tmp, "w", encoding="utf-8") as fh:
         fh.write(page)
@@ -201,7 +275,7 @@ def _img(path, alt):
 
 CSS = """
 :root { --paper:#fbf8f1; --ink:#23202b; --muted:#6c6577; --line:#d9d2c3; --card:#ffffff;
-        --accent:#b8503f; }
+        --total:#6c6577; --alert:#fff1c9; }
 * { box-sizing: border-box; }
 body { margin:0; background:var(--paper); color:var(--ink);
        font: 15px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, "DejaVu Sans", sans-serif; }
@@ -209,44 +283,49 @@ header { padding: 22px 32px 14px; border-bottom: 3px solid var(--ink); }
 header h1 { margin:0; font-size: 26px; letter-spacing: .01em; }
 header .sub { color: var(--muted); margin-top: 4px; }
 nav { padding: 8px 32px; border-bottom: 1px solid var(--line); font-size: 14px; }
-nav a { margin-right: 18px; color: var(--ink); }
+nav a { margin-right: 18px; color: var(--ink); white-space: nowrap; }
 main { padding: 8px 32px 40px; max-width: 1500px; }
 h2 { margin: 30px 0 8px; font-size: 20px; border-bottom: 1px solid var(--line); padding-bottom: 4px; }
 h3 { margin: 18px 0 6px; font-size: 16px; }
 .cards { display:flex; flex-wrap:wrap; gap: 12px; margin: 14px 0; }
 .card { background: var(--card); border: 1px solid var(--line); border-radius: 6px; padding: 10px 16px;
         min-width: 150px; }
-.card .v { font-size: 26px; font-weight: 700; }
+.card .v { font-size: 26px; font-weight: 700; white-space: nowrap; }
 .card .k { color: var(--muted); font-size: 13px; }
-.card.hot .v { color: var(--accent); }
+.card.alert { background: var(--alert); border: 2px solid var(--ink); }
+.wide { overflow-x: auto; max-width: 100%; }
 table { border-collapse: collapse; margin: 8px 0 14px; font-size: 13.5px; background: var(--card); }
-th, td { border-bottom: 1px solid var(--line); padding: 4px 10px; text-align: right; vertical-align: top; }
+th, td { border-bottom: 1px solid var(--line); padding: 4px 10px; text-align: right; vertical-align: top;
+         white-space: nowrap; }
 th { background: #efe9dc; text-align: right; font-weight: 600; }
 td.l, th.l { text-align: left; }
-.bar { display:inline-block; height: 11px; background: var(--accent); vertical-align: middle;
+td.w { white-space: normal; min-width: 260px; max-width: 640px; }
+.bar { display:inline-block; height: 11px; background: var(--total); vertical-align: middle;
        border-radius: 2px; margin-right: 6px; }
-.causes td.l { min-width: 130px; }
 .swatch { display:inline-block; width: 11px; height: 11px; border-radius: 2px; margin-right: 6px;
           vertical-align: -1px; }
 img { max-width: 100%; height: auto; border: 1px solid var(--line); border-radius: 4px; background: var(--paper); }
 .note { color: var(--muted); font-size: 13px; max-width: 1100px; }
-.warn { color: var(--accent); font-weight: 600; }
+.warn { background: var(--alert); border-left: 4px solid var(--ink); padding: 6px 10px; font-weight: 600;
+        max-width: 1100px; }
 .em { font-size: 12.5px; }
 .em span.p { color: #4f7a3a; }
-details { margin: 6px 0 14px; }
-summary { cursor: pointer; font-weight: 600; }
+.side { display:flex; gap: 24px; align-items: flex-start; flex-wrap: wrap; }
+code { background: #efe9dc; padding: 0 4px; border-radius: 3px; }
 .scan { margin-bottom: 26px; }
 """
 
 
-def _table(head, rows, left=(0,), cls=""):
-    out = [f'<table class="{cls}"><thead><tr>']
+def _table(head, rows, left=(0,), cls="", wrap=()):
+    """An HTML table; cells never wrap except the columns listed in ``wrap`` (long prose)."""
+    out = [f'<div class="wide"><table class="{cls}"><thead><tr>']
     out += [f'<th class="{"l" if i in left else ""}">{html.escape(str(h))}</th>' for i, h in enumerate(head)]
     out.append("</tr></thead><tbody>")
     for r in rows:
         out.append("<tr>" + "".join(
-            f'<td class="{"l" if i in left else ""}">{c}</td>' for i, c in enumerate(r)) + "</tr>")
-    out.append("</tbody></table>")
+            f'<td class="{"l" if i in left else ""}{" w" if i in wrap else ""}">{c}</td>'
+            for i, c in enumerate(r)) + "</tr>")
+    out.append("</tbody></table></div>")
     return "".join(out)
 
 
@@ -257,44 +336,264 @@ def _emitter_cell(ems, limit=3):
     for e in ems[:limit]:
         cls = "p" if e["kind"] == "protected" else ""
         label = html.escape(e["name"]) + (" (protected)" if e["kind"] == "protected" else "")
-        if e.get("site"):
-            label += " [site]"
-        parts.append(f'<span class="{cls}" title="{html.escape(e["source"])}">{label}</span>')
+        tip = f"{e['source']} [{where_from(e)}]"
+        parts.append(f'<span class="{cls}" title="{html.escape(tip)}">{label}</span>')
     more = f" +{len(ems) - limit} more" if len(ems) > limit else ""
     return '<span class="em">' + "; ".join(parts) + more + "</span>"
 
 
-def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev, threshold, previous):
+def _mhz(a, b):
+    return f"{a:.3f}\u2013{b:.3f}"
+
+
+def _settings_rows(flat, keys=None):
+    from rfisieve.review.provenance import fmt_value
+
+    return [[f"<code>{html.escape(k)}</code>", html.escape(fmt_value(flat[k]))] for k in (keys or sorted(flat))]
+
+
+def _change_section(h, bands, figs, prev, previous, ctx):
+    """The change section: per band, the settings diff beside the occupancy change."""
+    from rfisieve.review import provenance as pv
+
+    esc = html.escape
+    h.append('<h2 id="change">Change since the previous run</h2>')
+    if prev is None:
+        h.append('<p class="note">No previous run given, so nothing is compared. To compare with an earlier '
+                 "night, give its table: <code>previous_run: /path/to/earlier-outdir/occupancy/run.csv</code> "
+                 "in the run config, or <code>rfisieve review OUTDIR --scans ... --previous "
+                 "EARLIER/occupancy/run.csv</code>. Channels are matched by centre frequency; the earlier "
+                 "run's settings are read from the <code>run.h5</code> beside that file (or its mask files) "
+                 "and any difference is listed here.</p>")
+        return
+    where = ctx.get("prev_where")
+    h.append(f'<p class="note">Compared with {esc(str(previous))}; channels matched by centre frequency. '
+             + (f"Previous settings read from {esc(str(where))}." if where else
+                "The previous run's settings were not found (no run.h5 with them beside that file, no "
+                "flags/ directory), so only occupancy is compared.") + "</p>")
+    for band, agg in bands.items():
+        p, before = figs["change"][band]
+        now = fraction(agg["flagged"], agg["samples"])
+        d = now - before
+        ok = np.isfinite(d)
+        old = (ctx.get("prev_settings") or {}).get(band)
+        diff = pv.settings_diff(old, ctx["settings"].get(band)) if old is not None else None
+        if diff is None:
+            stext = "previous settings unknown"
+        elif not diff:
+            stext = "settings unchanged"
+        else:
+            stext = "settings changed: " + "; ".join(f"{k} {a} \u2192 {b}" for k, a, b in diff)
+        if not ok.any():
+            h.append(f"<p><b>Band {esc(band)}</b>: the previous run has no channels of this band; {esc(stext)}.</p>")
+            continue
+        if not np.any(np.abs(d[ok]) > SAME):
+            h.append(f"<p><b>Band {esc(band)}</b>: occupancy unchanged over the {int(ok.sum())} channels "
+                     f"compared; {esc(stext)}.</p>")
+            continue
+        h.append(f"<h3>Band {esc(band)}</h3>")
+        up, down = int(np.sum(d[ok] > SAME)), int(np.sum(d[ok] < -SAME))
+        occ_rows = [["channels compared", f"{int(ok.sum())} of {len(d)}"],
+                    ["mean change", f"{100 * np.nanmean(d):+.2f} points"],
+                    ["whole band, before \u2192 now",
+                     f"{_pct(np.nanmean(before[ok]), 2)} \u2192 {_pct(np.nanmean(now[ok]), 2)}"],
+                    ["channels more / less flagged", f"{up} / {down}"]]
+        set_rows = ([[f"<code>{esc(k)}</code>", esc(a), esc(b)] for k, a, b in diff] if diff else
+                    [[esc(stext), "", ""]])
+        h.append('<div class="side"><div><b>Occupancy</b>' + _table(["", "value"], occ_rows) + "</div><div>"
+                 "<b>Settings</b>" + _table(["setting", "previous", "now"], set_rows) + "</div></div>")
+        h.append(_img(p, f"change of occupancy, band {band}"))
+        order = np.argsort(-np.abs(np.where(ok, d, 0)))[:8]
+        rows = [[f"{agg['freq'][i] / 1e6:.3f}", _pct(before[i], 1), _pct(now[i], 1),
+                 f"{100 * d[i]:+.1f}"] for i in order if ok[i] and abs(d[i]) > SAME]
+        if rows:
+            h.append(_table(["channel MHz", "before", "now", "change (points)"], rows, left=()))
+
+
+def _failed_section(h, ctx, nscans, names=()):
+    esc = html.escape
+    failed, note = ctx.get("failed"), ctx.get("failed_note")
+    if failed:
+        # a scan listed as failed that has a mask on this page was flagged by a later run
+        later = [r for r in failed if r["scan"] in names]
+        failed = [r for r in failed if r["scan"] not in names]
+        if later:
+            h.append(f'<p class="note">{esc(", ".join(r["scan"] for r in later))}: listed in {esc(note)} as '
+                     "failed, but flagged since (shown below).</p>")
+    h.append('<h2 id="failed">Failed or skipped scans</h2>')
+    if failed is None:
+        h.append(f'<p class="note">{esc(note)}.</p>')
+    elif not failed:
+        h.append(f'<p class="note">None: every scan of the night was flagged ({nscans} on this page; '
+                 f"{esc(note)} lists no failure).</p>")
+    else:
+        h.append(f'<p class="warn">{_count(len(failed), "scan")} failed and '
+                 f'{"is" if len(failed) == 1 else "are"} missing from the rest of this page: '
+                 f'{"its" if len(failed) == 1 else "their"} data are not flagged.</p>')
+        h.append(_table(["scan", "stage", "reason", "file"],
+                        [[f"<b>{esc(r['scan'])}</b>", esc(r["stage"]), esc(r["reason"]), esc(r["path"])]
+                         for r in failed], left=(0, 1, 2, 3), wrap=(2,)))
+
+
+#: Ranges of a band config shown with what was flagged inside them: key, title, what it means.
+RANGE_KEYS = (("protect", "Protected ranges", "how much was flagged inside them anyway"),
+              ("known_bad", "Known-bad ranges", "how much was flagged inside them, by cause"))
+
+
+def _protected_section(h, band, agg, settings):
+    """Protected (band-config key ``protect``) and known-bad ranges of a band, and what was
+    flagged inside them; nothing when the band config has neither."""
+    for key, title, what in RANGE_KEYS:
+        _range_table(h, band, agg, settings, key, title, what)
+
+
+def _range_table(h, band, agg, settings, key, title, what):
+    from rfisieve.review import provenance as pv
+
+    esc = html.escape
+    prot = pv.protected_ranges(settings, key)
+    if not prot:
+        return
+    rows = []
+    for r in prot:
+        n, fr, per_bit = pv.flagged_inside(agg["freq"], agg["flagged"], agg["samples"], agg["bits"],
+                                           r["start_mhz"], r["stop_mhz"])
+        causes = "" if per_bit is None else ", ".join(
+            f"{name} {_pct(v, 1)}" for name, v in zip(BIT_NAMES, per_bit) if v > 0)
+        rows.append([_mhz(r["start_mhz"], r["stop_mhz"]), esc(r["reason"]) or "-", esc(r["source"]) or "-",
+                     str(n), f"<b>{_pct(fr, 2)}</b>" if n else "no channel inside", esc(causes) or "-"])
+    h.append(f"<p><b>{esc(title)} of band {esc(band)}</b> (band config <code>{esc(key)}</code>) and "
+             f"{esc(what)}:</p>")
+    head = ["MHz", "reason", "source", "channels", "flagged inside", "by cause"]
+    if not any(r["source"] for r in prot):   # known_bad entries carry no source: no empty column
+        head.pop(2)
+        rows = [r[:2] + r[3:] for r in rows]
+        h.append(_table(head, rows, left=(1, 4), wrap=(1,)))
+        return
+    h.append(_table(head, rows, left=(1, 2, 5), wrap=(1, 2)))
+
+
+def _emitter_table(h, band, shown):
+    esc = html.escape
+    if not shown:
+        return
+    rows = []
+    for e in shown:
+        src = esc(e["source"])
+        for where, other in e.get("also", []):
+            src += f'<br><span class="note">also {esc(where)}: {esc(other)}</span>'
+        rows.append([esc(e["name"]), _mhz(e["start_mhz"], e["stop_mhz"]),
+                     "protected" if e["kind"] == "protected" else "emitter", esc(where_from(e)), src])
+    h.append(f"<details><summary>Known emitters and protected bands drawn above band {esc(band)}, with their "
+             "sources</summary>" + _table(["name", "MHz", "kind", "listed in", "source"], rows,
+                                         left=(0, 2, 3, 4), wrap=(4,)) + "</details>")
+
+
+def _provenance_section(h, scans, ctx, sk_summaries):
+    from rfisieve.review import provenance as pv
+
+    esc = html.escape
+    h.append('<h2 id="provenance">What produced these flags</h2>')
+    versions = sorted({p["version"] for p in ctx["provs"].values() if p.get("version")})
+    h.append(f'<p>Masks written by rfisieve {esc(", ".join(versions) or "(version not recorded)")}; this page by '
+             f"rfisieve {esc(ctx['version'])}.</p>")
+    missing = [n for n, p in ctx["provs"].items() if p.get("problem") or p.get("settings") is None]
+    if missing:
+        h.append(f'<p class="note">Settings not recorded for {esc(", ".join(missing))} '
+                 f"({esc(ctx['provs'][missing[0]].get('problem') or 'no band_settings attribute')}).</p>")
+    by_band = {}
+    for s in scans:
+        name, band = str(s["attrs"]["scan"]), str(s["attrs"]["band"])
+        p = ctx["provs"][name]
+        if p.get("settings") is not None:
+            by_band.setdefault(band, []).append((name, p))
+    if by_band:
+        flat = {band: pv.shown_settings(lst[0][1]["settings"]) for band, lst in by_band.items()}
+        keys = sorted(set().union(*flat.values()))
+        rows = []
+        for k in keys:
+            vals = [pv.fmt_value(flat[b][k]) if k in flat[b] else "-" for b in by_band]
+            rows.append([f"<code>{esc(k)}</code>", *[esc(v) for v in vals]])
+        notes = []
+        for band, lst in by_band.items():
+            differ = [n for n, p in lst[1:] if pv.settings_diff(lst[0][1]["settings"], p["settings"])]
+            path = lst[0][1].get("band_config_path") or "?"
+            notes.append(f"band {esc(band)}: {esc(path)}, " + (
+                f"scans {esc(', '.join(differ))} used other settings (see their mask files)" if differ
+                else f"the same for {'all ' if len(lst) > 1 else ''}{_count(len(lst), 'scan')}"))
+        h.append("<h3>Band settings as used</h3><p class=\"note\">Read from the mask files (attribute "
+                 "<code>band_settings</code>); " + "; ".join(notes) + ". Known-bad and protected ranges and "
+                 "emitter lists are shown with each band above.</p>")
+        h.append(_table(["setting", *[f"band {b}" for b in by_band]], rows, left=tuple(range(len(by_band) + 1))))
+    h.append("<h3>Spectral kurtosis thresholds used</h3>")
+    rows = []
+    for name, sm in sk_summaries.items():
+        def num(key, fmt):
+            v = sm.get(key)
+            return "-" if v is None else format(float(v), fmt)
+        rows.append([esc(name), esc(str(sm.get("mode") or "-")), esc(str(sm.get("m"))), esc(str(sm.get("n"))),
+                     esc(str(sm.get("d"))), num("pfa", ".3g"), esc(str(sm.get("method") or "-")),
+                     num("lower", ".4f"), num("upper", ".4f")])
+    h.append(_table(["scan", "mode", "M", "N", "d", "PFA per tail", "method", "lower", "upper"], rows, left=(0, 1, 6)))
+
+
+def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev, threshold, previous, ctx=None):
     """The review page as one HTML string (see :func:`build_review`)."""
     from rfisieve.review.plots import CAUSE_COLOURS
 
+    ctx = ctx or {"provs": {}, "settings": {}, "failed": None, "failed_note": "failed_scans.csv not read",
+                  "prev_settings": None, "prev_where": None, "version": "?"}
     tot = run_totals(overview)
     frac = tot["flagged"] / tot["samples"] if tot["samples"] else float("nan")
     esc = html.escape
+    nfailed = len([r for r in ctx["failed"] or [] if r["scan"] not in {o["name"] for o in overview}])
     h = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
          '<meta name="viewport" content="width=device-width, initial-scale=1">',
          f"<title>rfisieve review: {esc(os.path.basename(os.path.abspath(outdir)))}</title>",
          f"<style>{CSS}</style></head><body>"]
+    versions = sorted({p["version"] for p in ctx["provs"].values() if p.get("version")})
     h.append(f"<header><h1>Morning review of {esc(os.path.abspath(outdir))}</h1>"
-             f'<div class="sub">Observed {esc(_utc(tot["start"]))} to {esc(_utc(tot["stop"]))} &middot; '
-             f"page written {esc(_dt.datetime.now(_dt.timezone.utc).strftime('%Y-%m-%d %H:%M UTC'))} "
-             f"by rfisieve review</div></header>")
-    nav = [("overview", "Overview"), ("ranges", "Most occupied ranges"), ("bands", "By frequency")]
-    if prev is not None:
-        nav.append(("change", "Change since previous run"))
-    nav += [("scans", "Scans"), ("products", "Products"), ("kurtosis", "Kurtosis check"), ("bits", "Mask bits")]
+             f'<div class="sub">Observed {esc(_utc(tot["start"]))} to {esc(_utc(tot["stop"]))} (all times UTC) '
+             f"&middot; flagged by rfisieve {esc(', '.join(versions) or '?')} &middot; page written "
+             f"{esc(_dt.datetime.now(_dt.timezone.utc).strftime('%Y-%m-%d %H:%M UTC'))}</div></header>")
+    nav = [("overview", "Overview"), ("failed", "Failed scans"), ("night", "Night"),
+           ("ranges", "Most occupied ranges"), ("bands", "By frequency"), ("change", "Change"),
+           ("scans", "Scans"), ("products", "Products"), ("kurtosis", "Kurtosis check"),
+           ("provenance", "Settings"), ("bits", "Mask bits")]
     h.append("<nav>" + "".join(f'<a href="#{a}">{esc(t)}</a>' for a, t in nav) + "</nav><main>")
 
     # --- overview -----------------------------------------------------------
     h.append('<h2 id="overview">Overview</h2><div class="cards">')
-    cards = [("flagged", _pct(frac), "hot"), ("scans", str(tot["scans"]), ""),
+    bad_sk = {n: s for n, s in sk_summaries.items() if s.get("verdict") == "check"}
+    before = ctx.get("prev_total")
+    cards = [("flagged" + (f" (previous run {_pct(before)})" if before is not None else ""), _pct(frac), ""),
+             ("scans flagged" + (f", {nfailed} failed" if nfailed else ""), str(tot["scans"]),
+              "alert" if nfailed else ""),
              ("bands", ", ".join(tot["bands"]) or "none", ""), ("hours observed", f"{tot['hours']:.2f} h", ""),
-             ("samples", f"{tot['samples']:,}", "")]
-    bad_sk = [n for n, s in sk_summaries.items() if s.get("ratio") is not None and not 0.85 <= s["ratio"] <= 1.15]
-    cards.append(("kurtosis check", "check M, N, d" if bad_sk else "ok", "hot" if bad_sk else ""))
+             ("samples", f"{tot['samples']:,}", ""),
+             (f"kurtosis check ({len(bad_sk)} of {_count(len(sk_summaries), 'scan')})" if bad_sk
+              else "kurtosis check",
+              "check" if bad_sk else ("ok" if any(s.get("verdict") == "ok" for s in sk_summaries.values())
+                                      else "n/a"), "alert" if bad_sk else "")]
     for k, v, cls in cards:
         h.append(f'<div class="card {cls}"><div class="v">{esc(v)}</div><div class="k">{esc(k)}</div></div>')
     h.append("</div>")
+    if prev is not None and ctx.get("prev_settings"):
+        from rfisieve.review.provenance import settings_diff
+
+        changed = []
+        for band in bands:
+            old = ctx["prev_settings"].get(band)
+            diff = settings_diff(old, ctx["settings"].get(band)) if old is not None else []
+            if diff:
+                changed.append(f"band {esc(band)}: " + "; ".join(f"{esc(k)} {esc(a)} \u2192 {esc(b)}"
+                                                               for k, a, b in diff))
+        h.append('<p>Settings since the previous run: ' + ("; ".join(changed) if changed else "unchanged")
+                 + ' (<a href="#change">change</a>).</p>')
+    if bad_sk:
+        items = "".join(f"<li>{esc(n)}: {esc('; '.join(s['reasons']))}</li>" for n, s in bad_sk.items())
+        h.append(f'<div class="warn">Kurtosis check: look at these scans (see Kurtosis check)<ul>{items}</ul></div>')
+    _failed_section(h, ctx, tot["scans"], {r["name"] for r in overview})
     rows = []
     for k, name in enumerate(BIT_NAMES):
         fb = tot["bits"][k] / tot["samples"] if tot["samples"] else float("nan")
@@ -304,12 +603,16 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
                      f'<span class="bar" style="width:{w}px;background:{CAUSE_COLOURS[name]}"></span>{_pct(fb)}'])
     rows.append(["<b>any cause</b>", f"<b>{tot['flagged']:,}</b>",
                  f'<span class="bar" style="width:{int(round(300 * np.nan_to_num(frac)))}px"></span><b>{_pct(frac)}</b>'])
-    h.append(_table(["cause", "samples", "fraction of all samples"], rows, left=(0, 2), cls="causes"))
+    h.append('<h3>Flagged samples by cause</h3>')
+    h.append(_table(["cause", "samples", "share of all samples"], rows, left=(0, 2), cls="causes"))
     h.append('<p class="note">A sample with several causes counts once under "any cause" and once under '
-             'each of its causes, so the cause rows can add up to more than the total.</p>')
-    if bad_sk:
-        h.append(f'<p class="warn">The spectral kurtosis of {esc(", ".join(bad_sk))} does not follow the '
-                 'expected distribution: M, N or d may be wrong for these scans (see Kurtosis check).</p>')
+             "each of its causes, so the cause rows can add up to more than the total. Each cause keeps its "
+             "colour everywhere on this page; totals (any cause) are grey.</p>")
+
+    # --- night --------------------------------------------------------------
+    h.append('<h2 id="night">The night</h2>')
+    if figs.get("night"):
+        h.append(_img(figs["night"], "flagged fraction over the night per band"))
 
     # --- ranges -------------------------------------------------------------
     h.append(f'<h2 id="ranges">Most occupied channel ranges</h2><p class="note">Contiguous runs of '
@@ -323,7 +626,7 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
                      esc(r["cause"]), _emitter_cell(r["emitters"])])
     if rows:
         h.append(_table(["band", "from MHz", "to MHz", "channels", "mean flagged", "peak", "first cause",
-                         "known emitters"], rows, left=(0, 6, 7)))
+                         "known emitters"], rows, left=(0, 6, 7), wrap=(7,)))
         if len(ranges) > TOP_RANGES:
             h.append(f'<p class="note">{len(ranges) - TOP_RANGES} smaller ranges not shown '
                      "(`rfisieve summary` lists them).</p>")
@@ -332,32 +635,17 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
 
     # --- by frequency -------------------------------------------------------
     h.append('<h2 id="bands">Occupancy by frequency</h2><p class="note">Run total per channel, each flagged '
-             "sample coloured by its first cause in bit order (input, invalid, static, sk, sumthreshold, "
-             "grown, cut); black line = any cause. Above each plot: known emitters (blue) "
-             "and protected bands (green, also hatched in the plot).</p>")
+             "sample coloured by its first cause in bit order (" + esc(", ".join(BIT_NAMES)) + "); black "
+             "line = any cause. Above each plot: known emitters (blue-grey) and protected radio-astronomy "
+             "bands (green, also hatched in the plot), each named once; the list with sources is below "
+             "each plot.</p>")
     for band in bands:
         h.append(f"<h3>Band {esc(band)}</h3>" + _img(figs["band"][band], f"occupancy of band {band}"))
+        _emitter_table(h, band, figs.get("shown", {}).get(band, []))
+        _protected_section(h, band, bands[band], ctx["settings"].get(band))
 
     # --- change -------------------------------------------------------------
-    if prev is not None:
-        h.append(f'<h2 id="change">Change since the previous run</h2><p class="note">Compared with '
-                 f"{esc(str(previous))}; channels matched by centre frequency.</p>")
-        for band, agg in bands.items():
-            p, before = figs["change"][band]
-            now = fraction(agg["flagged"], agg["samples"])
-            d = now - before
-            h.append(f"<h3>Band {esc(band)}</h3>" + _img(p, f"change of occupancy, band {band}"))
-            ok = np.isfinite(d)
-            if not ok.any():
-                h.append('<p class="note">The previous run has no channels of this band.</p>')
-                continue
-            order = np.argsort(-np.abs(np.where(ok, d, 0)))[:8]
-            rows = [[f"{agg['freq'][i] / 1e6:.3f}", _pct(before[i], 1), _pct(now[i], 1),
-                     f"{100 * d[i]:+.1f}"] for i in order if ok[i] and d[i] != 0]
-            h.append(f'<p class="note">{int(ok.sum())} of {len(d)} channels compared; mean change '
-                     f"{100 * np.nanmean(d):+.2f} percentage points.</p>")
-            if rows:
-                h.append(_table(["channel MHz", "before", "now", "change (points)"], rows, left=()))
+    _change_section(h, bands, figs, prev, previous, ctx)
 
     # --- scans --------------------------------------------------------------
     h.append('<h2 id="scans">Scans</h2>')
@@ -365,14 +653,18 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
     for r in overview:
         f = r["flagged"] / r["samples"] if r["samples"] else float("nan")
         bits = [_pct(b / r["samples"] if r["samples"] else float("nan"), 1) for b in r["bits"]]
-        rows.append([esc(r["name"]), esc(r["band"]), esc(_utc(r["start_time"])), f"{r['hours']:.2f}",
+        rows.append([esc(r["name"]), esc(r["band"]), esc(_utc(r["start_time"])[:-4]), f"{r['hours']:.2f}",
                      str(r["ntime"]), str(r["nchan"]), str(r["nprod"]), f"<b>{_pct(f, 1)}</b>", *bits])
-    h.append(_table(["scan", "band", "start", "hours", "dumps", "channels", "products", "flagged",
+    h.append(_table(["scan", "band", "start, UTC", "hours", "dumps", "chans", "prods", "flagged",
                      *BIT_NAMES], rows, left=(0, 1, 2)))
+    h.append('<p class="note">Per scan: the data (power relative to each channel\'s median, read from the '
+             "scan file) above the mask (share of each bin flagged by any cause), on the same axes.</p>")
     for s in scans:
         name = str(s["attrs"]["scan"])
-        h.append(f'<div class="scan"><h3>{esc(name)}</h3>' + _img(figs["scan"][name], f"occupancy image of {name}")
-                 + "</div>")
+        note = figs.get("data_note", {}).get(name, "")
+        extra = "" if not note or "product" in note else f'<p class="note">Data not shown: {esc(note)}.</p>'
+        h.append(f'<div class="scan"><h3>{esc(name)}</h3>{extra}'
+                 + _img(figs["scan"][name], f"data and mask of {name}") + "</div>")
 
     # --- products -----------------------------------------------------------
     h.append('<h2 id="products">Products</h2><p class="note">Over all scans; one row per product.</p>')
@@ -394,28 +686,35 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
 
     # --- kurtosis -----------------------------------------------------------
     h.append('<h2 id="kurtosis">Kurtosis check</h2><p class="note">The measured spectral kurtosis of the '
-             "auto products over the density expected for Gaussian noise with the M, N and d the "
-             "flagger used; dashed lines: its thresholds. Clean data follows the curve in the middle; "
-             "a histogram much wider or narrower than the curve (width ratio far from 1) or off-centre "
-             "means M, N or d is wrong for the scan.</p>")
+             "auto products: left, around the thresholds (dashed) over the density expected for Gaussian "
+             "noise with the M, N and d the flagger used; right, the whole range of the recorded histogram, "
+             "so that both tails show, with the values beyond its end counted in a hatched bar. Clean data "
+             "follows the curve; a histogram much wider or narrower than the curve (width ratio far from 1) "
+             "means M, N or d is wrong. The check says <b>check</b> whenever values lie beyond the "
+             "histogram or a threshold lies outside it.</p>")
     rows = []
     for name, sm in sk_summaries.items():
         ratio = sm.get("ratio")
-        flag = "" if ratio is None or 0.85 <= ratio <= 1.15 else ' class="warn"'
-        rows.append([esc(name), esc(str(sm.get("mode") or "-")), esc(str(sm.get("m"))), esc(str(sm.get("n"))),
-                     esc(str(sm.get("d"))), esc(f"{sm['lower']:.4f}" if sm.get("lower") is not None else "-"),
+        verdict = sm.get("verdict") or "-"
+        rows.append([esc(name), f"<b>{esc(verdict)}</b>" if verdict == "check" else esc(verdict),
+                     esc(str(sm.get("m"))), esc(str(sm.get("n"))), esc(str(sm.get("d"))),
+                     esc(f"{sm['lower']:.4f}" if sm.get("lower") is not None else "-"),
                      esc(f"{sm['upper']:.4f}" if sm.get("upper") is not None else "-"),
                      f"{sm['median']:.4f}" if sm.get("median") is not None else "-",
-                     f"<span{flag}>{ratio:.2f}</span>" if ratio is not None else "-",
-                     _pct(sm.get("outside"), 2) if sm.get("outside") is not None else "-"])
-    h.append(_table(["scan", "mode", "M", "N", "d", "lower", "upper", "median SK", "width ratio",
-                     "outside thresholds"], rows, left=(0, 1)))
+                     f"{ratio:.2f}" if ratio is not None else "-",
+                     _pct(sm.get("outside"), 2) if sm.get("outside") is not None else "unknown",
+                     f"{sm.get('beyond', 0):,} (\u2265\u00a0{sm['top']:.3g})" if sm.get("top") is not None else "-"])
+    h.append(_table(["scan", "check", "M", "N", "d", "lower", "upper", "median SK", "width ratio",
+                     "outside thresholds", "beyond histogram"], rows, left=(0, 1)))
     notes = sorted({sm["note"] for sm in sk_summaries.values() if sm.get("note")})
     if notes:
         h.append('<p class="note">Expected curve: ' + esc("; ".join(notes)) + ".</p>")
     for s in scans:
         name = str(s["attrs"]["scan"])
         h.append(f"<h3>{esc(name)}</h3>" + _img(figs["kurtosis"][name], f"kurtosis diagnostic of {name}"))
+
+    # --- provenance ---------------------------------------------------------
+    _provenance_section(h, scans, ctx, sk_summaries)
 
     # --- bits ---------------------------------------------------------------
     from rfisieve.bits import BIT_TABLE
@@ -523,8 +822,9 @@ def register_cli(subparsers):
             "page OUTDIR/report/index.html. Prints the page's path."),
         formatter_class=fmt)
     p.add_argument("outdir", metavar="OUTDIR", help="the run's output directory")
-    p.add_argument("--scans", nargs="+", required=True, metavar="OCC.h5",
-                   help="per-scan occupancy files (OUTDIR/occupancy/<scan>.h5)")
+    p.add_argument("--scans", nargs="*", default=[], metavar="OCC.h5",
+                   help="per-scan occupancy files (OUTDIR/occupancy/<scan>.h5); none when every scan "
+                        "failed (the page then names the failed scans only)")
     p.add_argument("--previous", metavar="RUN.csv", default=None,
                    help="a previous run's run.csv: show the change of occupancy per channel since then")
     p.add_argument("--emitters", metavar="YAML", default=None,

@@ -2,7 +2,8 @@
 
 Each function takes counts (dicts from :mod:`rfisieve.review.occupancy`) and writes one PNG;
 the page embeds them and Snakemake's report registers the same files.  The palette is
-the project's own ("moorland"): warm paper background, ink text, one colour per cause.
+the project's own ("moorland"): warm paper background, ink text, one colour per cause,
+used for that cause only; totals (any cause) are drawn in one neutral grey.
 """
 
 import datetime as _dt
@@ -32,10 +33,6 @@ CAUSE_COLOURS = {
 }
 EMITTER_COLOUR = "#7d93ab"
 PROTECTED_COLOUR = "#4f7a3a"
-
-#: Occupancy colour map: paper -> straw -> ember -> claret -> night.
-EMBER = LinearSegmentedColormap.from_list(
-    "rfisieve_ember", ["#fbf8f1", "#f0d9a8", "#e09a5b", "#b8503f", "#6e2540", "#221530"])
 
 STYLE = {
     "figure.facecolor": PAPER, "axes.facecolor": PAPER, "savefig.facecolor": PAPER,
@@ -77,122 +74,262 @@ def utc_day_start(t0):
     return start, day.isoformat()
 
 
-def _mark_emitters(ax, emitters, fmin, fmax, strip=None):
-    """Known emitters as labelled bars in lanes on ``strip`` (an axis above ``ax``);
-    protected bands also lightly hatched on ``ax`` itself."""
-    from rfisieve.review.emitters import in_band
+#: Tick steps of a UTC time axis, seconds (each divides a day, so ticks fall on round clock times).
+TIME_STEPS = (1, 2, 5, 10, 15, 30, 60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800, 21600, 43200, 86400)
 
-    shown, seen = [], set()
-    for e in in_band(emitters, fmin, fmax):
-        if e["name"].lower() not in seen:
-            seen.add(e["name"].lower())
-            shown.append(e)
-    lanes = []  # right end (MHz) of the last bar in each lane
-    span = fmax - fmin
+
+def utc_ticks(t0, t1, max_ticks=7):
+    """Round UTC clock times within ``[t0, t1]`` (s since 1970): (ticks in s, labels).
+
+    Labels are ``HH:MM`` (``HH:MM:SS`` when the span is under a few minutes); a day
+    boundary inside the span is just another tick (``00:00``), so times run on across
+    midnight.  The step is the smallest of :data:`TIME_STEPS` giving at most
+    ``max_ticks`` ticks.
+    """
+    t0, t1 = float(min(t0, t1)), float(max(t0, t1))
+    span = max(t1 - t0, 1e-9)
+    step = next((s for s in TIME_STEPS if span / s <= max_ticks - 1), TIME_STEPS[-1])
+    first = np.ceil(t0 / step) * step
+    ticks = np.arange(first, t1 + 1e-6, step)
+    fmt = "%H:%M" if step >= 60 else "%H:%M:%S"
+    labels = [_dt.datetime.fromtimestamp(float(t), tz=_dt.timezone.utc).strftime(fmt) for t in ticks]
+    return ticks, labels
+
+
+def utc_span(t0, t1):
+    """``2026-12-01 23:05 to 2026-12-02 00:40 UTC`` (the date given again only when it changes)."""
+    a = _dt.datetime.fromtimestamp(float(t0), tz=_dt.timezone.utc)
+    b = _dt.datetime.fromtimestamp(float(t1), tz=_dt.timezone.utc)
+    end = b.strftime("%H:%M") if a.date() == b.date() else b.strftime("%Y-%m-%d %H:%M")
+    return f"{a.strftime('%Y-%m-%d %H:%M')} to {end} UTC"
+
+
+def set_time_axis(ax, which, t0, t1, max_ticks=7, label=True):
+    """Put UTC ``HH:MM`` ticks on the x or y axis of ``ax`` (data in s since 1970)."""
+    ticks, labels = utc_ticks(t0, t1, max_ticks)
+    axis = ax.xaxis if which == "x" else ax.yaxis
+    axis.set_ticks(ticks)
+    axis.set_ticklabels(labels)
+    if label:
+        text = f"Time, UTC (HH:MM): {utc_span(t0, t1)}"
+        (ax.set_xlabel if which == "x" else ax.set_ylabel)(text)
+
+
+def _text_width(fig, ax, text, fontsize):
+    """Width of ``text`` in data units of ``ax``'s x axis (measured by the Agg renderer)."""
+    t = ax.text(0, 0, text, fontsize=fontsize)
+    bb = t.get_window_extent(renderer=fig.canvas.get_renderer())
+    t.remove()
+    x0 = ax.transData.inverted().transform((0, 0))[0]
+    x1 = ax.transData.inverted().transform((bb.width, 0))[0]
+    return abs(x1 - x0)
+
+
+def _strip_lanes(fig, strip, shown, fmin, fmax, fontsize):
+    """Lane of each emitter bar so that no two labels (or bars) overlap."""
+    strip.set_xlim(fmin, fmax)
+    lanes, out = [], []
     for e in shown:
         a, b = max(e["start_mhz"], fmin), min(e["stop_mhz"], fmax)
-        protected = e["kind"] == "protected"
-        colour = PROTECTED_COLOUR if protected else EMITTER_COLOUR
-        if protected:
-            ax.axvspan(a, b, color=colour, alpha=0.10, lw=0, zorder=0, hatch="//")
-        if strip is None:
-            continue
-        label_end = a + 0.0075 * span * (len(e["name"]) + 2)
-        end = max(b, label_end)
-        lane = next((i for i, r in enumerate(lanes) if r < a), None)
+        width = _text_width(fig, strip, " " + e["name"] + " ", fontsize)
+        # a label that would run past the right edge is drawn leftwards from the bar's end
+        right = a + width <= fmax
+        lo, hi = (a, max(b, a + width)) if right else (min(a, b - width), b)
+        lane = next((i for i, r in enumerate(lanes) if r < lo), None)
         if lane is None:
-            lanes.append(end)
+            lanes.append(hi)
             lane = len(lanes) - 1
         else:
-            lanes[lane] = end
-        strip.barh(lane, b - a, left=a, height=0.7, color=colour, alpha=0.85 if protected else 0.6, lw=0)
-        strip.text(a, lane, " " + e["name"], va="center", ha="left", fontsize=7.5,
-                   color=INK, clip_on=True)
-    if strip is not None:
-        strip.set_ylim(max(len(lanes), 1) - 0.4, -0.6)
-        strip.set_yticks([])
-        strip.grid(False)
-        for side in ("left", "bottom"):
-            strip.spines[side].set_visible(False)
-        strip.tick_params(axis="x", bottom=False, labelbottom=False)
-        strip.set_xlim(fmin, fmax)
-    return shown
+            lanes[lane] = hi
+        out.append((e, a, b, lane, right))
+    return out, len(lanes)
+
+
+def _emitters_shown(emitters, fmin, fmax):
+    from rfisieve.review.emitters import in_band, merge_duplicates
+
+    return merge_duplicates(in_band(emitters, fmin, fmax))
+
+
+def _draw_strip(strip, placed, nlanes, fmin, fmax, fontsize):
+    for e, a, b, lane, right in placed:
+        protected = e["kind"] == "protected"
+        colour = PROTECTED_COLOUR if protected else EMITTER_COLOUR
+        strip.barh(lane, max(b - a, 1e-9), left=a, height=0.72, color=colour, alpha=0.8 if protected else 0.55, lw=0)
+        strip.text(a if right else b, lane, " " + e["name"] + " ", va="center", ha="left" if right else "right",
+                   fontsize=fontsize, color=INK, clip_on=True)
+    strip.set_ylim(max(nlanes, 1) - 0.4, -0.6)
+    strip.set_yticks([])
+    strip.grid(False)
+    for side in ("left", "bottom"):
+        strip.spines[side].set_visible(False)
+    strip.tick_params(axis="x", bottom=False, labelbottom=False)
+    strip.set_xlim(fmin, fmax)
+
+
+STRIP_FONT = 9.5
 
 
 def band_occupancy(path, band, agg, emitters=(), title=None):
     """Occupancy vs frequency of one band, stacked by primary cause, emitter ranges marked.
 
-    ``agg`` is an :func:`rfisieve.review.occupancy.aggregate_band` result.
+    ``agg`` is an :func:`rfisieve.review.occupancy.aggregate_band` result.  The strip
+    above the plot labels each known emitter once (duplicates merged), legibly at the
+    page's width, in as many lanes as the labels need.
     """
+    f = np.asarray(agg["freq"]) / 1e6
+    edges = channel_edges(f)
+    shown = _emitters_shown(emitters, edges[0], edges[-1])
     with plt.rc_context(STYLE):
-        fig, (strip, ax) = plt.subplots(2, 1, figsize=(12.5, 5.4), sharex=True,
-                                        gridspec_kw={"height_ratios": [1, 3.4], "hspace": 0.04})
-        f = np.asarray(agg["freq"]) / 1e6
+        # first pass: lay the labels out on a strip of the final width
+        probe = plt.figure(figsize=(12.5, 2))
+        pax = probe.add_axes([0.07, 0.1, 0.79, 0.8])
+        placed, nlanes = _strip_lanes(probe, pax, shown, edges[0], edges[-1], STRIP_FONT)
+        plt.close(probe)
+        strip_h = 0.25 * max(nlanes, 1) + 0.2
+        fig, (strip, ax) = plt.subplots(2, 1, figsize=(12.5, 4.6 + strip_h), sharex=True,
+                                        gridspec_kw={"height_ratios": [strip_h, 4.0], "hspace": 0.03})
         s = np.asarray(agg["samples"])
-        prim = fraction(np.asarray(agg["primary"]), s[None, :]) * 100
-        prim = np.nan_to_num(prim)
-        edges = channel_edges(f)
+        prim = np.nan_to_num(fraction(np.asarray(agg["primary"]), s[None, :]) * 100)
         base = np.zeros(len(f))
         for k, name in enumerate(BIT_NAMES):
             if not np.any(prim[k]):
                 continue
             top = base + prim[k]
-            ax.stairs(top, edges, baseline=base, fill=True, color=CAUSE_COLOURS[name],
-                      label=name, zorder=2)
+            ax.stairs(top, edges, baseline=base, fill=True, color=CAUSE_COLOURS[name], label=name, zorder=2)
             base = top
         total = np.nan_to_num(fraction(agg["flagged"], s) * 100)
-        ax.stairs(total, edges, color=INK, lw=0.7, zorder=3)
+        ax.stairs(total, edges, color=INK, lw=0.7, zorder=3, label="any cause")
+        for e in shown:
+            if e["kind"] == "protected":
+                ax.axvspan(max(e["start_mhz"], edges[0]), min(e["stop_mhz"], edges[-1]), color=PROTECTED_COLOUR,
+                           alpha=0.10, lw=0, zorder=0, hatch="//")
         ax.set_xlim(edges[0], edges[-1])
         ax.set_ylim(0, 105)
-        _mark_emitters(ax, emitters, edges[0], edges[-1], strip=strip)
+        _draw_strip(strip, placed, nlanes, edges[0], edges[-1], STRIP_FONT)
         ax.set_xlabel("Frequency (MHz)")
         ax.set_ylabel("Flagged (% of samples)")
-        strip.set_title(title or f"Band {band}: occupancy by frequency, stacked by first cause; "
-                        "known emitters (blue) and protected bands (green) above")
+        strip.set_title(title or f"Band {band}: occupancy by frequency, stacked by first cause")
         ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=9, title="first cause")
-        fig.subplots_adjust(left=0.07, right=0.86, top=0.92, bottom=0.1)
+        fig.subplots_adjust(left=0.07, right=0.86, top=1 - 0.45 / (4.6 + strip_h), bottom=0.1)
         _save(fig, path)
+    return shown
 
 
-def scan_image(path, counts, title=None):
-    """Time x frequency occupancy image of one scan, with the per-channel and per-dump margins."""
+#: Total occupancy (any cause) image: paper -> ink, neutral (no cause's colour).
+TOTAL_MAP = LinearSegmentedColormap.from_list("rfisieve_total", [PAPER, "#c9c3b6", "#8c8577", "#4a4452", INK])
+#: Data image (power relative to the bandpass): a grey ramp, dark = weak, light = strong.
+DATA_MAP = "gray"
+TOTAL_COLOUR = "#6c6577"   # totals everywhere (margins, bars): one neutral colour
+
+
+def _image_time_edges(time, ts):
+    return channel_edges(np.asarray(time, float))[np.asarray(ts)]
+
+
+def scan_image(path, counts, title=None, data=None, data_note=""):
+    """The data and the mask of one scan, on the same time x frequency axes.
+
+    Top: the flagged fraction per channel (any cause).  Then, when ``data`` is given
+    (:func:`rfisieve.review.provenance.data_preview`, on the occupancy image's bins),
+    the downsampled dynamic spectrum relative to the bandpass (dB); below it the
+    flagged fraction of each bin, with the flagged fraction per dump beside it.
+    Time runs down the page in UTC clock time.
+    """
     a = counts["attrs"]
     ts, cs = np.asarray(counts["image/time_start"]), np.asarray(counts["image/chan_start"])
     img = fraction(counts["image/flagged"], counts["image/samples"]) * 100
     time = np.asarray(counts["time"], float)
     freq = np.asarray(counts["freq"], float) / 1e6
-    day0, date = utc_day_start(time[0] if len(time) else 0.0)
-    hours = (time - day0) / 3600.0
-    th = channel_edges(hours)[ts]
+    th = _image_time_edges(time, ts)
     fe = channel_edges(freq)[cs]
+    rows = [("mask", 4.0)] if data is None else [("data", 4.0), ("mask", 4.0)]
     with plt.rc_context(STYLE):
-        fig = plt.figure(figsize=(12.5, 6.2))
-        gs = fig.add_gridspec(2, 3, width_ratios=[5, 1.1, 0.18], height_ratios=[1.1, 4],
-                              hspace=0.06, wspace=0.05)
-        ax = fig.add_subplot(gs[1, 0])
-        top = fig.add_subplot(gs[0, 0], sharex=ax)
-        side = fig.add_subplot(gs[1, 1], sharey=ax)
-        cax = fig.add_subplot(gs[1, 2])
-        mesh = ax.pcolormesh(fe, th, img, cmap=EMBER, vmin=0, vmax=100, shading="flat",
-                             rasterized=True)
-        ax.grid(False)
-        ax.set_xlabel("Frequency (MHz)")
-        ax.set_ylabel(f"Time (UTC hours, from 00:00 on {date})")
-        if th[-1] > th[0]:
-            ax.set_ylim(th[-1], th[0])   # time runs down the page
+        fig = plt.figure(figsize=(12.5, 1.6 + sum(r[1] for r in rows) * 0.95 + 0.8))
+        gs = fig.add_gridspec(1 + len(rows), 3, width_ratios=[5, 1.0, 0.16],
+                              height_ratios=[1.0] + [r[1] for r in rows], hspace=0.12, wspace=0.12)
+        top = fig.add_subplot(gs[0, 0])
+        axes = {}
+        for i, (kind, _) in enumerate(rows):
+            axes[kind] = fig.add_subplot(gs[1 + i, 0], sharex=top, sharey=axes.get("data"))
+        ax = axes["mask"]
+        mesh = ax.pcolormesh(fe, th, img, cmap=TOTAL_MAP, vmin=0, vmax=100, shading="flat", rasterized=True)
+        cb = fig.colorbar(mesh, cax=fig.add_subplot(gs[len(rows), 2]))
+        cb.set_label("Flagged (% of bin)")
+        if data is not None:
+            dax = axes["data"]
+            finite = np.asarray(data)[np.isfinite(data)]
+            lo, hi = (np.percentile(finite, [1, 99]) if finite.size else (-1.0, 1.0))
+            dm = dax.pcolormesh(fe, th, np.ma.masked_invalid(data), cmap=DATA_MAP, vmin=lo, vmax=max(hi, lo + 1e-3),
+                                shading="flat", rasterized=True)
+            dcb = fig.colorbar(dm, cax=fig.add_subplot(gs[1, 2]))
+            dcb.set_label("Power / bandpass (dB)")
+            dax.set_title("Data: power relative to each channel's median over time" +
+                          (f" ({data_note})" if data_note else ""), fontsize=10, fontweight="normal")
+            plt.setp(dax.get_xticklabels(), visible=False)
+        ax.set_title("Mask: flagged samples (any cause, all products)", fontsize=10, fontweight="normal")
+        for kind, axk in axes.items():
+            axk.grid(False)
+            if th[-1] > th[0]:
+                axk.set_ylim(th[-1], th[0])   # time runs down the page
+            set_time_axis(axk, "y", th[0], th[-1], max_ticks=6, label=False)
+        ax.set_ylabel("Time, UTC (HH:MM)")
+        if data is not None:
+            axes["data"].set_ylabel("Time, UTC (HH:MM)")
+        ax.set_xlabel(f"Frequency (MHz) · time: {utc_span(time[0], time[-1])}" if len(time) else "Frequency (MHz)")
         chan = np.nan_to_num(fraction(counts["channel/flagged"], counts["channel/samples"]) * 100)
-        top.stairs(chan, channel_edges(freq), fill=True, color=CAUSE_COLOURS["sumthreshold"], alpha=0.85)
+        top.stairs(chan, channel_edges(freq), fill=True, color=TOTAL_COLOUR)
         top.set_ylim(0, 100)
-        top.set_ylabel("per channel\n(%)")
+        top.set_yticks([0, 50, 100])
+        top.set_ylabel("per channel\n(% flagged)")
         plt.setp(top.get_xticklabels(), visible=False)
+        side = fig.add_subplot(gs[len(rows), 1], sharey=ax)
         dump = np.nan_to_num(fraction(counts["dump/flagged"], counts["dump/samples"]) * 100)
-        side.fill_betweenx(hours, 0, dump, color=CAUSE_COLOURS["sk"], alpha=0.85, lw=0, step="mid")
+        side.fill_betweenx(time, 0, dump, color=TOTAL_COLOUR, lw=0, step="mid")
         side.set_xlim(0, 100)
-        side.set_xlabel("per dump (%)")
+        side.set_xticks([0, 50, 100])
+        side.set_xlabel("per dump (% flagged)")
         plt.setp(side.get_yticklabels(), visible=False)
-        cb = fig.colorbar(mesh, cax=cax)
-        cb.set_label("Flagged (% of samples in bin)")
-        top.set_title(title or f"Scan {a['scan']} (band {a['band']}): flagged samples over time and frequency")
+        top.set_title(title or f"Scan {a['scan']} (band {a['band']})")
+        fig.subplots_adjust(left=0.08, right=0.93, top=0.95, bottom=0.07)
+        _save(fig, path)
+
+
+def night_fraction(path, series, title=None):
+    """Flagged fraction over the night, one panel per band, scan boundaries marked.
+
+    ``series`` maps band -> list of dicts ``name``, ``time`` (s since 1970), ``frac``
+    (flagged fraction per point, 0..1), ``start``, ``stop`` (s), one per scan.
+    """
+    bands = list(series)
+    allt = [t for lst in series.values() for s in lst for t in (s["start"], s["stop"])]
+    t0, t1 = min(allt), max(allt)
+    with plt.rc_context(STYLE):
+        fig, axs = plt.subplots(len(bands), 1, figsize=(12.5, 1.2 + 1.7 * len(bands)), sharex=True, squeeze=False)
+        for ax, band in zip(axs[:, 0], bands):
+            for i, s in enumerate(sorted(series[band], key=lambda s: s["start"])):
+                ax.axvspan(s["start"], s["stop"], color="#efe9dc" if i % 2 == 0 else "#e4ddcc", lw=0, zorder=0)
+                for edge in (s["start"], s["stop"]):
+                    ax.axvline(edge, color=GRID, lw=0.8, zorder=1)
+                ax.plot(s["time"], 100 * np.asarray(s["frac"]), color=INK, lw=0.9, zorder=3)
+                if (s["stop"] - s["start"]) > 0.12 * (t1 - t0):
+                    ax.text(s["start"], 0.97, " " + s["name"], transform=ax.get_xaxis_transform(), fontsize=8,
+                            va="top", ha="left", color=INK, clip_on=True, zorder=4,
+                            bbox=dict(boxstyle="square,pad=0.1", fc=PAPER, ec="none", alpha=0.85))
+            day, _ = utc_day_start(t0)
+            for mid in np.arange(day + 86400, t1, 86400):
+                ax.axvline(mid, color=INK, lw=0.8, ls=":")
+                ax.text(mid, 0.02, " " + _dt.datetime.fromtimestamp(mid, tz=_dt.timezone.utc).strftime("%Y-%m-%d"),
+                        transform=ax.get_xaxis_transform(), fontsize=8, va="bottom")
+            ax.set_ylim(0, 100)
+            ax.set_yticks([0, 50, 100])
+            ax.set_ylabel(f"band {band}\n% flagged")
+            ax.grid(axis="x", visible=False)
+        pad = 0.01 * (t1 - t0)
+        axs[-1, 0].set_xlim(t0 - pad, t1 + pad)
+        set_time_axis(axs[-1, 0], "x", t0, t1, max_ticks=9)
+        axs[0, 0].set_title(title or "Flagged fraction over the night (all products), scan boundaries shaded")
+        fig.tight_layout()
         _save(fig, path)
 
 
@@ -236,89 +373,186 @@ def _hist_quantiles(edges, counts, qs):
     return [float(np.interp(q, cum, edges)) for q in qs]
 
 
+#: Width ratio (measured / expected IQR within the thresholds) taken as a match.
+RATIO_OK = (0.85, 1.15)
+
+
 def sk_summary(sk):
-    """Measured vs expected SK spread: dict with ``ratio`` = measured IQR / expected IQR, etc."""
+    """Measured vs expected SK spread, and what the histogram cannot show.
+
+    The engine clips SK into its histogram, so the last bin holds every value at or
+    above its lower edge: those values are *beyond* the histogram's range.  Returns
+    (summary dict, counts, edges, expected distribution or None); the dict holds
+    ``ratio`` = measured IQR / expected IQR (within the thresholds), ``outside`` (the
+    fraction of SK values outside the thresholds, None when the histogram ends below
+    the upper threshold), ``beyond`` (values in the last, clipping bin), ``top`` (that
+    bin's lower edge), ``cut_off`` (True when values lie beyond the range or a
+    threshold lies outside it) and ``verdict`` ("ok" or "check") with ``reasons``.
+    """
     at = sk.get("attrs", {})
-    counts = np.asarray(sk["counts"]).reshape(-1, len(sk["edges"]) - 1).sum(axis=0)
     edges = np.asarray(sk["edges"], float)
+    counts = np.asarray(sk["counts"]).reshape(-1, len(edges) - 1).sum(axis=0)
     out = {"total": int(counts.sum()), "m": at.get("m"), "n": at.get("n"), "d": at.get("d"),
            "lower": at.get("lower"), "upper": at.get("upper"), "mode": at.get("mode"),
-           "method": at.get("method"), "pfa": at.get("pfa"), "ratio": None, "note": ""}
+           "method": at.get("method"), "pfa": at.get("pfa"), "ratio": None, "note": "",
+           "beyond": int(counts[-1]) if len(counts) else 0, "top": float(edges[-2]) if len(edges) > 1 else None,
+           "outside": None, "cut_off": False, "verdict": None, "reasons": []}
+    lo, hi = out["lower"], out["upper"]
+    if out["total"]:
+        out["cut_off"] = out["beyond"] > 0 or (hi is not None and float(hi) >= out["top"])
+        if out["beyond"]:
+            out["reasons"].append(f"{out['beyond']:,} SK values at or above {out['top']:.3g}, "
+                                  "beyond the histogram's range")
+        if hi is not None and float(hi) >= out["top"]:
+            out["reasons"].append(f"the upper threshold {float(hi):.3g} lies beyond the histogram "
+                                  f"(ends at {out['top']:.3g})")
     if out["total"] == 0 or out["m"] is None:
+        out["verdict"] = "check" if out["cut_off"] else None
         return out, counts, edges, None
     _, dist, mean, var, note = expected_sk_pdf(np.array([1.0]), out["m"], out["n"] or 1, out["d"] or 1.0)
-    lo, hi = out["lower"], out["upper"]
     # Compare the spread of the values between the thresholds only: interference puts
-    # SK outside them (and into the clipped end bins), which would widen the measured
-    # quartiles although M, N and d are right.  The expected quartiles are those of the
-    # same distribution truncated to [lower, upper].
+    # SK outside them, which would widen the measured quartiles although M, N and d are
+    # right.  The expected quartiles are those of the same law truncated to [lower, upper].
+    # The clipping last bin is never "inside".
+    centres = 0.5 * (edges[1:] + edges[:-1])
     inside = counts.copy()
+    inside[-1] = 0
     f_lo, f_hi = 0.0, 1.0
     if lo is not None and hi is not None:
-        centres = 0.5 * (edges[1:] + edges[:-1])
-        inside[(centres < lo) | (centres > hi)] = 0
+        outside = (centres < lo) | (centres > hi)
+        inside[outside] = 0
         f_lo, f_hi = float(dist.cdf(lo)), float(dist.cdf(hi))
-    if inside.sum() == 0:
-        return out, counts, edges, dist
-    q1, q2, q3 = _hist_quantiles(edges, inside, (0.25, 0.5, 0.75))
-    e1, e3 = (float(dist.ppf(f_lo + q * (f_hi - f_lo))) for q in (0.25, 0.75))
-    out.update(median=q2, iqr=q3 - q1, expected_iqr=float(e3 - e1), ratio=(q3 - q1) / float(e3 - e1),
-               expected_std=float(np.sqrt(var)), note=note)
-    if lo is not None and hi is not None:
-        centres = 0.5 * (edges[1:] + edges[:-1])
-        out["outside"] = float(counts[(centres < lo) | (centres > hi)].sum() / counts.sum())
+        if float(hi) < out["top"]:
+            outside[-1] = True
+            out["outside"] = float(counts[outside].sum() / counts.sum())
+    if inside.sum() > 0:
+        q1, q2, q3 = _hist_quantiles(edges, inside, (0.25, 0.5, 0.75))
+        e1, e3 = (float(dist.ppf(f_lo + q * (f_hi - f_lo))) for q in (0.25, 0.75))
+        out.update(median=q2, iqr=q3 - q1, expected_iqr=float(e3 - e1), ratio=(q3 - q1) / float(e3 - e1),
+                   expected_std=float(np.sqrt(var)), note=note)
+        if not RATIO_OK[0] <= out["ratio"] <= RATIO_OK[1]:
+            out["reasons"].insert(0, f"width ratio {out['ratio']:.2f}: M, N or d may be wrong")
+    out["verdict"] = "check" if out["reasons"] else "ok"
     return out, counts, edges, dist
 
 
+def sk_ranges(summ, counts, edges):
+    """x ranges of the two SK panels: (around the thresholds, whole drawn range).
+
+    The first spans both thresholds with a quarter of their distance on each side (and
+    the middle 98 % of the data); the second runs from 0 to the last occupied bin below
+    the clipping bin, at least past the upper threshold, and never past the histogram.
+    """
+    lo, hi = summ.get("lower"), summ.get("upper")
+    top = float(edges[-2])
+    nz = np.flatnonzero(counts[:-1])
+    data_hi = float(edges[nz[-1] + 1]) if len(nz) else top
+    if lo is None or hi is None:
+        q = _hist_quantiles(edges, counts, (0.01, 0.99))
+        a, b = (q if np.all(np.isfinite(q)) else (0.0, 2.0))
+        return (a, b), (float(edges[0]), max(data_hi, b))
+    span = float(hi) - float(lo)
+    core = (max(float(edges[0]), float(lo) - 0.25 * span), float(hi) + 0.25 * span)
+    whole_hi = min(top, max(data_hi, float(hi) + 0.1 * span))
+    return core, (float(edges[0]), max(whole_hi, core[1]) if top > float(hi) else top)
+
+
 def sk_diagnostic(path, sk, title=None):
-    """Measured SK histogram (auto products summed) over the expected density, thresholds marked."""
+    """SK histogram of the auto products: around the thresholds over the expected
+    density, and over its whole range with the values beyond it counted."""
     summ, counts, edges, dist = sk_summary(sk)
+    sk_col = CAUSE_COLOURS["sk"]
     with plt.rc_context(STYLE):
-        fig, ax = plt.subplots(figsize=(8.6, 4.3))
+        fig, (ax, wide) = plt.subplots(1, 2, figsize=(12.5, 4.3), gridspec_kw={"width_ratios": [1.15, 1]})
         width = np.diff(edges)
         total = counts.sum()
-        dens = counts / (total * width) if total else np.zeros_like(width)
-        ax.stairs(np.where(dens > 0, dens, np.nan), edges, fill=True, color=CAUSE_COLOURS["sk"],
-                  alpha=0.35, label="measured (all auto products)")
-        ax.stairs(np.where(dens > 0, dens, np.nan), edges, color=CAUSE_COLOURS["sk"], lw=1.1)
+        if not total:
+            for a_ in (ax, wide):
+                a_.text(0.5, 0.5, "no SK values recorded", transform=a_.transAxes, ha="center")
+            ax.set_title(title or "Spectral kurtosis")
+            _save(fig, path)
+            return summ
+        core, whole = sk_ranges(summ, counts, edges)
+        dens = counts / (total * width)
+        lo, hi = summ.get("lower"), summ.get("upper")
+        centres = 0.5 * (edges[1:] + edges[:-1])
+        out = np.zeros(len(counts), bool) if lo is None else (centres < lo) | (centres > hi)
+        main = slice(0, len(counts) - 1)   # the clipping bin is drawn apart
+        yy = np.where(dens > 0, dens, np.nan)[main]
+        ax.stairs(np.where(~out[main], yy, np.nan), edges[:-1], fill=True, color=TOTAL_COLOUR, alpha=0.45,
+                  label="measured, within thresholds")
+        ax.stairs(np.where(out[main], yy, np.nan), edges[:-1], fill=True, color=sk_col, alpha=0.8,
+                  label="measured, outside (flagged by sk)")
+        # whole range: counts summed into at most WIDE_BINS coarser bins, so thin tails show
+        wide_edges, wide_in, wide_out = _coarse(edges[:-1], counts[main], out[main], whole[1])
+        for part, colour, alpha in ((wide_in, TOTAL_COLOUR, 0.6), (wide_out, sk_col, 0.85)):
+            wide.stairs(np.where(part > 0, part, np.nan), wide_edges, fill=True, color=colour, alpha=alpha)
+        for a_ in (ax, wide):
+            a_.set_yscale("log")
         if dist is not None:
-            x = np.linspace(edges[0], edges[-1], 1200)
+            x = np.linspace(core[0], core[1], 800)
             with np.errstate(all="ignore"):
                 y = dist.pdf(x)
-            ax.plot(x, np.where(y > 0, y, np.nan), color=INK, lw=1.6, ls="-",
+            ax.plot(x, np.where(y > 0, y, np.nan), color=INK, lw=1.5,
                     label=f"expected, M={summ['m']} N={summ['n']} d={summ['d']}")
-        for key, txt in (("lower", "lower threshold"), ("upper", "upper threshold")):
+        pos = dens[main][(dens[main] > 0) & (centres[main] >= core[0]) & (centres[main] <= core[1])]
+        if pos.size:
+            ax.set_ylim(max(pos.min() * 0.5, 1e-6 * pos.max()), pos.max() * 4)
+        ax.set_xlim(*core)
+        wide.set_xlim(whole[0], whole[1] + 0.06 * (whole[1] - whole[0]))
+        if summ["beyond"]:
+            w = 0.04 * (whole[1] - whole[0])
+            wide.bar(whole[1] + 0.03 * (whole[1] - whole[0]), summ["beyond"], width=w, color=sk_col, hatch="///",
+                     edgecolor=INK, lw=0.6, label=f"≥ {summ['top']:.3g} (beyond the histogram)")
+        for key, txt in (("lower", "lower"), ("upper", "upper")):
             if summ.get(key) is not None:
-                ax.axvline(float(summ[key]), color=CAUSE_COLOURS["sumthreshold"], ls="--", lw=1.3)
-                ax.text(float(summ[key]), 0.97, f" {txt}\n {float(summ[key]):.4f}", fontsize=8,
-                        color=CAUSE_COLOURS["sumthreshold"], va="top",
-                        ha="left" if key == "upper" else "right",
-                        transform=ax.get_xaxis_transform())
-        ax.set_yscale("log")
-        if total:
-            pos = dens[dens > 0]
-            ax.set_ylim(max(pos.min() * 0.5, 1e-6 * pos.max()), pos.max() * 3)
-            nz = np.flatnonzero(counts)
-            lo_x, hi_x = edges[nz[0]], edges[nz[-1] + 1]
-            if summ.get("lower") is not None:
-                lo_x = min(lo_x, float(summ["lower"]))
-                hi_x = max(hi_x, float(summ["upper"]))
-            pad = 0.08 * (hi_x - lo_x)
-            ax.set_xlim(max(edges[0], lo_x - pad), min(edges[-1], hi_x + pad))
-        else:
-            ax.text(0.5, 0.5, "no SK values recorded", transform=ax.transAxes, ha="center")
-        ax.set_xlabel("Spectral kurtosis estimate SK (dimensionless; 1 for Gaussian noise)")
+                v = float(summ[key])
+                wide.axvline(v, color=INK, ls="--", lw=1.0)
+                ax.axvline(v, color=INK, ls="--", lw=1.1)
+                ax.text(v, 0.985, f" {txt} {v:.3f} ", fontsize=8, color=INK, va="top",
+                        ha="left" if key == "upper" else "right", transform=ax.get_xaxis_transform(),
+                        bbox=dict(boxstyle="square,pad=0.15", fc=PAPER, ec="none", alpha=0.9))
+        ax.set_xlabel("SK (dimensionless; 1 for Gaussian noise)")
         ax.set_ylabel("Probability density")
+        wide.set_xlabel("SK, whole range of the histogram")
+        wide.set_ylabel("Count of SK values")
+        verdict = ""
         if summ.get("ratio") is not None:
-            verdict = "matches" if 0.85 <= summ["ratio"] <= 1.15 else "DOES NOT MATCH: check M, N, d"
-            ax.text(0.99, 0.62, f"measured / expected width (IQR within thresholds): {summ['ratio']:.2f}\n{verdict}",
-                    transform=ax.transAxes, ha="right", va="top", fontsize=9,
-                    color=INK if "matches" == verdict else CAUSE_COLOURS["sumthreshold"],
-                    bbox=dict(boxstyle="round", fc=PAPER, ec=GRID))
-        ax.legend(loc="lower center", fontsize=8.5)
-        ax.set_title(title or "Spectral kurtosis: measured vs expected")
-        fig.tight_layout()
+            verdict = f"width ratio {summ['ratio']:.2f}: " + ("ok" if summ["verdict"] == "ok" else "CHECK")
+        elif summ["verdict"] == "check":
+            verdict = "CHECK"
+        ax.set_title("Around the thresholds" + (f" — {verdict}" if verdict else ""), fontsize=10.5)
+        wide.set_title("Whole range: the tails (dashed: thresholds)", fontsize=10.5)
+        if summ["reasons"]:
+            fig.text(0.01, 0.01, "Check: " + "; ".join(summ["reasons"]), fontsize=8.5, color=INK, ha="left",
+                     va="bottom", bbox=dict(boxstyle="round", fc=PAPER, ec=INK))
+        ax.legend(loc="lower center", fontsize=8)
+        if summ["beyond"]:
+            wide.legend(loc="upper right", fontsize=8)
+        fig.suptitle(title or "Spectral kurtosis: measured vs expected", x=0.01, ha="left", fontweight="bold",
+                     fontsize=12)
+        fig.tight_layout(rect=(0, 0.06 if summ["reasons"] else 0, 1, 1))
         _save(fig, path)
+    return summ
+
+
+#: Most bins drawn in the whole-range SK panel.
+WIDE_BINS = 240
+
+
+def _coarse(edges, counts, outside, upto):
+    """Sum counts into at most WIDE_BINS bins up to ``upto``: (edges, inside counts, outside counts)."""
+    n = int(np.searchsorted(edges, upto, side="left"))
+    n = max(1, min(n, len(counts)))
+    step = max(1, int(np.ceil(n / WIDE_BINS)))
+    starts = np.arange(0, len(counts), step)
+    e = np.append(edges[starts], edges[-1])
+    return (e, np.add.reduceat(np.where(outside, 0, counts), starts).astype(float),
+            np.add.reduceat(np.where(outside, counts, 0), starts).astype(float))
+
+
+#: Change plot: more flagged now (dark) / less flagged now (light), neutral tones (no cause's colour).
+MORE_COLOUR, LESS_COLOUR = "#4a4452", "#b7b0a2"
 
 
 def change_plot(path, band, freq_hz, now, before, title=None):
@@ -330,8 +564,8 @@ def change_plot(path, band, freq_hz, now, before, title=None):
         edges = channel_edges(f)
         up = np.where(delta > 0, delta, 0)
         down = np.where(delta < 0, delta, 0)
-        ax.stairs(np.nan_to_num(up), edges, fill=True, color=CAUSE_COLOURS["sumthreshold"], label="more flagged now")
-        ax.stairs(np.nan_to_num(down), edges, fill=True, color=CAUSE_COLOURS["sk"], label="less flagged now")
+        ax.stairs(np.nan_to_num(up), edges, fill=True, color=MORE_COLOUR, label="more flagged now")
+        ax.stairs(np.nan_to_num(down), edges, fill=True, color=LESS_COLOUR, label="less flagged now")
         ax.axhline(0, color=INK, lw=0.8)
         ax.set_xlim(edges[0], edges[-1])
         lim = max(5.0, float(np.nanmax(np.abs(delta))) * 1.1) if np.any(np.isfinite(delta)) else 5.0

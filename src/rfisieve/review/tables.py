@@ -7,20 +7,24 @@ One row per channel, in the mask's channel order.  Columns:
 
 ``band``
     the scan's band (mask attribute ``band``).
+``first_dump_utc``, ``last_dump_utc``
+    the scan's time span: centre of its first and last dump, ISO 8601 UTC
+    (``2026-12-01T23:05:01Z``), the same in every row (CSV has no header lines).
 ``channel``
     channel index in the scan.
 ``freq_mhz``
     channel centre frequency, MHz.
 ``samples``
     number of samples in the channel (dumps x products).
-``flagged``
-    fraction of those samples with any bit set.
-``upstream``, ``invalid``, ``known``, ``sk``, ``sumthreshold``, ``grown``, ``cut``
-    fraction of the channel's samples with that cause bit set (bit names of
-    :data:`rfisieve.bits.BIT_TABLE`).
-``flagged_<product>``
-    one column per product (e.g. ``flagged_q01h-q01h``): fraction of that product's
-    samples in the channel (= dumps) with any bit set.
+``flagged_fraction``
+    fraction (0 to 1) of those samples with any bit set.
+``<cause>_fraction``
+    one column per cause bit (``upstream_fraction``, ``invalid_fraction``, ...,
+    ``cut_fraction``; bit names of :data:`rfisieve.bits.BIT_TABLE`): fraction of the
+    channel's samples with that cause bit set.
+``flagged_fraction_<product>``
+    one column per product (e.g. ``flagged_fraction_q01h-q01h``): fraction of that
+    product's samples in the channel (= dumps) with any bit set.
 
 Per-run CSV: ``<outdir>/occupancy/run.csv``
 -------------------------------------------
@@ -30,7 +34,7 @@ run's grid of a band is the sorted union of the centre frequencies of its scans,
 every count is summed over the scans that have that channel, so each fraction is
 weighted by samples.  Columns as in the per-scan CSV, with ``channel`` the index in
 the band's run grid and one extra column ``scans`` (number of scans contributing to
-the row) after ``freq_mhz``; ``flagged_<product>`` columns cover every product of
+the row) after ``freq_mhz`` and no time-span columns; ``flagged_fraction_<product>`` columns cover every product of
 the run and are empty where a band's scans lack that product.  Fractions are written
 with 10 significant digits.
 
@@ -95,18 +99,34 @@ def _fmt(x):
     return f"{x:.10g}"
 
 
+def fraction_columns(products):
+    """Names of the fraction columns: any cause, each cause bit, each product."""
+    return ["flagged_fraction", *[f"{b}_fraction" for b in BIT_NAMES], *[f"flagged_fraction_{p}" for p in products]]
+
+
+def _iso_utc(t):
+    import datetime as _dt
+
+    if t is None or not np.isfinite(t):
+        return ""
+    when = _dt.datetime.fromtimestamp(float(t), tz=_dt.timezone.utc)
+    return when.isoformat(timespec="seconds").replace("+00:00", "Z")
+
+
 def scan_table(counts):
     """Rows (list of lists, with a header row first) of the per-scan CSV for ``counts``."""
     a = counts["attrs"]
     s = counts["channel/samples"]
-    head = ["band", "channel", "freq_mhz", "samples", "flagged", *BIT_NAMES,
-            *[f"flagged_{p}" for p in counts["products"]]]
+    time = np.asarray(counts["time"], float)
+    span = [_iso_utc(time[0]), _iso_utc(time[-1])] if len(time) else ["", ""]
+    head = ["band", "first_dump_utc", "last_dump_utc", "channel", "freq_mhz", "samples",
+            *fraction_columns(counts["products"])]
     fl = fraction(counts["channel/flagged"], s)
     bf = fraction(counts["channel/bits"], s[None, :])
     pf = fraction(counts["channel/product_flagged"], np.full(s.shape, a["ntime"])[None, :])
     rows = [head]
     for c in range(len(s)):
-        rows.append([a["band"], c, f"{counts['freq'][c] / 1e6:.6f}", int(s[c]), _fmt(fl[c]),
+        rows.append([a["band"], *span, c, f"{counts['freq'][c] / 1e6:.6f}", int(s[c]), _fmt(fl[c]),
                      *[_fmt(v) for v in bf[:, c]], *[_fmt(v) for v in pf[:, c]]])
     return rows
 
@@ -118,8 +138,7 @@ def run_table(bands):
         for p in agg["products"]:
             if p not in products:
                 products.append(p)
-    head = ["band", "channel", "freq_mhz", "scans", "samples", "flagged", *BIT_NAMES,
-            *[f"flagged_{p}" for p in products]]
+    head = ["band", "channel", "freq_mhz", "scans", "samples", *fraction_columns(products)]
     rows = [head]
     for band in sorted(bands):
         agg = bands[band]
