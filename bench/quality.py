@@ -297,9 +297,14 @@ def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
     from rfisieve.sim.field import field_scene, write_field_scene
 
     t0 = time.time()
-    scene = field_scene(FIELD_SCENES[name][1], seed, ntime=ntime, nchan=nchan)
-    scan, truth = Path(tmp) / f"field_{name}_L.h5", Path(tmp) / f"field_{name}_L.truth.h5"
-    write_field_scene(scan, truth, scene)
+    from rfisieve.sim.model import DEFAULT_VIEW
+
+    lo, hi = DEFAULT_VIEW[band["band"]]
+    # the L band's view is centred on the 21-cm line; the others' on their default view
+    centre = 1420.0e6 if band["band"] == "L" else 0.5 * (lo + hi)
+    scene = field_scene(FIELD_SCENES[name][1], seed, ntime=ntime, nchan=nchan, f_center_hz=centre)
+    scan, truth = Path(tmp) / f"field_{name}.h5", Path(tmp) / f"field_{name}.truth.h5"
+    write_field_scene(scan, truth, scene, band=band["band"])
     t_sim = time.time() - t0
     out = Path(tmp) / f"mask_{name}.h5"
     t0 = time.time()
@@ -403,6 +408,8 @@ def main(argv=None):
     ap.add_argument("--field", nargs="*", choices=list(FIELD_SCENES), default=None,
                     help="run the field scenes (all when none named) instead of the simulator's scenes")
     ap.add_argument("--heldout", action="store_true", help="field scenes on the held-out seeds")
+    ap.add_argument("--band", default="L", choices=("P", "L", "C"),
+                    help="field scenes: the shipped band config and view to use (default L)")
     args = ap.parse_args(argv)
 
     from rfisieve.config.load import parse_set
@@ -418,12 +425,12 @@ def main(argv=None):
         from rfisieve.config.defaults import merge
         from rfisieve.config.load import load_band
 
-        band = merge(load_band(str(Path(__file__).resolve().parent.parent / "config" / "bands"), "L")[0],
+        band = merge(load_band(str(Path(__file__).resolve().parent.parent / "config" / "bands"), args.band)[0],
                      parse_set(args.sets))
         args.field = args.field or list(FIELD_SCENES)
         if args.ntime == NTIME and args.nchan == NCHAN:
             args.ntime, args.nchan = 4096, 1024
-        print("band settings: the shipped config/bands/L.yaml"
+        print(f"band settings: the shipped config/bands/{args.band}.yaml"
               + (f" with overrides {json.dumps(parse_set(args.sets))}" if args.sets else ""))
         return main_field(args, band, run)
     print(f"rfisieve flagging-quality benchmark: {len(args.scenes)} scene(s) of {args.ntime} dumps x "
