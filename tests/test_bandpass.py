@@ -33,13 +33,15 @@ def _plane(rng, n=1024, m=256):
 def test_bandpass_follows_a_steep_knee():
     # Check value (the requirement): within 0.2 of a dump's noise sigma of the
     # analytic bandpass (knee_bandpass, written from its definition), at every channel,
-    # knees and edges included.  Gain is constant within a block here.
+    # knees and edges included.  The estimate's own noise (about 0.055 sigma per block:
+    # the median of 512 dumps) is averaged down over the 14 blocks with a full window;
+    # block_bandpass returns the shape, scaled to a median of 1 over the channels.
     rng = np.random.default_rng(1)
     m = 256
     bp_true = knee_bandpass(m)
-    x = (rng.gamma(N_ACC, 1.0 / N_ACC, (768, m)) * bp_true).astype(np.float32)
+    x = (rng.gamma(N_ACC, 1.0 / N_ACC, (4096, m)) * bp_true).astype(np.float32)
     bp, rows = block_bandpass(x, np.zeros(x.shape, bool), 0, 256)
-    err = bp[1] / bp_true - 1        # the middle block: a full window of 2 x 256 dumps
+    err = (bp[1:-1] / (bp_true / np.median(bp_true)) - 1).mean(axis=0)
     assert np.max(np.abs(err)) < 0.2 * SIGMA, np.max(np.abs(err)) / SIGMA
 
 

@@ -153,11 +153,12 @@ def block_sums(x, ex, det, a, b, s, cnt):
 
 
 @njit(**_opts)
-def box_test(g, lev0, det, shapes, thrs, out):
+def box_test(g, lev0, det, shapes, thrs, rest, out):
     """Compact-box test on the grid plane g, all shapes in one sweep down the dumps:
     every box of shapes[k] = (dt, df) dumps x channels whose sum over its free
-    samples (lev0 == 0 and not det; others count 0) exceeds thrs[k] marks its free
-    samples in out.  Returns the number of boxes hit."""
+    samples (lev0 == 0 and not det; others count 0) exceeds thrs[k], and whose sum
+    less its largest free sample exceeds rest[k], marks its free samples in out.
+    Returns the number of boxes hit."""
     n, m = g.shape
     D = 1
     for k in range(shapes.shape[0]):
@@ -196,7 +197,15 @@ def box_test(g, lev0, det, shapes, thrs, out):
                 df = shapes[k, 1]
                 thr = thrs[k]
                 for c in range(m - df + 1):
-                    if col[c + df] - col[c] > thr:
+                    tot = col[c + df] - col[c]
+                    if tot > thr:
+                        big = np.int64(0)
+                        for u in range(t - dt + 1, t + 1):
+                            for w in range(c, c + df):
+                                if lev0[u, w] == 0 and not det[u, w] and g[u, w] > big:
+                                    big = np.int64(g[u, w])
+                        if tot - big <= rest[k]:
+                            continue
                         hits += 1
                         for u in range(t - dt + 1, t + 1):
                             for w in range(c, c + df):

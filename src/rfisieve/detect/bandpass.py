@@ -46,6 +46,13 @@ REFINE_SIGMA = 2.5
 PART_DUMPS = 16
 PART_SIGMA = 1.0
 
+#: A box must pass also without its largest sample, at COMPACT_REST z sqrt(n - 1): a
+#: bright sample that SumThreshold left (a carrier just under chi_1, or its neighbour
+#: through the channel response) would otherwise lift wide boxes of clean samples
+#: around it, while a pulse spread over the box passes (3 sigma x 3 channels: 4.2
+#: sigma without its top sample against 0.6 x 4.5 = 2.7).
+COMPACT_REST = 0.6
+
 #: Boxes (dumps, channels) of the compact-shape test: short pulses a few channels wide
 #: and a few dumps long (the 1 x 1 box is SumThreshold's M = 1 window already).
 COMPACT_SHAPES = ((1, 2), (1, 3), (1, 4), (1, 6), (2, 1), (2, 2), (2, 3), (3, 1), (3, 3))
@@ -88,7 +95,10 @@ def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
     emitter present in under half of the window does not move it much (breakdown
     point 1/2; Hampel 1974, JASA 69, 383).  Its noise is about 1.25 / sqrt(2 T) of a
     dump's (asymptotic variance of the median, pi / 2 sigma**2 / n).  Channels with
-    no sample get the linear interpolation of their neighbours.
+    no sample get the linear interpolation of their neighbours.  Each block's
+    bandpass is scaled to a median of 1 over the channels: it carries the spectral
+    shape only, and the slow gain (which would otherwise leave a step at every block
+    boundary where it drifts) is left to the surface fit.
 
     Parameters
     ----------
@@ -132,7 +142,11 @@ def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
             buf = np.empty((m, gb - ga), np.float32)
         kernels.column_medians(gm, gbad, ga, gb, col, buf)
         kernels.fill_nan_1d(col)
-        bp[i] = col
+        # the shape only: each block's bandpass is scaled to a median of 1 over the
+        # channels, so a gain that drifts between blocks leaves no step at their
+        # boundaries (the surface fit follows the gain, continuously)
+        level = np.median(col)
+        bp[i] = col / level if level > 0 else col
         rowblock[a:b] = i
     bp[~(bp > 0)] = 1.0
     return bp, rowblock
@@ -511,5 +525,7 @@ def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES
     out = np.zeros(grid.shape, np.bool_)
     sh = np.array(shapes, dtype=np.int64).reshape(-1, 2)
     thrs = np.array([int(math.floor(z * math.sqrt(dt * df) * unit_per_sigma)) for dt, df in sh], np.int64)
-    kernels.box_test(grid, lev0, detected, sh, thrs, out)
+    rest = np.array([int(math.floor(COMPACT_REST * z * math.sqrt(dt * df - 1) * unit_per_sigma))
+                     for dt, df in sh], np.int64)
+    kernels.box_test(grid, lev0, detected, sh, thrs, rest, out)
     return out
