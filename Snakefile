@@ -15,10 +15,7 @@ validate(config, str(rfconfig.schema_path("config.schema.yaml")))
 
 
 include: "workflow/rules/common.smk"
-include: "workflow/rules/plan.smk"
-include: "workflow/rules/detect.smk"
-include: "workflow/rules/merge.smk"
-include: "workflow/rules/occupancy.smk"
+include: "workflow/rules/flag.smk"
 include: "workflow/rules/review.smk"
 
 
@@ -30,5 +27,6 @@ onstart:
 
 
 rule all:
+    default_target: True
     input:
         all_outputs(),

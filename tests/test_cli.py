@@ -247,13 +247,17 @@ def test_profiles_use_real_snakemake_options(profile):
     assert keys and all(f"--{k}" in options for k in keys), keys
 
 
-def test_run_stops_early_on_a_band_without_config(tmp_path):
+def test_run_strict_stops_early_on_a_band_without_config(tmp_path):
     path = tmp_path / "a.h5"
     make_scan(path, ntime=10, nchan=8, nprod=1, band="Ku")
+<<<<<<< HEAD
     _one_line_error(_rfisieve("run", "--inputs", str(path), "--dry-run"), "'Ku'", "C, L, P")
+=======
+    _one_line_error(_rfisieve("run", "--strict", "--inputs", str(path), "--dry-run"), "'Ku'", "L, S, UHF")
+>>>>>>> main
 
 
-def test_run_stops_early_on_a_corrupt_scan(tmp_path):
+def test_run_strict_stops_early_on_a_corrupt_scan(tmp_path):
     junk = tmp_path / "junk.h5"
     junk.write_bytes(b"\0" * 4096)
-    _one_line_error(_rfisieve("run", "--inputs", str(junk), "--dry-run"), str(junk))
+    _one_line_error(_rfisieve("run", "--strict", "--inputs", str(junk), "--dry-run"), str(junk))

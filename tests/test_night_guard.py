@@ -237,7 +237,7 @@ def _wait_for_detect(proc, timeout=120):
                 with_cmd.append((k, " ".join(k.cmdline())))
             except psutil.Error:
                 continue
-        if any(" detect " in c for _, c in with_cmd):
+        if any(" detect " in c or " flag " in c for _, c in with_cmd):  # the job that flags a scan
             time.sleep(0.5)
             return [k for k, _ in with_cmd]
         time.sleep(0.1)

@@ -1,16 +1,20 @@
-# Stage 5: the run's occupancy over every scan (run.csv, run.h5) and the morning
-# review page (report/index.html with its figures), labelled with the bands' emitters.
+# Stage 5: the night's end, from the scan records: failed_scans.csv (always; header
+# only when no scan failed), the run's occupancy over every flagged scan (run.csv,
+# run.h5) and the morning review page (report/index.html with its figures), labelled
+# with the bands' emitters.  Then the verdict: it fails when any scan failed, so that
+# the night's exit status says so while every output above is written.
 
 
 rule review:
     input:
-        h5=expand(out("occupancy", "{scan}.h5"), scan=SCANS),
-        bands=sorted({rfconfig.band_config_path(RUN["bands_dir"], b) for b in BANDS.values()}),
+        records=[record(s) for s in SCANS],
+        bands=band_configs(list(SCANS)),
         previous=[RUN["previous_run"]] if RUN["previous_run"] else [],
     output:
         csv=out("occupancy", "run.csv"),
         h5=out("occupancy", "run.h5"),
         html=out("report", "index.html"),
+        failed=out("failed_scans.csv"),
     params:
         previous=f"--previous {shlex.quote(RUN['previous_run'])}" if RUN["previous_run"] else "",
     log:
@@ -19,5 +23,19 @@ rule review:
         bench("review", "run")
     threads: 1
     shell:
-        "{RFISIEVE} review {OUTDIR:q} --scans {input.h5:q} --bands-dir {RUN[bands_dir]:q}"
+        "{RFISIEVE} wrap-up {OUTDIR:q} --records {input.records:q} --bands-dir {RUN[bands_dir]:q}"
         " {params.previous} > {log:q} 2>&1"
+
+
+rule verdict:
+    input:
+        out("failed_scans.csv"),
+    output:
+        out("logs", "verdict", "run.ok"),
+    log:
+        log("verdict", "run"),
+    benchmark:
+        bench("verdict", "run")
+    threads: 1
+    shell:
+        "{RFISIEVE} verdict {input:q} --out {output:q} 2> {log:q}"

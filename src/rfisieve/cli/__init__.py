@@ -13,7 +13,6 @@ import contextlib
 import importlib
 import json
 import os
-import subprocess
 import sys
 import time
 
@@ -352,18 +351,22 @@ def snakemake_command(args, root):
         overrides["inputs"] = [os.path.abspath(os.path.expanduser(p)) for p in args.inputs]
     if args.outdir:
         overrides["outdir"] = os.path.abspath(args.outdir)
+    for key in ("strict", "keep_partial"):
+        if getattr(args, key, False):
+            overrides[key] = True
     run = config.load_run_config(config_file, overrides, overrides_source=_overrides_source(args))
     # Checked here so that a glob with no match is one line, before Snakemake starts;
     # Snakemake runs in ``root``, so relative inputs of a config file are relative to it.
-    # Corrupt scans and bands without a config are found here too, in the same way.
-    from rfisieve.io import scan as io
-
+    # Each scan is checked by the workflow itself: a bad scan is quarantined, not fatal.
     inputs = run["inputs"] if isinstance(run["inputs"], list) else [run["inputs"]]
-    paths = config.expand_inputs([os.path.join(root, os.path.expanduser(p)) for p in inputs],
-                                 source="--inputs" if args.inputs else config_file)
-    for band in sorted({io.scan_band(p, run["layout"]) for p in paths}):
-        config.load_band(os.path.join(root, run["bands_dir"]), band)
-    args.night_paths, args.night_run = paths, run
+    args.night_paths = config.expand_inputs([os.path.join(root, os.path.expanduser(p)) for p in inputs],
+                                            source="--inputs" if args.inputs else config_file)
+    args.night_run = run
+    if run.get("strict"):  # today's stop-at-the-first-problem: one line, before Snakemake starts
+        from rfisieve.engine import night
+
+        night.check_night(args.night_paths, dict(run, bands_dir=os.path.join(root, run["bands_dir"])),
+                          strict=True)
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", os.path.join(root, "Snakefile"),
            "--directory", root, "--configfile", config_file,
            "--workflow-profile", _resolve_profile(root, args.profile),
@@ -371,7 +374,9 @@ def snakemake_command(args, root):
     if args.dry_run:
         cmd.append("--dry-run")
     elif not args.verbose:
-        cmd += ["--quiet", "rules", "host"]  # progress lines ("12 of 40 steps (30%) done") and errors
+        cmd += ["--quiet", "rules", "host", "progress"]  # errors; rfisieve run shows the progress
+    if not args.dry_run:
+        cmd += ["--until", "review"]  # the verdict is rfisieve run's own exit status
     # Extra arguments (options or target files) go before --config, which takes the rest.
     cmd += list(args.snakemake_args or [])
     if overrides:  # Snakemake reads these values as YAML; an empty value is null
@@ -397,6 +402,8 @@ def cmd_run(args):
     if args.print_command:
         print(" ".join(_quote(c) for c in cmd))
         return 0
+    from rfisieve.cli import run as night_run
+
     # One run per outdir, from any checkout; leftovers of killed runs cleared (cli/guard.py).
     with contextlib.nullcontext() if args.dry_run else guard.OutdirLock(outdir, root) as lock:
         if lock is not None:
@@ -407,23 +414,12 @@ def cmd_run(args):
             guard.remove_leftovers(outdir)
             guard.memory_advice(args.night_paths, args.night_run,
                                 os.path.join(str(root), args.night_run["bands_dir"]), args.cores)
-        print(f"rfisieve run: starting the workflow in {root} ({args.cores} cores)", file=sys.stderr, flush=True)
-        t0 = time.monotonic()
+        started = time.time()
         with guard.ChildGuard() as child:
-            rc = child.start(cmd, cwd=str(root)).wait()
+            proc = night_run.start(cmd, root, args, launch=child.start)
+            rc = night_run.wait(proc, outdir, args)
         child.check()  # SIGINT/SIGTERM/SIGHUP: snakemake was stopped; one line, exit 128 + signal
-    if rc != 0:
-        raise RfisieveError(f"the workflow stopped (snakemake exit status {rc}); read the failing job's "
-                            "log under <outdir>/logs, fix it and rerun: finished scans are kept")
-    print(f"rfisieve run: done in {time.monotonic() - t0:.0f} s", file=sys.stderr)
-    if not args.dry_run:
-        for what, rel in (("masks", "flags/<scan>.h5"), ("occupancy", "occupancy/<scan>.csv"),
-                          ("run occupancy", "occupancy/run.csv"), ("review page", "report/index.html"),
-                          ("logs", "logs/<stage>/<scan>.log")):
-            path = os.path.join(outdir, rel)
-            if os.path.exists(path.split("<")[0] if "<" in path else path):  # e.g. not after --unlock
-                print(f"  {what:<14} {path}", file=sys.stderr)
-    return 0
+        return night_run.finish(rc, outdir, args, root, started)
 
 
 def _quote(s):
@@ -433,7 +429,7 @@ def _quote(s):
 
 
 # -- parser ---------------------------------------------------------------------
-OWN_COMMANDS = ("run", "inspect", "thresholds", "plan", "detect", "merge")
+OWN_COMMANDS = ("run", "inspect", "thresholds", "plan", "detect", "merge", "flag", "wrap-up", "verdict")
 
 
 def build_parser(plugins=True):
@@ -456,13 +452,18 @@ def build_parser(plugins=True):
                         "default: inputs of the run config")
     p.add_argument("--outdir", metavar="DIR", help="output directory; default: outdir of the run config")
     p.add_argument("--cores", type=int, default=os.cpu_count() or 1, metavar="N",
-                   help="CPU cores Snakemake may use in total (each detect job takes `workers` of them)")
+                   help="CPU cores Snakemake may use in total (each flag job takes `workers` of them)")
     add_run_config_option(p, "config/config.yaml of the repository")
     p.add_argument("--set", dest="sets", action="append", default=[], metavar="KEY=VALUE",
                    help="override one run-config key (YAML value), e.g. --set workers=4 (repeatable)")
     p.add_argument("--profile", metavar="P",
                    help="Snakemake profile: a name under workflow/profiles (local, cluster) or a directory; "
                         "default: local")
+    p.add_argument("--strict", action="store_true",
+                   help="stop the night at the first bad scan (default: a bad scan is quarantined, listed "
+                        "in <outdir>/failed_scans.csv, and the others are flagged; exit 1)")
+    p.add_argument("--keep-partial", action="store_true",
+                   help="also keep each detector's partial mask in <outdir>/partial/ (debugging)")
     p.add_argument("--dry-run", "-n", action="store_true", help="show the jobs that would run, run nothing")
     p.add_argument("--verbose", "-v", action="store_true",
                    help="show every job Snakemake starts, not only the progress lines")
@@ -534,6 +535,10 @@ def build_parser(plugins=True):
     p.add_argument("--partial", nargs="+", required=True, metavar="PARTIAL.h5",
                    help="partial masks from `rfisieve detect`")
     p.add_argument("--out", "-o", required=True, metavar="MASK.h5", help="mask file to write")
+
+    from rfisieve.cli import night
+
+    night.register(sub, _Formatter, _add_run_options, _add_parallel_options)
 
     for name in PLUGIN_MODULES if plugins else ():
         try:

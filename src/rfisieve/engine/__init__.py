@@ -40,8 +40,22 @@ Memory is bounded by ``chunk_dumps x nchan x nprod x (in-flight chunks)``, where
 most two windows (one flagged, one read ahead; each about ``2 x workers`` (chunk x
 product) planes, at least one chunk) are in memory, never by the scan's length."""
 
-from rfisieve.engine.plan import detect_halo, merge_halo, noise_windows, plan_scan  # noqa: F401
-from rfisieve.engine.planes import DETECTORS, SK_EDGES  # noqa: F401
-from rfisieve.engine.stages import detect, flag_scan, merge  # noqa: F401
+import importlib
+
+#: Public names and the module that holds each.  They are imported when first used
+#: (PEP 562), so that importing one engine module (the workflow's night checks,
+#: rfisieve.engine.night, when Snakemake reads the Snakefile) does not load dask and
+#: the detectors' compiled kernels.
+_WHERE = {"plan_scan": "plan", "detect_halo": "plan", "merge_halo": "plan", "noise_windows": "plan",
+          "DETECTORS": "planes", "SK_EDGES": "planes", "detect": "stages", "flag_scan": "stages",
+          "merge": "stages", "SIR_HALO": "plan"}
+
+
+def __getattr__(name):
+    if name in _WHERE:
+        return getattr(importlib.import_module(f"rfisieve.engine.{_WHERE[name]}"), name)
+    raise AttributeError(f"module 'rfisieve.engine' has no attribute {name!r}")
+
+
 __all__ = ["plan_scan", "detect", "merge", "flag_scan", "detect_halo", "merge_halo", "noise_windows",
            "SIR_HALO", "DETECTORS"]

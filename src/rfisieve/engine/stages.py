@@ -76,9 +76,12 @@ def _input_and_static(scan, a, b, meta):
 
 def _channel_cut_pass(flags, counts, segments, limit, chunk_dumps):
     """Second pass: set the cut bit on channels flagged above ``limit`` over each
-    contiguous stretch (``counts[k]``: flagged samples per channel of stretch ``k``)."""
+    contiguous stretch (``counts[k]``: flagged samples per channel of stretch ``k``).
+    Returns True when the cut changed the mask."""
+    changed = False
     for (start, stop), seg_counts in zip(segments, counts):
-        _channel_cut_stretch(flags, seg_counts, start, stop, limit, chunk_dumps)
+        changed |= _channel_cut_stretch(flags, seg_counts, start, stop, limit, chunk_dumps)
+    return changed
 
 
 def _channel_cut_stretch(flags, counts, start, stop, limit, chunk_dumps):
@@ -86,12 +89,13 @@ def _channel_cut_stretch(flags, counts, start, stop, limit, chunk_dumps):
     cut = channel_cut(counts, ntime, limit)  # (chan, prod)
     cut &= counts < ntime  # a channel flagged throughout gains nothing
     if not cut.any():
-        return
+        return False
     for c0 in range(start, stop, chunk_dumps):
         c1 = min(stop, c0 + chunk_dumps)
         block = flags[c0:c1]
         block[cut[None, :, :] & (block == 0)] = bits.CUT  # only what the cut adds
         flags[c0:c1] = block
+    return True
 
 
 @small_pages
@@ -156,7 +160,7 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 h.close()
 
 
-def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, jobs=1):
+def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, jobs=1, observe=None):
     """Both detectors and the merge in one pass over the scan (no partial masks).
 
     Gives the same mask file as :func:`detect` for each detector followed by
@@ -165,15 +169,21 @@ def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, j
     halo widened by the merge halo, and the driver writes the final mask (in a writer
     thread, while the next window is flagged).  The per-channel occupancy cut is then
     applied in a second pass over the finished mask, as in :func:`merge`.
+
+    ``observe(start, block)``, when given, sees the mask while it is in memory: each
+    chunk's values as the writer thread stores them, before the per-channel cut.
+    Returns ``{"channel_cut": bool}``: when False (the usual case) the cut changed
+    nothing, and counts added up over the blocks observed are the counts of the
+    finished mask file.
     """
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs)
+    return _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs, observe)
 
 
 @small_pages
 @_fail_clean
-def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1):
+def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1, observe=None):
     from concurrent.futures import ThreadPoolExecutor
 
     _check_run(run)
@@ -192,6 +202,8 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1
             def write(c0, c1, out):
                 flags[c0:c1] = out
                 counts[segments.index(list(segment_of(c0, segments)))] += (out != 0).sum(axis=0)
+                if observe is not None:
+                    observe(c0, out)
 
             with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-write") as writer:
                 def sink(c0, c1, res):
@@ -206,8 +218,9 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1
                                       grow=merge_halo(band), jobs=jobs)
                 for fut in pending:
                     fut.result()
-            _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
+            cut = _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)
             edges = _sk_edges(used)
             hist = hist[0] if hist else np.zeros((scan.nprod, len(edges) - 1), np.int64)
             _write_sk_diag(f, hist, used, band, edges)
             _write_noise(f, used)
+    return {"channel_cut": bool(cut)}

@@ -53,6 +53,15 @@ def bin_starts(n, nbins):
     return -((-idx * int(n)) // nb)
 
 
+def _value_tables():
+    from rfisieve.review._count_kernels import value_tables
+
+    return value_tables(BIT_VALUES)
+
+
+_VALUE_TABLES = _value_tables()
+
+
 def chunk_counts(flags, time_bin=None, chan_starts=None, ntbin=None):
     """Occupancy counts of one block of a mask.
 
@@ -76,39 +85,44 @@ def chunk_counts(flags, time_bin=None, chan_starts=None, ntbin=None):
         (nprod,), ``product_bits`` (nbits, nprod) and, when the image bins are given,
         ``image_flagged`` (ntbin, ncbin); all int64 counts of samples, following the
         counting rules of the module docstring.
+
+    Notes
+    -----
+    One compiled pass over the block (:mod:`rfisieve.review._count_kernels`): the
+    per-bit and primary counts come from per-channel, per-dump and per-product
+    histograms of the 256 mask values.
     """
+    from rfisieve.review._count_kernels import count_block
+
     flags = np.asarray(flags)
     if flags.ndim != 3:
         raise ValueError(f"mask block must be 3-d (time, chan, prod), got shape {flags.shape}")
+    flags = np.ascontiguousarray(flags, dtype=np.uint8)
     nt, nc, npr = flags.shape
-    anyf = flags != 0
-    out = {
-        "channel_flagged": np.count_nonzero(anyf, axis=(0, 2)).astype(np.int64),
-        "product_channel_flagged": np.count_nonzero(anyf, axis=0).T.astype(np.int64),
-        "dump_flagged": np.count_nonzero(anyf, axis=(1, 2)).astype(np.int64),
-        "product_flagged": np.count_nonzero(anyf, axis=(0, 1)).astype(np.int64),
-        "channel_bits": np.zeros((NBITS, nc), np.int64),
-        "channel_primary": np.zeros((NBITS, nc), np.int64),
-        "dump_bits": np.zeros((NBITS, nt), np.int64),
-        "product_bits": np.zeros((NBITS, npr), np.int64),
-    }
-    lower = np.zeros(flags.shape, bool)
-    for k, value in enumerate(BIT_VALUES):
-        hit = (flags & value) != 0
-        out["channel_bits"][k] = np.count_nonzero(hit, axis=(0, 2))
-        out["dump_bits"][k] = np.count_nonzero(hit, axis=(1, 2))
-        out["product_bits"][k] = np.count_nonzero(hit, axis=(0, 1))
-        first = hit & ~lower
-        out["channel_primary"][k] = np.count_nonzero(first, axis=(0, 2))
-        lower |= hit
-    if chan_starts is not None and time_bin is not None:
-        per_tc = np.count_nonzero(anyf, axis=2).astype(np.int64)  # (nt, nc)
-        if nc:
-            per_tb = np.add.reduceat(per_tc, np.asarray(chan_starts[:-1]), axis=1)
-        else:
-            per_tb = np.zeros((nt, 0), np.int64)
+    image = chan_starts is not None and time_bin is not None
+    if image:
+        tbin = np.ascontiguousarray(time_bin, dtype=np.int64)
+        cbin = np.repeat(np.arange(len(chan_starts) - 1, dtype=np.int64), np.diff(chan_starts))
         img = np.zeros((int(ntbin), len(chan_starts) - 1), np.int64)
-        np.add.at(img, np.asarray(time_bin), per_tb)
+    else:
+        tbin, cbin, img = np.zeros(nt, np.int64), np.zeros(nc, np.int64), np.zeros((1, 1), np.int64)
+    z = np.zeros
+    ch_any, pc_any, dump_any, prod_any = z(nc, np.int64), z((npr, nc), np.int64), z(nt, np.int64), z(npr, np.int64)
+    hist_c, hist_t, hist_p = z((nc, 256), np.int64), z((nt, 256), np.int64), z((npr, 256), np.int64)
+    count_block(flags, tbin, cbin, ch_any, pc_any, dump_any, prod_any, hist_c, hist_t, hist_p, img)
+    has_bit, primary = _VALUE_TABLES
+    out = {
+        "channel_flagged": ch_any,
+        "product_channel_flagged": pc_any,
+        "dump_flagged": dump_any,
+        "product_flagged": prod_any,
+        # exact: integer products of counts with 0/1 tables
+        "channel_bits": (hist_c @ has_bit).T.copy(),
+        "channel_primary": (hist_c @ primary).T.copy(),
+        "dump_bits": (hist_t @ has_bit).T.copy(),
+        "product_bits": (hist_p @ has_bit).T.copy(),
+    }
+    if image:
         out["image_flagged"] = img
     return out
 
@@ -314,7 +328,7 @@ def occupied_ranges(freq_hz, flagged, samples, threshold=0.25, primary=None):
     return out
 
 
-def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None):
+def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None, counted=None):
     """Read mask file ``path`` in chunks of dumps and return its occupancy counts.
 
     Returns
@@ -362,10 +376,12 @@ def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None
                 ct = ds.chunks[0]
                 chunk_dumps = max(ct, (chunk_dumps // ct) * ct)
         chunk_dumps = int(chunk_dumps)
-        acc = ScanOccupancy(nt, nc, npr, image_bins=image_bins)
-        for start in range(0, nt, chunk_dumps):
-            stop = min(nt, start + chunk_dumps)
-            acc.add(start, ds[start:stop])
+        acc = counted
+        if acc is None or (acc.ntime, acc.nchan, acc.nprod) != (nt, nc, npr) or acc.dumps_seen != nt:
+            acc = ScanOccupancy(nt, nc, npr, image_bins=image_bins)
+            for start in range(0, nt, chunk_dumps):
+                stop = min(nt, start + chunk_dumps)
+                acc.add(start, ds[start:stop])
             if progress:
                 progress(stop, nt)
         dt = None

@@ -14,9 +14,13 @@ from rfisieve.review.tables import *  # noqa: F401,F403
 from rfisieve.review.tables import scan_table, write_csv, write_scan_h5
 
 
-def occupancy_of_mask(mask_path, csv_path, h5_path, chunk_dumps=None, image_bins=IMAGE_BINS):
-    """Count mask file ``mask_path`` and write its per-scan CSV and HDF5; return the counts."""
-    counts = count_mask_file(mask_path, chunk_dumps=chunk_dumps, image_bins=image_bins)
+def occupancy_of_mask(mask_path, csv_path, h5_path, chunk_dumps=None, image_bins=IMAGE_BINS, counted=None):
+    """Count mask file ``mask_path`` and write its per-scan CSV and HDF5; return the counts.
+
+    ``counted``: a :class:`~rfisieve.review.counts.ScanOccupancy` that already holds the
+    mask's counts (taken while the mask was in memory); the file's /flags is then not read.
+    """
+    counts = count_mask_file(mask_path, chunk_dumps=chunk_dumps, image_bins=image_bins, counted=counted)
     for p in (csv_path, h5_path):
         if p:
             os.makedirs(os.path.dirname(os.path.abspath(p)), exist_ok=True)
