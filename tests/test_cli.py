@@ -250,11 +250,7 @@ def test_profiles_use_real_snakemake_options(profile):
 def test_run_strict_stops_early_on_a_band_without_config(tmp_path):
     path = tmp_path / "a.h5"
     make_scan(path, ntime=10, nchan=8, nprod=1, band="Ku")
-<<<<<<< HEAD
-    _one_line_error(_rfisieve("run", "--inputs", str(path), "--dry-run"), "'Ku'", "C, L, P")
-=======
-    _one_line_error(_rfisieve("run", "--strict", "--inputs", str(path), "--dry-run"), "'Ku'", "L, S, UHF")
->>>>>>> main
+    _one_line_error(_rfisieve("run", "--strict", "--inputs", str(path), "--dry-run"), "'Ku'", "C, L, P")
 
 
 def test_run_strict_stops_early_on_a_corrupt_scan(tmp_path):
