@@ -13,7 +13,7 @@ import numpy as np
 def make_scan(path, ntime=600, nchan=64, nprod=2, accumulations=256, seed=0, cross=False,
               band="L", s2=False, lines=True, upstream=False, dtype=np.float32):
     rng = np.random.default_rng(seed)
-    ants = [f"q0{i + 1}h" for i in range(nprod)]
+    ants = [f"pier{i + 1}.a" for i in range(nprod)]
     products = [f"{a}-{a}" for a in ants]
     if cross:
         products.append(f"{ants[0]}-{ants[1]}")

@@ -75,8 +75,8 @@ def test_inspect_a_scan(tmp_path, capsys):
     # 500 kHz from 1400 MHz, 256 accumulations, first 10 dumps flagged upstream.
     assert "40 x 16 x 3" in out and "complex64" in out
     assert "L" in out.split("band")[1].split("\n")[0]
-    assert "auto products" in out and "2 (q01h-q01h, q02h-q02h)" in out
-    assert "1 (q01h-q02h)" in out
+    assert "auto products" in out and "2 (pier1.a-pier1.a, pier2.a-pier2.a)" in out
+    assert "1 (pier1.a-pier2.a)" in out
     assert "2027-01-15T08:00:00Z to 2027-01-15T08:01:18Z" in out
     assert "1400.0000 to 1407.5000 MHz" in out and "500 kHz" in out
     assert "256 raw spectra" in out
@@ -96,7 +96,7 @@ def test_inspect_json_gives_numbers_under_plain_keys(tmp_path, capsys):
     assert info["duration_s"] == 38.0 and info["integration_time_s"] == 2.0
     assert info["freq_min_hz"] == 1.40e9 and info["channel_width_hz"] == 500e3
     assert info["accumulations"] == 16 and info["has_s2"] is True and info["gaps"] == []
-    assert info["auto_products"] == ["q01h-q01h"] and info["upstream_flagged_fraction"] is None
+    assert info["auto_products"] == ["pier1.a-pier1.a"] and info["upstream_flagged_fraction"] is None
     assert all(" " not in key for key in info)
 
 
@@ -229,11 +229,11 @@ def test_stage_commands_make_a_mask(tmp_path):
 def test_inspect_a_demo_simulator_scan(tmp_path, capsys):
     from rfisieve.sim.scans import simulate_scan
 
-    path = tmp_path / "qro_test_UHF.h5"
-    simulate_scan(path, band="UHF", ntime=32, nchan=16, cross=True, with_s2=False, seed=1)
+    path = tmp_path / "qro_test_P.h5"
+    simulate_scan(path, band="P", ntime=32, nchan=16, cross=True, with_s2=False, seed=1)
     assert cli.main(["inspect", str(path)]) == 0
     out = capsys.readouterr().out
-    assert "UHF" in out and "complex64" in out and "cross products" in out and "MHz" in out
+    assert "P" in out and "complex64" in out and "cross products" in out and "MHz" in out
 
 
 @pytest.mark.parametrize("profile", ["local", "cluster"])
@@ -250,7 +250,7 @@ def test_profiles_use_real_snakemake_options(profile):
 def test_run_strict_stops_early_on_a_band_without_config(tmp_path):
     path = tmp_path / "a.h5"
     make_scan(path, ntime=10, nchan=8, nprod=1, band="Ku")
-    _one_line_error(_rfisieve("run", "--strict", "--inputs", str(path), "--dry-run"), "'Ku'", "L, S, UHF")
+    _one_line_error(_rfisieve("run", "--strict", "--inputs", str(path), "--dry-run"), "'Ku'", "C, L, P")
 
 
 def test_run_strict_stops_early_on_a_corrupt_scan(tmp_path):

@@ -13,7 +13,7 @@ from rfisieve.errors import ConfigError
 
 ROOT = Path(__file__).resolve().parents[1]
 BANDS_DIR = ROOT / "config" / "bands"
-SHIPPED_BANDS = ("UHF", "L", "S")
+SHIPPED_BANDS = ("P", "L", "C")
 
 
 def _write(path, data):
@@ -196,7 +196,7 @@ def test_band_name_must_match_file(tmp_path):
 
 def test_unknown_band_lists_configured_bands():
     message = _error(config.load_band, BANDS_DIR, "Ku")
-    assert "'Ku'" in message and "L, S, UHF" in message
+    assert "'Ku'" in message and "C, L, P" in message
 
 
 def test_partial_band_config_takes_defaults(tmp_path):

@@ -7,7 +7,7 @@ import sys
 CODE = """
 import sys
 import numpy as np
-from rfisieve.detect import _kernels as kernels
+from rfisieve.detect import _sumthreshold_kernels as kernels
 assert 'scipy.linalg' not in sys.modules, 'the BLAS probe imported scipy.linalg'
 x = np.zeros((3, 4), np.float32); out = np.empty((3, 4), np.int32)
 kernels.to_grid(x, 1.0, -1.0, 1.0, out)                  # a kernel loads and runs

@@ -16,7 +16,7 @@ from rfisieve import bits
 from rfisieve.review import occupancy as occ
 from rfisieve.errors import ScanError
 
-PRODUCTS = ["q01h-q01h", "q01h-q02h", "q02v-q02v"]
+PRODUCTS = ["pier1.a-pier1.a", "pier1.a-pier2.a", "pier2.b-pier2.b"]
 
 
 def write_mask(path, flags, freq, band="L", t0=1.7e9, dt=2.0, products=PRODUCTS, chunk=None):

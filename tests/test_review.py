@@ -23,7 +23,7 @@ from rfisieve.review import occupancy as occ
 
 from rfisieve.review import page as review
 
-PRODUCTS = ["q01h-q01h", "q01h-q02h", "q02h-q02h"]
+PRODUCTS = ["pier1.a-pier1.a", "pier1.a-pier2.a", "pier2.a-pier2.a"]
 PNG_SIG = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
 
 
@@ -422,7 +422,7 @@ def test_scan_csv_names_fractions_and_gives_the_time_span(run):
     r = rows[0]
     assert r["first_dump_utc"] == "2027-01-15T08:00:00Z"        # 1.8e9 s after 1970-01-01 (stdlib datetime)
     assert r["last_dump_utc"] == "2027-01-15T08:00:58Z"         # 29 dumps of 2 s later
-    assert "flagged_fraction" in r and "sk_fraction" in r and "flagged_fraction_q01h-q01h" in r
+    assert "flagged_fraction" in r and "sk_fraction" in r and "flagged_fraction_pier1.a-pier1.a" in r
     assert "flagged" not in r
 
 

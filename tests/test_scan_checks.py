@@ -133,9 +133,9 @@ def test_steady_time_has_one_stretch(tmp_path):
 
 @pytest.mark.parametrize("names, words", [
     (np.array([1, 2], dtype=np.int64), ["/products", "must be strings"]),
-    (np.array(["q01h-q01h", "q01h-q01h"], dtype=object), ["/products[1]", "repeats /products[0]"]),
-    (np.array(["q01h-q01h", "q02h"], dtype=object), ["/products[1]", "'q02h'", "<inputA>-<inputB>"]),
-    (np.array(["q01h-q01h", "a-b-c"], dtype=object), ["/products[1]", "<inputA>-<inputB>"]),
+    (np.array(["pier1.a-pier1.a", "pier1.a-pier1.a"], dtype=object), ["/products[1]", "repeats /products[0]"]),
+    (np.array(["pier1.a-pier1.a", "pier2.a"], dtype=object), ["/products[1]", "'pier2.a'", "<inputA>-<inputB>"]),
+    (np.array(["pier1.a-pier1.a", "a-b-c"], dtype=object), ["/products[1]", "<inputA>-<inputB>"]),
 ])
 def test_bad_product_names_are_refused(tmp_path, names, words):
     _refused(_scan(tmp_path, edit=lambda f: _replace(f, "products", names)), *words)

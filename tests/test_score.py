@@ -159,7 +159,7 @@ def test_injected_carrier_recovered_on_pure_noise(tmp_path):
         f["data"] = power
         f["time"] = 1.8e9 + 2.0 * np.arange(ntime)
         f["freq"] = 1.40e9 + 500e3 * np.arange(nchan)
-        f["products"] = np.array(["q01h-q01h", "q02h-q02h"], dtype=object)
+        f["products"] = np.array(["pier1.a-pier1.a", "pier2.a-pier2.a"], dtype=object)
         f.attrs.update(band="L", integration_time=2.0, channel_width=500e3, accumulations=acc)
     out = tmp_path / "mask.h5"
     flag_scan(scan, out, band_settings({"band": "L"}), run_settings({"workers": 1, "scheduler": "synchronous"}))

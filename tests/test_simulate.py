@@ -123,7 +123,7 @@ def test_wishart_sum_cross_moments():
 def test_truth_marks_exactly_where_interference_was_added(tmp_path, mode):
     kw = dict(band="L", ntime=96, nchan=128, seed=21, accumulations=128,
               cross=(mode == "cross"), with_s2=(mode == "s2"),
-              feeds=("h",) if mode != "auto" else ("h", "v"))
+              feeds=("a",) if mode != "auto" else ("a", "b"))
     clean, _, _ = _scan(tmp_path, "clean", emitters=[], **kw)
     rfi, truth, _ = _scan(tmp_path, "rfi", emitters="default", **kw)
     hit = truth["kind"] > 0
@@ -164,14 +164,14 @@ def test_truth_inr_of_single_emitters(tmp_path):
 
 
 def test_partial_channels_and_carrier_split(tmp_path):
-    d0, _, _ = _scan(tmp_path, "grid", emitters=[], band="UHF", ntime=8, nchan=32)
+    d0, _, _ = _scan(tmp_path, "grid", emitters=[], band="P", ntime=8, nchan=32)
     freq = d0["freq"]
     cw = d0["attrs"]["channel_width"]
     f_line = freq[5] + 0.25 * cw                     # a quarter channel above channel 5
     emitters = [{"kind": "carrier", "freq_hz": f_line, "inr": 8.0},
                 {"kind": "noiselike", "freq_lo_hz": freq[20] - 0.5 * cw,
                  "freq_hi_hz": freq[22], "inr": 2.0}]
-    _, t, _ = _scan(tmp_path, emitters=emitters, band="UHF", ntime=8, nchan=32)
+    _, t, _ = _scan(tmp_path, emitters=emitters, band="P", ntime=8, nchan=32)
     row = t["inr"][0, :, 0]
     # triangular channel response: 3/4 in channel 5, 1/4 in channel 6
     assert np.allclose(row[5:7], [6.0, 2.0]) and row[4] == 0 and row[7] == 0
@@ -205,7 +205,7 @@ def test_scan_and_truth_files_follow_the_layout(tmp_path):
     assert d["time"][0] == 1796159100.0 + 1.0
     assert d["freq"].dtype == np.float64 and np.allclose(np.diff(d["freq"]),
                                                          d["attrs"]["channel_width"])
-    assert d["products"] == ["q01h-q01h", "q01v-q01v", "q02h-q02h", "q02v-q02v"]
+    assert d["products"] == ["pier1.a-pier1.a", "pier1.b-pier1.b", "pier2.a-pier2.a", "pier2.b-pier2.b"]
     assert d["flags"].dtype == np.uint8 and d["flags"].shape == shape
     assert 0.04 < d["flags"].astype(bool).mean() < 0.08
     a = d["attrs"]
@@ -225,10 +225,10 @@ def test_scan_and_truth_files_follow_the_layout(tmp_path):
 
 
 def test_cross_scan_is_complex64_with_real_autos(tmp_path):
-    d, t, _ = _scan(tmp_path, cross=True, ntime=64, nchan=32, feeds=("h", "v"))
+    d, t, _ = _scan(tmp_path, cross=True, ntime=64, nchan=32, feeds=("a", "b"))
     assert d["data"].dtype == np.complex64
-    assert d["products"] == ["q01h-q01h", "q01v-q01v", "q02h-q02h", "q02v-q02v",
-                             "q01h-q02h", "q01v-q02v"]
+    assert d["products"] == ["pier1.a-pier1.a", "pier1.b-pier1.b", "pier2.a-pier2.a", "pier2.b-pier2.b",
+                             "pier1.a-pier2.a", "pier1.b-pier2.b"]
     autos = _autos(d["products"])
     assert np.all(d["data"][..., autos].imag == 0) and np.all(d["data"][..., autos].real > 0)
     assert np.any(d["data"][..., 4].imag != 0)
@@ -281,7 +281,7 @@ def test_bad_parameters_raise_before_writing(tmp_path):
         simulate_scan(tmp_path / "s.h5", emitters=[{"kind": "carrier", "freq_hz": 3e9,
                                                     "inr": 1}])
     with pytest.raises(ValueError, match="outside band"):
-        simulate_scan(tmp_path / "s.h5", band="UHF", nchan=64, channel_width=10e6)
+        simulate_scan(tmp_path / "s.h5", band="P", nchan=64, channel_width=10e6)
     assert os.listdir(tmp_path) == []
 
 
@@ -343,7 +343,7 @@ def test_small_night(tmp_path):
     result = simulate_night(tmp_path, ntime=48, nchan=64, seed=1)
     scans = result["scans"]
     assert len(scans) == 6
-    assert [s["band"] for s in scans] == ["L", "UHF"] * 3
+    assert [s["band"] for s in scans] == ["L", "P"] * 3
     assert scans[0]["scan"] == "qro_20261201_2105_L"
     starts = [s["start_time"] for s in scans]
     assert all(b > a for a, b in zip(starts, starts[1:]))

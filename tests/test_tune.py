@@ -62,9 +62,9 @@ def test_tune_refuses_scans_of_another_band(tmp_path, capsys):
     bands.mkdir()
     shutil.copy(REPO / "config" / "bands" / "L.yaml", bands / "L.yaml")
     scan = tmp_path / "qro_tune_S.h5"
-    make_scan(scan, ntime=64, nchan=8, nprod=1, band="S", lines=False)
+    make_scan(scan, ntime=64, nchan=8, nprod=1, band="C", lines=False)
     assert main(["tune", "--band", "L", "--scans", str(scan), "--bands-dir", str(bands)]) == 2
-    assert "band 'S'" in capsys.readouterr().err
+    assert "band 'C'" in capsys.readouterr().err
     assert not (bands / "L.suggested.yaml").exists()
 
 

@@ -1,6 +1,6 @@
 """End to end: the real Snakemake workflow on a small simulated night.
 
-3 scans (2 in L band, 1 in UHF), 256 dumps x 64 channels, run by `snakemake` from the
+3 scans (2 in L band, 1 in P), 256 dumps x 64 channels, run by `snakemake` from the
 repository root exactly as DESIGN.md 2.4 says. Checks the outputs of DESIGN.md 2.2-2.3,
 that masks and occupancy counts equal the staged engine's (detect, detect, merge, then
 counting the mask file), that inputs are untouched, that a killed run resumes without
@@ -27,7 +27,7 @@ from scanfactory import make_scan
 pytestmark = pytest.mark.slow
 
 NTIME, NCHAN = 256, 64
-SCANS = {"night-q1": "L", "night-q2": "L", "night-q3": "UHF"}
+SCANS = {"night-q1": "L", "night-q2": "L", "night-q3": "P"}
 # make_scan puts channels at 1400 MHz + k x 0.5 MHz; a known-bad range over channels 4-5
 # (1402.0-1403.0 MHz) exercises the known bit in both bands.
 TEST_STATIC = {"start_mhz": 1401.9, "stop_mhz": 1403.1, "reason": "test range (invented for this test)"}

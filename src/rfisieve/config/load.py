@@ -275,7 +275,7 @@ def load_band_file(path, band=None):
     validate(data, "band.schema.yaml", path)
     if band is not None and data["band"] != band:
         raise ConfigError(path, f"band = {data['band']!r} but this file is for band {band!r}")
-    for key in ("known_bad", "emitters"):
+    for key in ("known_bad", "protect", "emitters"):
         for i, entry in enumerate(data.get(key, [])):
             if entry["start_mhz"] >= entry["stop_mhz"]:
                 raise ConfigError(path, f"{key}[{i}]: start_mhz ({entry['start_mhz']}) must be "

@@ -265,3 +265,29 @@ def sir_grow_reach(mask, eta, rt, kt, rf, kf, out):
                             hi = min(c + rf + 1, m)
                             lo = max(c - rf, 0)
                             out[t, c] = _interval_hit(wmax2, wmin2, 0, c, lo, hi, rf, -1, tol)
+
+
+@njit(nogil=True, cache=True, fastmath=False, error_model="numpy", boundscheck=False)
+def sir_rows(mask, eta, out):
+    """SIR operator along axis 1 of a bool plane, into ``out``.
+
+    w_i = eta - 1 + f_i, W(0) = 0, W(k) = sum_{i<k} w_i; sample y is flagged iff
+    max_{Y2 > y} W(Y2) - min_{Y1 <= y} W(Y1) >= 0 (a tolerance of 1e-9 absorbs
+    rounding of the prefix sums)."""
+    n, m = mask.shape
+    W = np.empty(m + 1)
+    smax = np.empty(m + 1)
+    tol = 1e-9
+    for t in range(n):
+        W[0] = 0.0
+        acc = 0.0
+        for i in range(m):
+            acc += (eta - 1.0) + (1.0 if mask[t, i] else 0.0)
+            W[i + 1] = acc
+        smax[m] = W[m]
+        for k in range(m - 1, -1, -1):
+            smax[k] = max(W[k], smax[k + 1])
+        pmin = np.inf
+        for y in range(m):
+            pmin = min(pmin, W[y])
+            out[t, y] = smax[y + 1] - pmin >= -tol

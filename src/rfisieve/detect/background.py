@@ -10,7 +10,7 @@ import math
 
 import numpy as np
 
-from rfisieve.detect import _kernels as kernels
+from rfisieve.detect import _background_kernels as kernels
 
 __all__ = ["box_radii", "box_reach", "cell_size", "coarse_radii", "coarse_reach", "coarse_smooth",
            "masked_smooth", "fit_background", "robust_sigma"]
@@ -252,7 +252,7 @@ def coarse_residual(x, ex1, ex2, lev0, sigma_t, sigma_f, out, work, t0=0, grid=N
     """r = x / B - 1 with B = :func:`coarse_smooth` (x, ex1 | ex2, t0=t0), 0 where
     lev0 is invalid, into out (internal; x float32 C-contiguous, ex1 ex2 bool).
     ``grid`` = (scale, lo, hi): out is an integer plane and gets r on SumThreshold's
-    grid (:func:`rfisieve.detect._kernels.to_grid` with these arguments), r itself is not
+    grid (:func:`rfisieve.detect._sumthreshold_kernels.to_grid` with these arguments), r itself is not
     stored."""
     ct, cf = cell_size(sigma_t), cell_size(sigma_f)
     G = _coarse_grid(x, ex1, ex2, sigma_t, sigma_f, ct, cf, work, t0)

@@ -20,7 +20,6 @@ import math
 
 import numpy as np
 
-from rfisieve.detect import _kernels as kernels
 from rfisieve.detect import _growth_kernels as kernels_morph
 
 __all__ = ["sir_operator", "sir_grow", "sir_halo"]
@@ -100,7 +99,7 @@ def sir_operator(mask, eta, axis=0, max_reach=None):
     out = np.empty(a.shape, np.bool_)
     if a.size:
         if reach is None or reach >= a.shape[1]:
-            kernels.sir_rows(a, eta, out)
+            kernels_morph.sir_rows(a, eta, out)
         else:
             kernels_morph.sir_rows_reach(a, eta, reach, out)
     return np.ascontiguousarray(out.T) if axis == 0 else out

@@ -24,10 +24,13 @@ import threading
 
 import numpy as np
 
-from rfisieve.detect import _kernels as kernels
+from rfisieve.detect import _sumthreshold_kernels as kernels
+from rfisieve.detect import _bandpass_kernels as bpk
 from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
+from rfisieve.detect.bandpass import (COMPACT_SHAPES, bandpass_reach, block_bandpass, block_lengths, compact_flags,
+                                      persistent_flags)
 
-__all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger",
+__all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger", "combined_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
 
 
@@ -97,7 +100,7 @@ def to_grid(values, chi1, max_window, out=None):
 
 
 def _grid_args(chi1, max_window):
-    """(scale, lo, hi) of :func:`rfisieve.detect._kernels.to_grid` for chi1 > 0."""
+    """(scale, lo, hi) of :func:`rfisieve.detect._sumthreshold_kernels.to_grid` for chi1 > 0."""
     unit = grid_unit(max_window)[0]
     return unit / chi1, -float(window_sizes(max_window)[-1] * unit), 2.0 * unit
 
@@ -207,20 +210,21 @@ def sumthreshold_1d(values, mask=None, chi1=6.0, rho=1.5, max_window=32, invalid
                         None if invalid is None else np.asarray(invalid).reshape(-1))
 
 
-def threshold_factors(iterations, first_factor):
-    """Threshold factors of the iterations: geometric from ``first_factor`` down to
-    1, f_i = first_factor ** ((I - 1 - i) / (I - 1)), i = 0 .. I - 1 (one iteration:
+def threshold_factors(iterations, start_scale):
+    """Threshold factors of the iterations: geometric from ``start_scale`` down to
+    1, f_i = start_scale ** ((I - 1 - i) / (I - 1)), i = 0 .. I - 1 (one iteration:
     [1])."""
     it = max(1, int(iterations))
     if it == 1:
         return (1.0,)
-    return tuple(float(first_factor) ** ((it - 1 - i) / (it - 1)) for i in range(it))
+    return tuple(float(start_scale) ** ((it - 1 - i) / (it - 1)) for i in range(it))
 
 
-def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32,
-                         max_window_freq=32, iterations=3, first_factor=4.0,
-                         background_time=15.0, background_freq=5.0, invalid=None,
-                         sigma=None, t0=0):
+def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32,
+                         max_window_freq=128, iterations=3, start_scale=4.0,
+                         background_time=15.0, background_freq=5.0, bandpass_dumps=0,
+                         persist_dumps=0, persist_sigma=6.0, baseline_channels=64,
+                         compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
@@ -239,7 +243,7 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     4. run :func:`sumthreshold` along time (windows up to ``max_window_time``) on
        the input mask, then along frequency (up to ``max_window_freq``) on the
        input mask joined by the time pass's detections, with chi_1 = ``chi1`` *
-       f_i * sigma, f_i falling geometrically from ``first_factor`` to 1
+       f_i * sigma, f_i falling geometrically from ``start_scale`` to 1
        (:func:`threshold_factors`); the detections are the union of both
        directions.
 
@@ -279,7 +283,7 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
         Largest window M along time (dumps) and frequency (channels).
     iterations : int
         Number of background fits.
-    first_factor : float
+    start_scale : float
         Threshold factor of the first iteration.
     background_time, background_freq : float
         Background smoothing scales (dumps, channels).
@@ -307,7 +311,65 @@ def sumthreshold_flagger(values, mask=None, chi1=6.0, rho=1.5, max_window_time=3
     sumthreshold_noise : the noise sigma for ``sigma``.
     """
     return _flag(values, mask, chi1, rho, max_window_time, max_window_freq, iterations,
-                 first_factor, background_time, background_freq, invalid, sigma, t0)[0]
+                 start_scale, background_time, background_freq, invalid, sigma, t0,
+                 bandpass_dumps=bandpass_dumps, persist_dumps=persist_dumps, persist_sigma=persist_sigma,
+                 baseline_channels=baseline_channels, compact_sigma=compact_sigma, protect=protect)[0]
+
+
+def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=None, **settings):
+    r"""SumThreshold on auto products of one feed pair together (both polarizations).
+
+    Method: one emitter reaches both polarizations (at strengths s_a, s_b) and their
+    noise is independent, so the sum of the normalised residuals
+    z = (r_a / sigma_a + r_b / sigma_b) / sqrt(2) has unit noise and the excess
+    (s_a + s_b) / sqrt(2): for s_b = 0.8 s_a, 1.27 times a's own signal-to-noise
+    (sums of independent Gaussians; common practice).  Each product is flagged on its
+    own (:func:`sumthreshold_flagger`, so a product hit alone is still flagged), its
+    last residual kept; SumThreshold (:func:`sumthreshold`, along time, then along
+    frequency with the time pass's detections as flagged, thresholds chi_1 = ``chi1``)
+    runs on z with every product's detections as flagged; a sample found on z is
+    flagged in *every* product of the pair (the emitter is in both).  A sample
+    invalid in any product is invalid in z.
+
+    Parameters
+    ----------
+    planes : sequence of ndarray (ntime, nchan)
+        The products' powers x.
+    sigmas : sequence of float
+        Each product's noise sigma (:func:`sumthreshold_noise`).
+    masks, invalids : sequence of ndarray of bool, optional
+        Per product, as for :func:`sumthreshold_flagger`.
+    t0, protect, **settings
+        As for :func:`sumthreshold_flagger`.
+
+    Returns
+    -------
+    list of ndarray of bool
+        Each product's detections: its own, or'ed with those on z.
+    """
+    k = len(planes)
+    masks = [None] * k if masks is None else list(masks)
+    invalids = [None] * k if invalids is None else list(invalids)
+    s = dict(settings)
+    s.pop("enabled", None)
+    own, zs = [], []
+    for x, sig, mk, inv in zip(planes, sigmas, masks, invalids):
+        r = np.zeros(np.shape(x), np.float32)
+        det = _flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, residual_out=r, **s)[0]
+        own.append(det)
+        zs.append(r)
+    bad = np.zeros(np.shape(planes[0]), np.bool_)
+    for x, inv in zip(planes, invalids):
+        bad |= ~np.isfinite(np.asarray(x))
+        if inv is not None:
+            bad |= np.asarray(inv, dtype=np.bool_)
+    z = (np.sum(zs, axis=0) / np.sqrt(k)).astype(np.float32)
+    flagged = np.logical_or.reduce(own)
+    chi1 = float(s.get("chi1", 8.0))
+    rho = float(s.get("rho", 1.5))
+    hit = sumthreshold(z, flagged, chi1, rho, s.get("max_window_time", 32), 0, bad)
+    hit |= sumthreshold(z, flagged | hit, chi1, rho, s.get("max_window_freq", 128), 1, bad)
+    return [d | (hit & ~bad) for d in own]
 
 
 def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
@@ -331,7 +393,7 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
         Absolute dump number of the first row.
     **settings
         The flagger's settings (chi1, rho, max_window_time, max_window_freq,
-        iterations, first_factor, background_time, background_freq).
+        iterations, start_scale, background_time, background_freq).
 
     Returns
     -------
@@ -341,8 +403,13 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
     s = dict(settings)
     s.pop("enabled", None)
     s.pop("sigma", None)
-    return _flag(values, mask, invalid=invalid, t0=t0, **s)[1]
+    s.pop("protect", None)
+    return _flag(values, mask, invalid=invalid, t0=t0, noise_only=True, **s)[1]
 
+
+#: Detections this far above the background (in noise sigma) are left out of the
+#: persistence test's block means (see rfisieve.detect.bandpass.persistent_flags).
+STRONG_SIGMA = 4.0
 
 _local = threading.local()
 
@@ -357,10 +424,14 @@ def _scratch():
     return work
 
 
-def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_freq=32,
-          iterations=3, first_factor=4.0, background_time=15.0, background_freq=5.0,
-          invalid=None, sigma=None, t0=0):
-    """The flagger; returns (detections, sigma of the last iteration)."""
+def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_freq=128,
+          iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
+          invalid=None, sigma=None, t0=0, bandpass_dumps=0, persist_dumps=0, persist_sigma=6.0,
+          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, residual_out=None):
+    """The flagger; returns (detections, sigma of the last iteration).  With
+    ``residual_out`` (float32 (ntime, nchan)) it also gets the last iteration's
+    residual in noise sigma (from the grid: clipped at 2 chi_1 above, -M_max chi_1
+    below; 0 where invalid)."""
     x = np.ascontiguousarray(values, dtype=np.float32)
     if x.ndim != 2:
         raise ValueError("values must be a 2-D (time, channel) plane")
@@ -382,6 +453,13 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
     base_ex = _buf(work, "base_ex", np.bool_, (n, m))     # input-flagged or invalid
     rowbad, colbad = kernels.init_flagger(x, inv, invalid is not None, flagged, mask is not None,
                                           lev0, base_ex)
+    raw = x
+    if bandpass_dumps:
+        # the bandpass per block, divided out: the surface then fits only gain and sky
+        bp, rowblock = block_bandpass(x, base_ex, t0, int(bandpass_dumps))
+        y = _buf(work, "bp_div", np.float32, (n, m))
+        bpk.divide_rows(x, bp, rowblock, y)
+        x = y
     some_dump_gone = bool(np.any(rowbad == m))   # the time pass does not write those dumps
     prev = _buf(work, "prev", np.bool_, (n, m))  # detections steering the next fit
     prev.fill(False)
@@ -392,7 +470,7 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
     gdt = grid_unit(mw)[1]
     bt, bf = float(background_time), float(background_freq)
     sig = float("nan")
-    factors = threshold_factors(iterations, first_factor)
+    factors = threshold_factors(iterations, start_scale)
     rg = _buf(work, "st_grid", gdt, (n, m))
     for i, factor in enumerate(factors):
         c1 = float(chi1) * factor * (1.0 if sigma is None else sigma)
@@ -416,6 +494,20 @@ def _flag(values, mask=None, chi1=6.0, rho=1.5, max_window_time=32, max_window_f
         # frequency pass on lev0 joined by the time detections in det
         _st_freq(rg, lev0, rowbad, colbad, unit, float(rho), np_f, det, True)
         det, prev = prev, det
+    if residual_out is not None and np.isfinite(sig):
+        np.multiply(rg, float(chi1) / unit, out=residual_out, casting="unsafe")
+    if noise_only or not np.isfinite(sig):
+        return prev, sig
+    if compact_sigma:
+        # compact shapes on the last residual (grid steps per sigma: unit / chi1)
+        prev |= compact_flags(rg, lev0, prev, unit / float(chi1), float(compact_sigma))
+    if bandpass_dumps and persist_dumps:
+        lengths = block_lengths(persist_dumps, bandpass_dumps)
+        strong = prev & (rg > STRONG_SIGMA * unit / float(chi1))
+        prev |= persistent_flags(raw, base_ex, strong, bp, rowblock, int(t0), sig, lengths,
+                                 int(baseline_channels), float(persist_sigma),
+                                 None if protect is None else np.asarray(protect, dtype=np.bool_),
+                                 int(bandpass_dumps))
     return prev, sig
 
 
@@ -445,6 +537,14 @@ def sumthreshold_halo(settings):
     (iterations 3, windows to 32, background_time 15, c_t = 8): 3 * (57 + 44) =
     303, rounded up to 304 dumps.
 
+    With the bandpass divided out first (``bandpass_dumps`` = T), the residual at a
+    dump depends on its block's bandpass, a median over the block and half a block
+    on each side (reach 3 T / 2, :func:`rfisieve.detect.bandpass.bandpass_reach`),
+    so the detections reach that much further; the persistence test's blocks nest
+    in the bandpass blocks (its result at a dump depends on that block's window
+    only); the compact boxes add their height less one (2 dumps).  For the L band
+    (T = 256, boxes of up to 3 dumps): 303 + 384 + 2 = 689, rounded up to 696.
+
     Parameters
     ----------
     settings : dict
@@ -465,4 +565,12 @@ def sumthreshold_halo(settings):
     r_b = coarse_reach(bt)
     ct = cell_size(bt)
     halo = it * (r_st + r_b)
+    tb = int(s.get("bandpass_dumps", 0) or 0)
+    if tb:
+        # the residual at a dump depends on its block's bandpass: reach 3 T / 2
+        halo += bandpass_reach(tb)
+        # the persistence test's blocks nest in the bandpass blocks: its result at a
+        # dump depends on that block's window only (3 T / 2), already inside
+    if s.get("compact_sigma", 0.0):
+        halo += max(dt for dt, _ in COMPACT_SHAPES) - 1
     return int(-(-halo // ct) * ct)

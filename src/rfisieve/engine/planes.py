@@ -57,6 +57,8 @@ def _meta(scan, band):
         "presum": scan.presum,
         "d": scan.d,
         "static": static_channels(scan.freq, band.get("known_bad")),
+        # protected sky lines: the persistence test is off there (band key `protect`)
+        "protect": static_channels(scan.freq, band.get("protect")),
     }
     if k["enabled"]:
         from rfisieve.detect.kurtosis import gaussian_tail
@@ -160,7 +162,7 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
         from rfisieve.detect.sumthreshold import sumthreshold_flagger
 
         hit = sumthreshold_flagger(values, invalid=excluded, sigma=meta["sigma"][p], t0=t0,
-                                   **_sumthreshold_settings(band))
+                                   protect=meta.get("protect"), **_sumthreshold_settings(band))
         out[hit[r] & ~excluded[r]] |= bits.SUMTHRESHOLD
     elif detector == "sk" and meta["autos"][p] and "sk" in meta:
         hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)

@@ -14,7 +14,7 @@ An emitter is a plain dict.  Keys common to every kind:
 ``start``, ``stop`` (int, optional)
     Dumps ``[start, stop)`` in which the emitter exists; default the whole scan.
 ``inputs`` (list of str, optional)
-    Inputs it reaches (``"q01h"``, ...); default all.
+    Inputs it reaches (``"pier1.a"``, ...); default all.
 ``input_scale`` (dict, optional)
     Input -> factor on ``inr`` (e.g. a weaker sidelobe on one antenna); default 1.
 ``name``, ``source`` (str, optional)
@@ -381,60 +381,62 @@ def default_emitters(band, freq, channel_width, time, rng):
              "start": int(0.1 * ntime), "stop": max(int(0.9 * ntime), int(0.1 * ntime) + 1)},
         ]
         out += _bursts(rng, ntime, 2, 8.0)
-    elif band == "UHF":
+    elif band == "P":
         a, b = _span(rng, ntime, 0.2, 0.5)
         out += [
-            {"kind": "noiselike", "name": "DVB-T multiplex (UHF ch 43)",
-             "freq_lo_hz": 650e6, "freq_hi_hz": 658e6, "inr": 25.0,
-             "source": "ITU Region 1 UHF TV raster, 8 MHz channels from 470 MHz (from "
-                       "memory)"},
-            {"kind": "noiselike", "name": "DVB-T multiplex (UHF ch 54)",
-             "freq_lo_hz": 738e6, "freq_hi_hz": 746e6, "inr": 15.0,
-             "source": "ITU Region 1 UHF TV raster, 8 MHz channels from 470 MHz (from "
-                       "memory)"},
-            {"kind": "noiselike", "name": "LTE band 20 downlink", "freq_lo_hz": 791e6,
-             "freq_hi_hz": 801e6, "inr": 8.0,
-             "source": "3GPP TS 36.101, band 20 downlink 791-821 MHz (from memory)"},
-            {"kind": "noiselike", "name": "GSM-900 / LTE band 8 downlink",
-             "freq_lo_hz": 935e6, "freq_hi_hz": 950e6, "inr": 10.0,
-             "source": "3GPP TS 45.005, E-GSM downlink 925-960 MHz (from memory)"},
-            {"kind": "intermittent", "name": "mobile handset uplink", "freq_hz": 897.4e6,
-             "width_hz": 0.2e6, "signal": "noise", "inr": 15.0, "on_fraction": 0.2,
+            {"kind": "noiselike", "name": "TETRA downlink (emergency services)",
+             "freq_lo_hz": 390e6, "freq_hi_hz": 395e6, "inr": 12.0,
+             "source": "ETSI EN 300 392 / ECC decision (04)06: TETRA for public safety "
+                       "380-385 / 390-395 MHz (from memory)"},
+            {"kind": "intermittent", "name": "TETRA handset uplink", "freq_hz": 382.4e6,
+             "width_hz": 25e3, "signal": "noise", "inr": 15.0, "on_fraction": 0.2,
              "mean_on": max(2.0, ntime / 100),
-             "source": "3GPP TS 45.005, E-GSM uplink 880-915 MHz (from memory)"},
-            {"kind": "pulsed", "name": "DME ground beacon 978 MHz", "freq_hz": 978e6,
-             "width_hz": 1.0e6, "inr": 10.0, "duty": 0.03,
-             "source": "ICAO Annex 10 Vol I, DME replies 962-1213 MHz (from memory)"},
+             "source": "ETSI EN 300 392, uplink 380-385 MHz, 25 kHz carriers (from memory)"},
+            {"kind": "pulsed", "name": "distress beacon burst (406 MHz)", "freq_hz": 406.04e6,
+             "width_hz": 0.1e6, "inr": 20.0, "duty": 0.01,
+             "period": max(1, int(round(50.0 / dt))), "on": 1,
+             "source": "COSPAS-SARSAT C/S T.001, 406.0-406.1 MHz beacons, burst every "
+                       "50 s (from memory)"},
+            {"kind": "intermittent", "name": "433 MHz short-range devices", "freq_hz": 433.92e6,
+             "signal": "carrier", "inr": 10.0, "on_fraction": 0.1, "mean_on": 2.0,
+             "source": "ITU Radio Regulations No. 5.138 and ERC Rec. 70-03, ISM / SRD "
+                       "433.05-434.79 MHz (from memory)"},
+            {"kind": "noiselike", "name": "PMR446 handhelds", "freq_lo_hz": 446.0e6,
+             "freq_hi_hz": 446.2e6, "inr": 8.0, "start": a, "stop": b,
+             "source": "ECC decision (15)05, PMR446 446.0-446.2 MHz (from memory)"},
+            {"kind": "noiselike", "name": "DVB-T multiplex (TV channel 21)",
+             "freq_lo_hz": 470e6, "freq_hi_hz": 478e6, "inr": 25.0,
+             "source": "ITU Region 1 UHF TV raster, 8 MHz channels from 470 MHz (from "
+                       "memory)"},
             {"kind": "carrier", "name": "local-oscillator leak of a site receiver "
-             "(invented)", "freq_hz": 700.0e6, "inr": 30.0},
+             "(invented)", "freq_hz": 350.0e6, "inr": 30.0},
             {"kind": "drifting", "name": "faulty switching supply harmonic (invented)",
-             "freq_hz": 622.0e6, "inr": 15.0,
+             "freq_hz": 322.0e6, "inr": 15.0,
              # drifts 10 channels downwards over the whole scan
              "drift_hz_per_s": -10 * channel_width / (ntime * dt)},
-            {"kind": "intermittent", "name": "UHF data link (invented)",
-             "freq_hz": 868.3e6, "signal": "carrier", "inr": 12.0,
-             "on_dumps": [[a, b]]},
         ]
         out += _bursts(rng, ntime, 2, 10.0)
-    elif band == "S":
+    elif band == "C":
         out += [
-            {"kind": "noiselike", "name": "UMTS / LTE band 1 downlink",
-             "freq_lo_hz": 2110e6, "freq_hi_hz": 2130e6, "inr": 8.0,
-             "source": "3GPP TS 36.101, band 1 downlink 2110-2170 MHz (from memory)"},
-            {"kind": "intermittent", "name": "Wi-Fi channel 1", "freq_hz": 2412e6,
+            {"kind": "pulsed", "name": "radio altimeters (aircraft overhead)",
+             "freq_lo_hz": 4250e6, "freq_hi_hz": 4350e6, "inr": 10.0, "duty": 0.02,
+             "source": "ITU Radio Regulations Art. 5, aeronautical radionavigation "
+                       "4200-4400 MHz (radio altimeters; from memory)"},
+            {"kind": "intermittent", "name": "Wi-Fi (5 GHz, channel 36)", "freq_hz": 5180e6,
              "width_hz": 20e6, "signal": "noise", "inr": 10.0, "on_fraction": 0.3,
              "mean_on": 3.0,
-             "source": "IEEE 802.11 2.4 GHz channel 1 centre 2412 MHz; ISM band ITU RR "
-                       "5.150 (from memory)"},
-            {"kind": "pulsed", "name": "S-band air-traffic radar", "freq_hz": 2800e6,
+             "source": "IEEE 802.11, 5 GHz channel 36 centre 5180 MHz; ECC decision "
+                       "(04)08, 5150-5350 MHz (from memory)"},
+            {"kind": "pulsed", "name": "C-band weather radar", "freq_hz": 5625e6,
              "width_hz": 2.0e6, "inr": 50.0, "duty": 0.02,
-             "period": max(1, int(round(4.8 / dt))),
-             "source": "ITU RR Art. 5, radiolocation 2700-2900 MHz (from memory); "
-                       "4.8 s rotation invented"},
-            {"kind": "carrier", "name": "spacecraft telemetry beacon (invented)",
-             "freq_hz": 2250.5e6, "inr": 20.0,
-             "source": "inside the 2200-2290 MHz space-operation band, ITU RR Art. 5 "
-                       "(from memory)"},
+             "period": max(1, int(round(6.0 / dt))),
+             "source": "ITU RR Art. 5, meteorological radars in 5600-5650 MHz (No. 5.452; "
+                       "from memory); 6 s rotation invented"},
+            {"kind": "noiselike", "name": "5.8 GHz links (ISM)", "freq_lo_hz": 5725e6,
+             "freq_hi_hz": 5745e6, "inr": 8.0,
+             "source": "ITU Radio Regulations No. 5.150, ISM band 5725-5875 MHz (from memory)"},
+            {"kind": "carrier", "name": "satellite telemetry beacon (invented)",
+             "freq_hz": 4510.5e6, "inr": 20.0},
         ]
         out += _bursts(rng, ntime, 2, 8.0)
     kept = [spec for spec in out if _in_view(spec, freq, channel_width)]

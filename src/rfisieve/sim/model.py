@@ -5,10 +5,14 @@ The Quillmoor Radio Observatory is fictional; its bands are physical ranges:
 ==== ================= ==========================================
 band range (MHz)       default view of a scan (nchan channels)
 ==== ================= ==========================================
-UHF  580 - 1015        590 - 1000 MHz
-L    900 - 1670        1000 - 1640 MHz
-S    1750 - 3500       2000 - 3000 MHz
+P    300 - 500         310 - 490 MHz
+L    950 - 1750        1000 - 1640 MHz
+C    4000 - 6000       4200 - 5800 MHz
 ==== ================= ==========================================
+
+(Receivers of the demo observatory's own choosing: a P-band receiver below the TV
+bands, the L band that outside checks use, and a C-band receiver around the 5 GHz
+continuum and formaldehyde work.)
 
 The clean mean power of input ``i`` (arbitrary "counts") in dump ``t`` and channel
 ``f`` is
@@ -27,22 +31,23 @@ import numpy as np
 
 #: Band ranges in Hz (invented observatory, physical bands; see the module docstring).
 BANDS = {
-    "UHF": (580e6, 1015e6),
-    "L": (900e6, 1670e6),
-    "S": (1750e6, 3500e6),
+    "P": (300e6, 500e6),
+    "L": (950e6, 1750e6),
+    "C": (4000e6, 6000e6),
 }
 
 #: Frequency range that a scan of a band covers by default, Hz.  The default channel
 #: width is this span over the scan's number of channels.
 DEFAULT_VIEW = {
-    "UHF": (590e6, 1000e6),
+    "P": (310e6, 490e6),
     "L": (1000e6, 1640e6),
-    "S": (2000e6, 3000e6),
+    "C": (4200e6, 5800e6),
 }
 
-#: Receiver + spillover system temperature per band, K (invented, of a typical size
-#: for cooled receivers: common practice puts them at 15-30 K).
-TSYS_K = {"UHF": 24.0, "L": 18.0, "S": 22.0}
+#: Receiver + spillover system temperature per band, K (invented, of a typical size:
+#: common practice puts cooled L- and C-band receivers at 15-30 K; an uncooled P-band
+#: receiver is warmer).
+TSYS_K = {"P": 45.0, "L": 18.0, "C": 25.0}
 
 #: Cold-sky brightness at 408 MHz, K, and the synchrotron spectral index
 #: (T ~ f^beta); both from memory (all-sky 408 MHz survey: ~20 K away from the

@@ -87,13 +87,13 @@ def _strings(values):
 # --------------------------------------------------------------------------------------
 
 def _products(antennas, feeds, cross):
-    inputs = [f"{a}{f}" for a in antennas for f in feeds]
+    inputs = [f"{a}.{f}" for a in antennas for f in feeds]
     products = [(i, i) for i in inputs]
     if cross:
         for f in feeds:
             for x in range(len(antennas)):
                 for y in range(x + 1, len(antennas)):
-                    products.append((f"{antennas[x]}{f}", f"{antennas[y]}{f}"))
+                    products.append((f"{antennas[x]}.{f}", f"{antennas[y]}.{f}"))
     return inputs, products
 
 
@@ -141,7 +141,7 @@ def _upstream_flags(rng, shape, fraction):
 
 
 def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
-                  antennas=("q01", "q02"), feeds=("h", "v"), cross=False,
+                  antennas=("pier1", "pier2"), feeds=("a", "b"), cross=False,
                   accumulations=1024, integration_time=2.0, channel_width=None,
                   f_start_hz=None, start_time=DEFAULT_START, emitters="default",
                   extra_emitters=(), ripple=True, gain_drift=True, sky_drift=True,
@@ -155,16 +155,18 @@ def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
         Scan file to write (layout of DESIGN.md 2.1); the scan name is its stem.
     truth_path : path-like, optional
         Truth file to write (layout in the module docstring); none if omitted.
-    band : {"UHF", "L", "S"}
-        Receiver band: 580-1015, 900-1670 or 1750-3500 MHz.
+    band : {"P", "L", "C"}
+        Receiver band: 300-500, 950-1750 or 4000-6000 MHz.
     ntime, nchan : int
         Dumps and channels.
     antennas : sequence of str
-        Antenna names (``q01`` .. ``q08``).
+        Antenna names (the demo observatory names its antennas after the pier they
+        stand on: ``pier1`` .. ``pier8``).
     feeds : sequence of str
-        Feeds of each antenna (``h``, ``v``); inputs are ``<antenna><feed>``.
+        Feeds (polarizations) of each antenna (``a``, ``b``); inputs are
+        ``<antenna>.<feed>``, e.g. ``pier3.a``, and an auto product ``pier3.a-pier3.a``.
     cross : bool
-        Also write same-feed cross products ``q01h-q02h``; /data is then complex64
+        Also write same-feed cross products ``pier1.a-pier2.a``; /data is then complex64
         (autos real-valued inside it), else float32 with autos only.
     accumulations : int
         N, raw spectra averaged into a dump: the relative noise is 1/sqrt(N).  The
@@ -173,7 +175,7 @@ def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
         Dump length, s (the /time step).
     channel_width, f_start_hz : float, optional
         Channel width and centre of channel 0, Hz; default the band's default view
-        (UHF 590-1000, L 1000-1640, S 2000-3000 MHz) split into ``nchan`` channels.
+        (P 310-490, L 1000-1640, C 4200-5800 MHz) split into ``nchan`` channels.
     start_time : float or str
         Start of the first dump: seconds since 1970 UTC or an ISO 8601 string.
     emitters : "default" or list of dict
@@ -252,7 +254,7 @@ def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
                        streams["emitters"]) for spec in specs]
 
     # interference state per group, then the draws
-    groups = ([[f"{a}{f}" for a in antennas] for f in feeds] if cross
+    groups = ([[f"{a}.{f}" for a in antennas] for f in feeds] if cross
               else [[i] for i in inputs])
     index = {p: j for j, p in enumerate(products)}
     dtype = np.complex64 if cross else np.float32
@@ -408,9 +410,9 @@ def _night_extras(i, ntime, nchan):
     return []
 
 
-def night_plan(*, nscans=6, bands=("L", "UHF"), ntime=1024, nchan=512, accumulations=1024,
+def night_plan(*, nscans=6, bands=("L", "P"), ntime=1024, nchan=512, accumulations=1024,
                s2_accumulations=128, integration_time=2.0, start_time=DEFAULT_START,
-               s2="one", seed=0, antennas=("q01", "q02"), feeds=("h", "v"), gap_s=120.0):
+               s2="one", seed=0, antennas=("pier1", "pier2"), feeds=("a", "b"), gap_s=120.0):
     """The keyword arguments of :func:`simulate_scan` for each scan of a night.
 
     Scan i (bands cycling) has its band's default emitters and, cycling over six:
@@ -457,24 +459,24 @@ def night_plan(*, nscans=6, bands=("L", "UHF"), ntime=1024, nchan=512, accumulat
     return plans
 
 
-def simulate_night(outdir, *, nscans=6, bands=("L", "UHF"), ntime=1024, nchan=512,
+def simulate_night(outdir, *, nscans=6, bands=("L", "P"), ntime=1024, nchan=512,
                    accumulations=1024, s2_accumulations=128, integration_time=2.0,
-                   start_time=DEFAULT_START, s2="one", seed=0, antennas=("q01", "q02"),
-                   feeds=("h", "v"), gap_s=120.0):
+                   start_time=DEFAULT_START, s2="one", seed=0, antennas=("pier1", "pier2"),
+                   feeds=("a", "b"), gap_s=120.0):
     """Simulate a night of scans: ``<outdir>/scans/<scan>.h5`` and
     ``<outdir>/truth/<scan>.truth.h5``.
 
-    The default night: six scans of 1024 dumps x 512 channels, alternating L and UHF,
-    from 2026-12-01 21:05 UTC, 2 s dumps, N = 1024; four auto products (q01h, q01v,
-    q02h, q02v) except the cross scan (q01h, q02h and q01h-q02h, complex64) and the /s2
-    scan (q01h, q02h, N = 128).  See :func:`night_plan` for what each scan holds.
+    The default night: six scans of 1024 dumps x 512 channels, alternating L and P,
+    from 2026-12-01 21:05 UTC, 2 s dumps, N = 1024; four auto products (pier1.a,
+    pier1.b, pier2.a, pier2.b) except the cross scan (pier1.a, pier2.a and
+    pier1.a-pier2.a, complex64) and the /s2 scan (pier1.a, pier2.a, N = 128).  See :func:`night_plan` for what each scan holds.
 
     Parameters
     ----------
     outdir : path-like
     nscans : int
     bands : sequence of str
-        Bands in turn (UHF, L, S).
+        Bands in turn (P, L, C).
     ntime, nchan, accumulations, integration_time, antennas, feeds :
         As in :func:`simulate_scan`, for every scan.
     s2_accumulations : int
@@ -520,7 +522,7 @@ writes:
                                 4 drifting, 5 intermittent, 6 noiselike), /dropped
 scan names look like qro_20261201_2105_L (observatory, UTC date, start time, band).
 
-The default night (6 scans x 1024 dumps x 512 channels, L and UHF in turn) holds
+The default night (6 scans x 1024 dumps x 512 channels, L and P in turn) holds
 carriers, pulsed trains, broadband bursts, a drifting carrier, intermittent emitters,
 noise-like blocks, bandpass ripple, gain and sky drift, dropped dumps, upstream flags,
 one scan with cross products and one with /s2.
@@ -528,7 +530,7 @@ one scan with cross products and one with /s2.
 examples:
   rfisieve simulate demo_night
   rfisieve simulate small --scans 2 --dumps 256 --channels 128 --seed 7
-  rfisieve simulate sbands --bands S,L --s2
+  rfisieve simulate cbands --bands C,L --s2
 """
 
 
@@ -592,7 +594,7 @@ def register_cli(subparsers):
                    help="dumps per scan (default: %(default)s)")
     p.add_argument("--channels", type=int, default=512, metavar="F",
                    help="channels per scan (default: %(default)s)")
-    p.add_argument("--bands", default="L,UHF", metavar="LIST",
+    p.add_argument("--bands", default="L,P", metavar="LIST",
                    help=f"comma-separated bands used in turn, from {', '.join(BANDS)} "
                         "(default: %(default)s)")
     p.add_argument("--seed", type=int, default=0, metavar="S",

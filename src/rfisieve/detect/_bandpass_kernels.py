@@ -1,0 +1,316 @@
+"""Compiled (numba) inner loops of :mod:`rfisieve.detect.bandpass`: the per-block
+bandpass (medians along time), the running median along frequency, the block means
+of the persistence test and the compact-box sums.  They check nothing; the public
+entry points are in :mod:`rfisieve.detect.bandpass`."""
+
+import numpy as np
+
+from rfisieve.detect._jit import njit
+
+_opts = dict(nogil=True, cache=True, fastmath=False, error_model="numpy", boundscheck=False)
+
+
+@njit(**_opts)
+def _select(a, k):
+    """The k-th smallest of a[:] (0-based), reordering a (Hoare's quickselect with
+    the median of three as pivot)."""
+    lo = 0
+    hi = a.shape[0] - 1
+    while hi > lo:
+        mid = (lo + hi) >> 1
+        # median of three to a[mid]
+        if a[mid] < a[lo]:
+            a[mid], a[lo] = a[lo], a[mid]
+        if a[hi] < a[lo]:
+            a[hi], a[lo] = a[lo], a[hi]
+        if a[hi] < a[mid]:
+            a[hi], a[mid] = a[mid], a[hi]
+        p = a[mid]
+        i = lo
+        j = hi
+        while i <= j:
+            while a[i] < p:
+                i += 1
+            while a[j] > p:
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if k <= j:
+            hi = j
+        elif k >= i:
+            lo = i
+        else:
+            return a[k]
+    return a[k]
+
+
+@njit(**_opts)
+def median_inplace(a):
+    """Median of a[:] (mean of the two middle values for an even count, as
+    numpy.median), reordering a."""
+    n = a.shape[0]
+    h = n // 2
+    hi = _select(a, h)
+    if n % 2:
+        return hi
+    lo = a[0]
+    for i in range(1, h):
+        if a[i] > lo:
+            lo = a[i]
+    return 0.5 * (lo + hi)
+
+
+@njit(**_opts)
+def column_medians(x, ex, a, b, out, buf):
+    """out[c] = median of x[a:b, c] over rows with ex False (NaN when none).
+
+    The rows are copied transposed in tiles of 64 x 64 (cache-friendly) into
+    ``buf`` (nchan, >= b - a), the valid values of each channel first."""
+    m = x.shape[1]
+    cnt = np.zeros(m, np.int64)
+    T = 64
+    for t0 in range(a, b, T):
+        t1 = min(b, t0 + T)
+        for c0 in range(0, m, T):
+            c1 = min(m, c0 + T)
+            for t in range(t0, t1):
+                for c in range(c0, c1):
+                    if not ex[t, c]:
+                        buf[c, cnt[c]] = x[t, c]
+                        cnt[c] += 1
+    for c in range(m):
+        k = cnt[c]
+        if k == 0:
+            out[c] = np.nan
+        else:
+            out[c] = median_inplace(buf[c, :k])
+
+
+@njit(**_opts)
+def fill_nan_1d(v):
+    """NaNs of v replaced by linear interpolation between the nearest finite values
+    (the nearest one beyond the outermost); all NaN gives 1."""
+    n = v.shape[0]
+    last = -1
+    for i in range(n):
+        if v[i] == v[i]:
+            if last == -1 and i > 0:
+                for j in range(i):
+                    v[j] = v[i]
+            elif last >= 0 and i - last > 1:
+                for j in range(last + 1, i):
+                    w = (j - last) / (i - last)
+                    v[j] = (1 - w) * v[last] + w * v[i]
+            last = i
+    if last == -1:
+        for i in range(n):
+            v[i] = 1.0
+    else:
+        for j in range(last + 1, n):
+            v[j] = v[last]
+
+
+@njit(**_opts)
+def running_median(v, half, out):
+    """out[c] = median of v over the symmetric window c - h .. c + h, h = min(half,
+    c, n - 1 - c) (shrinking at the ends so the window stays centred: a monotone
+    run gives its own value back exactly)."""
+    n = v.shape[0]
+    buf = np.empty(2 * half + 1)
+    for c in range(n):
+        h = min(half, c, n - 1 - c)
+        k = 0
+        for j in range(c - h, c + h + 1):
+            buf[k] = v[j]
+            k += 1
+        out[c] = median_inplace(buf[:k])
+
+
+@njit(**_opts)
+def divide_rows(x, bp, rowblock, out):
+    """out[t, c] = x[t, c] / bp[rowblock[t], c]."""
+    n, m = x.shape
+    for t in range(n):
+        k = rowblock[t]
+        for c in range(m):
+            out[t, c] = x[t, c] / bp[k, c]
+
+
+@njit(**_opts)
+def block_sums(x, ex, det, a, b, s, cnt):
+    """s[c], cnt[c] = sum and count of x[a:b, c] over rows with neither ex nor det."""
+    m = x.shape[1]
+    for c in range(m):
+        s[c] = 0.0
+        cnt[c] = 0
+    for t in range(a, b):
+        for c in range(m):
+            if not (ex[t, c] or det[t, c]):
+                s[c] += x[t, c]
+                cnt[c] += 1
+
+
+@njit(**_opts)
+def box_test(g, lev0, det, shapes, thrs, rest, out):
+    """Compact-box test on the grid plane g, all shapes in one sweep down the dumps:
+    every box of shapes[k] = (dt, df) dumps x channels whose sum over its free
+    samples (lev0 == 0 and not det; others count 0) exceeds thrs[k], and whose sum
+    less its largest free sample exceeds rest[k], marks its free samples in out.
+    Returns the number of boxes hit."""
+    n, m = g.shape
+    D = 1
+    for k in range(shapes.shape[0]):
+        D = max(D, shapes[k, 0])
+    rs = np.zeros((D, m + 1), np.int64)      # ring of per-row prefix sums
+    col = np.zeros(m + 1, np.int64)
+    hits = 0
+    for t in range(n):
+        r = t % D
+        acc = 0
+        rs[r, 0] = 0
+        for c in range(m):
+            v = 0
+            if lev0[t, c] == 0 and not det[t, c]:
+                v = g[t, c]
+            acc += v
+            rs[r, c + 1] = acc
+        for dt in range(1, D + 1):
+            if t + 1 < dt:
+                break
+            any_shape = False
+            for k in range(shapes.shape[0]):
+                if shapes[k, 0] == dt:
+                    any_shape = True
+            if not any_shape:
+                continue
+            for c in range(m + 1):
+                col[c] = 0
+            for u in range(dt):
+                rr = (t - u) % D
+                for c in range(m + 1):
+                    col[c] += rs[rr, c]
+            for k in range(shapes.shape[0]):
+                if shapes[k, 0] != dt:
+                    continue
+                df = shapes[k, 1]
+                thr = thrs[k]
+                for c in range(m - df + 1):
+                    tot = col[c + df] - col[c]
+                    if tot > thr:
+                        big = np.int64(0)
+                        for u in range(t - dt + 1, t + 1):
+                            for w in range(c, c + df):
+                                if lev0[u, w] == 0 and not det[u, w] and g[u, w] > big:
+                                    big = np.int64(g[u, w])
+                        if tot - big <= rest[k]:
+                            continue
+                        hits += 1
+                        for u in range(t - dt + 1, t + 1):
+                            for w in range(c, c + df):
+                                if lev0[u, w] == 0 and not det[u, w]:
+                                    out[u, w] = True
+    return hits
+
+
+@njit(**_opts)
+def local_quadratic(v, w, half, fallback, out):
+    """out[c] = value at c of the weighted least-squares quadratic through v over the
+    window c - half .. c + half (clipped at the ends), weights w; ``fallback[c]``
+    where the window holds too few weighted points."""
+    n = v.shape[0]
+    for c in range(n):
+        lo = max(0, c - half)
+        hi = min(n - 1, c + half)
+        s0 = s1 = s2 = s3 = s4 = 0.0
+        y0 = y1 = y2 = 0.0
+        cnt = 0
+        for k in range(lo, hi + 1):
+            wk = w[k]
+            if wk <= 0:
+                continue
+            u = (k - c) / (half + 1.0)
+            u2 = u * u
+            s0 += wk
+            s1 += wk * u
+            s2 += wk * u2
+            s3 += wk * u2 * u
+            s4 += wk * u2 * u2
+            y0 += wk * v[k]
+            y1 += wk * v[k] * u
+            y2 += wk * v[k] * u2
+            cnt += 1
+        if cnt < 6:
+            out[c] = fallback[c]
+            continue
+        # Cramer's rule for [[s0 s1 s2] [s1 s2 s3] [s2 s3 s4]] (a b c) = (y0 y1 y2); a
+        det = s0 * (s2 * s4 - s3 * s3) - s1 * (s1 * s4 - s3 * s2) + s2 * (s1 * s3 - s2 * s2)
+        if abs(det) < 1e-12 * max(1.0, s0) ** 3:
+            out[c] = fallback[c]
+            continue
+        da = y0 * (s2 * s4 - s3 * s3) - s1 * (y1 * s4 - s3 * y2) + s2 * (y1 * s3 - s2 * y2)
+        out[c] = da / det
+
+
+@njit(**_opts)
+def row_medians(blk, cnt, out):
+    """out[c] = median of the cnt[c] smallest values of blk[c] (the valid ones: the
+    caller puts +inf at excluded samples); NaN where cnt[c] == 0."""
+    m = blk.shape[0]
+    for c in range(m):
+        k = cnt[c]
+        if k == 0:
+            out[c] = np.nan
+            continue
+        a = blk[c]
+        h = k // 2
+        hi = _select(a, h)
+        if k % 2:
+            out[c] = hi
+        else:
+            lo = a[0]
+            for i in range(1, h):
+                if a[i] > lo:
+                    lo = a[i]
+            out[c] = 0.5 * (lo + hi)
+
+
+@njit(**_opts)
+def group_means(x, ex, off, g, gm, gbad):
+    """gm[j, c] = mean of x over the rows of group j (rows j g - off .. j g - off +
+    g - 1 within the plane) not excluded; gbad[j, c] = no such row."""
+    n, m = x.shape
+    ng = gm.shape[0]
+    cnt = np.zeros(m, np.int64)
+    for j in range(ng):
+        a = max(0, j * g - off)
+        b = min(n, (j + 1) * g - off)
+        for c in range(m):
+            gm[j, c] = 0.0
+            cnt[c] = 0
+        for t in range(a, b):
+            for c in range(m):
+                if not ex[t, c]:
+                    gm[j, c] += x[t, c]
+                    cnt[c] += 1
+        for c in range(m):
+            if cnt[c] > 0:
+                gm[j, c] /= cnt[c]
+                gbad[j, c] = False
+            else:
+                gbad[j, c] = True
+
+
+@njit(**_opts)
+def masked_row_medians(a, ok, out):
+    """out[j] = median of a[j, c] over the c with ok[j, c] (NaN when none)."""
+    g, m = a.shape
+    buf = np.empty(m)
+    for j in range(g):
+        k = 0
+        for c in range(m):
+            if ok[j, c]:
+                buf[k] = a[j, c]
+                k += 1
+        out[j] = median_inplace(buf[:k]) if k > 0 else np.nan

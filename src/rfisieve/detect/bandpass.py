@@ -1,0 +1,531 @@
+"""A receiver's bandpass, followed exactly, and the two tests built on it: persistent
+emission on long baselines of time, and compact time-frequency shapes.
+
+Model of a receiver's clean power (radiometer physics; common practice):
+x(t, f) = g(t) b(f) S(t, f) (1 + n), a slow gain g times a bandpass b that is fixed
+over minutes (steep anti-aliasing edges, knees, shoulders and all), a slow sky
+factor S, and noise n of relative rms 1 / sqrt(N).  The bandpass is taken per block
+of ``bandpass_dumps`` dumps as each channel's *median along time*
+(:func:`block_bandpass`): it follows any spectral shape exactly, whatever its edges
+and knees, because no smoothing runs along frequency.  The SumThreshold flagger then
+fits its smooth surface to x / b, where only g S is left: slow in time and smooth in
+frequency, so the surface can use a large frequency scale, and an emitter tens of
+channels wide stands out of it instead of being absorbed.
+
+What a time median absorbs, an emitter present in more than half of a block's dumps,
+is found by :func:`persistent_flags`: per block of L dumps the channels' mean power is
+compared with a frequency-robust baseline, the running median over channels of the
+bandpass (a monotone edge or knee is returned exactly by a centred running median).
+A 1-sigma carrier in every dump is a sqrt(L)-sigma excess of the block mean.
+
+Blocks are aligned to absolute dump numbers (block k holds dumps k L .. k L + L - 1),
+so a chunk of a scan cut anywhere sees the whole scan's blocks away from its ends
+(the halo rule is in :func:`rfisieve.detect.sumthreshold.sumthreshold_halo`).
+"""
+
+import math
+
+import numpy as np
+
+from rfisieve.detect import _bandpass_kernels as kernels
+
+__all__ = ["block_bandpass", "persistent_flags", "compact_flags", "block_lengths", "COMPACT_SHAPES",
+           "bandpass_reach"]
+
+#: MAD to standard deviation for Gaussian noise, 1 / Phi^-1(3/4) (common practice).
+MAD_TO_SIGMA = 1.482602218505602
+
+#: Sub-blocks (dumps) in which a channel found by the persistence test is flagged, and
+#: the excess (sigma of the sub-block mean) it must show there: an emitter that
+#: switches off within a long block is not flagged while it is off.
+SUB_DUMPS = 64
+REFINE_SIGMA = 2.5
+#: ... and within a sub-block, the parts of PART_DUMPS where it shows PART_SIGMA: an
+#: on/off switch costs a quarter sub-block instead of a whole one, while a 0.5-sigma
+#: carrier (2 sigma in 16 dumps) keeps about 93 % of its parts.
+PART_DUMPS = 16
+PART_SIGMA = 1.0
+
+#: A box must pass also without its largest sample, at COMPACT_REST z sqrt(n - 1): a
+#: bright sample that SumThreshold left (a carrier just under chi_1, or its neighbour
+#: through the channel response) would otherwise lift wide boxes of clean samples
+#: around it, while a pulse spread over the box passes (3 sigma x 3 channels: 4.2
+#: sigma without its top sample against 0.6 x 4.5 = 2.7).
+COMPACT_REST = 0.6
+
+#: Boxes (dumps, channels) of the compact-shape test: short pulses a few channels wide
+#: and a few dumps long (the 1 x 1 box is SumThreshold's M = 1 window already).
+COMPACT_SHAPES = ((1, 2), (1, 3), (1, 4), (1, 6), (2, 1), (2, 2), (2, 3), (3, 1), (3, 3))
+
+
+#: Dumps averaged before the bandpass median (aligned to absolute dump numbers).
+GROUP_DUMPS = 8
+
+
+def _blocks(t0, n, length):
+    """(k, a, b) for the aligned blocks of ``length`` dumps that overlap plane rows
+    0 .. n - 1 (a, b: the block's rows within the plane)."""
+    out = []
+    k = int(t0) // length
+    while k * length < t0 + n:
+        a, b = max(0, k * length - t0), min(n, (k + 1) * length - t0)
+        out.append((k, a, b))
+        k += 1
+    return out
+
+
+def bandpass_reach(bandpass_dumps):
+    """Dumps by which a row's bandpass (:func:`block_bandpass`) reaches: its block of
+    T dumps and half a block on each side, 3 T / 2."""
+    return int(math.ceil(1.5 * int(bandpass_dumps)))
+
+
+def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
+    r"""Bandpass per aligned block of dumps: each channel's median along time.
+
+    Method: for block k (absolute dumps k T .. k T + T - 1, T = ``bandpass_dumps``)
+    and channel f,
+
+    .. math:: b_k(f) = \mathrm{median}\{x(t, f) : kT - T/2 \le t < (k+1)T + T/2\}
+
+    over samples not excluded (a window of 2 T dumps centred on the block, so the
+    median has at least T / 2 dumps also at a scan's ends), taken over the means
+    of aligned groups of ``GROUP_DUMPS`` dumps (the same noise as the median of the
+    dumps themselves, at a quarter of the cost).  A median because an
+    emitter present in under half of the window does not move it much (breakdown
+    point 1/2; Hampel 1974, JASA 69, 383).  Its noise is about 1.25 / sqrt(2 T) of a
+    dump's (asymptotic variance of the median, pi / 2 sigma**2 / n).  Channels with
+    no sample get the linear interpolation of their neighbours.  Each block's
+    bandpass is scaled to a median of 1 over the channels: it carries the spectral
+    shape only, and the slow gain (which would otherwise leave a step at every block
+    boundary where it drifts) is left to the surface fit.
+
+    Parameters
+    ----------
+    values : ndarray (ntime, nchan), float32
+    exclude : ndarray of bool, same shape
+        Samples left out (invalid, flagged upstream, known-bad).
+    t0 : int
+        Absolute dump number of the first row.
+    bandpass_dumps : int
+        T, dumps per block.
+
+    Returns
+    -------
+    bp : ndarray (nblocks, nchan), float32
+    rowblock : ndarray (ntime,), int64
+        Index into ``bp`` of each row's block.
+    """
+    x = np.ascontiguousarray(values, dtype=np.float32)
+    ex = np.ascontiguousarray(exclude, dtype=np.bool_)
+    n, m = x.shape
+    T = int(bandpass_dumps)
+    blocks = _blocks(t0, n, T)
+    bp = np.empty((len(blocks), m), np.float32)
+    rowblock = np.empty(n, np.int64)
+    half = T // 2
+    # means over aligned groups of G dumps first: the median of n / G group means
+    # has the noise of the median of n dumps (both pi / 2 sigma**2 / n), at a
+    # G-th of the cost
+    G = GROUP_DUMPS if T % (2 * GROUP_DUMPS) == 0 else 1
+    off = int(t0) % G
+    ng = -(-(n + off) // G)
+    gm = np.empty((ng, m), np.float32)
+    gbad = np.empty((ng, m), np.bool_)
+    kernels.group_means(x, ex, off, G, gm, gbad)
+    buf = np.empty((m, min(ng, (2 * T) // G + 1)), np.float32)
+    col = np.empty(m, np.float64)
+    for i, (k, a, b) in enumerate(blocks):
+        wa, wb = max(0, k * T - half - t0), min(n, (k + 1) * T + half - t0)
+        ga, gb = (wa + off) // G, -(-(wb + off) // G)
+        if buf.shape[1] < gb - ga:
+            buf = np.empty((m, gb - ga), np.float32)
+        kernels.column_medians(gm, gbad, ga, gb, col, buf)
+        kernels.fill_nan_1d(col)
+        # the shape only: each block's bandpass is scaled to a median of 1 over the
+        # channels, so a gain that drifts between blocks leaves no step at their
+        # boundaries (the surface fit follows the gain, continuously)
+        level = np.median(col)
+        bp[i] = col / level if level > 0 else col
+        rowblock[a:b] = i
+    bp[~(bp > 0)] = 1.0
+    return bp, rowblock
+
+
+def block_lengths(persist_dumps, bandpass_dumps):
+    """Block lengths L of the persistence test: ``persist_dumps`` and its halves down
+    to a quarter of it (at least 16), each dividing ``bandpass_dumps``."""
+    L = int(persist_dumps)
+    out = []
+    for k in range(3):
+        ln = L >> k
+        if ln >= 16 and int(bandpass_dumps) % ln == 0:
+            out.append(ln)
+    return tuple(out)
+
+
+def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths, half_width, z,
+                     protect=None, bandpass_dumps=256):
+    r"""Persistent and intermittent emission: channels whose mean over a block of L
+    dumps stands out from the spectral baseline.
+
+    Method: for each aligned block j of L dumps and channel f, the mean m_j(f) of the
+    samples neither excluded nor already detected (n_j(f) of them) is divided by the
+    baseline B_k(f), the running median over 2 h + 1 channels (h = ``half_width``;
+    centred, shrinking at the band's ends) of the bandpass b_k of
+    :func:`block_bandpass` for the block k holding j, and by the block's gain
+    g_j = median over channels of m_j / B_k.  The excess
+    e = m_j / (g_j B_k) - 1 has noise sigma / sqrt(n_j) (sigma: a dump's relative
+    noise); a channel is flagged over the block when
+
+    .. math:: e \sqrt{n_j} / \sigma > z \max(1, s_j)
+
+    with s_j the robust scatter (1.4826 MAD) over channels of the excess over the
+    running median (below) in the same units: where
+    the baseline is rougher than the noise (ripple of a few channels' period), the
+    threshold rises with it.  Only channels with n_j >= L / 4 are tested.  An
+    emitter up to about h channels wide stands out of the running median (a median
+    ignores under half of its window).  The excess is taken over two baselines and
+    the smaller one counts: the running median, which follows a monotone edge, knee
+    or shoulder exactly but cuts the tops of curved stretches, and a local quadratic
+    in log power over the same window (leaving out the channels that stand out of
+    the running median: a robust local regression in the manner of Cleveland 1979,
+    JASA 74, 829), which
+    follows smooth curvature but not a sharp knee.  Interference must stand out
+    of both.  A spectrally smooth sky line is *not* told apart from interference:
+    protect its range (``protect``).  Each channel found in a block is flagged in
+    the sub-blocks of ``SUB_DUMPS`` where its own excess passes ``REFINE_SIGMA``.
+
+    Parameters
+    ----------
+    values : ndarray (ntime, nchan)
+        Power x (not divided by the bandpass).
+    exclude, detected : ndarray of bool
+        Samples left out (invalid, flagged upstream), and detections left out of
+        the block means (the flagger passes those more than ``STRONG_SIGMA`` above
+        its background: they are flagged already, and an intermittent strong
+        emitter's channel is not flagged between its pulses for them).
+    bp, rowblock
+        From :func:`block_bandpass` with ``bandpass_dumps``.
+    t0 : int
+        Absolute dump number of the first row.
+    sigma : float
+        Relative noise of one dump (the flagger's noise sigma).
+    lengths : sequence of int
+        Block lengths L (each divides ``bandpass_dumps``).
+    half_width : int
+        h, half-width of the running median, channels.
+    z : float
+        Threshold in sigma of the block mean.
+    protect : ndarray of bool (nchan,), optional
+        Channels where the test is off (protected sky lines).
+
+    Returns
+    -------
+    ndarray of bool (ntime, nchan)
+    """
+    x = np.ascontiguousarray(values, dtype=np.float32)
+    ex = np.ascontiguousarray(exclude, dtype=np.bool_)
+    n, m = x.shape
+    out = np.zeros((n, m), np.bool_)
+    if not (sigma > 0) or n == 0 or m < 16:
+        return out
+    bases = _baselines(bp, int(half_width))
+    # sums over aligned parts of S dumps of the samples neither excluded nor in
+    # ``detected`` (the caller passes the strong detections only: leaving out every
+    # detection would bias a partly detected weak channel's mean low, keeping strong
+    # ones would let a radar's bright pulses flag its channel between them)
+    det = np.ascontiguousarray(detected, dtype=np.bool_)
+    S = min(PART_DUMPS, min(int(L) for L in lengths))
+    parts = _blocks(t0, n, S)
+    P = len(parts)
+    ssum = np.empty((P, m), np.float64)
+    scnt = np.empty((P, m), np.int64)
+    for q, (_, a, b) in enumerate(parts):
+        kernels.block_sums(x, ex, det, a, b, ssum[q], scnt[q])
+    pidx = np.array([k for k, _, _ in parts], np.int64)          # absolute part numbers
+    prow = np.array([a for _, a, _ in parts], np.int64)          # first row of each part
+    plen = np.array([b - a for _, a, b in parts], np.int64)
+    free = np.ones(m, np.bool_) if protect is None else ~np.asarray(protect, dtype=np.bool_)
+    pblock = rowblock[prow]                                      # bandpass block of each part
+
+    csum = np.zeros((P + 1, m))
+    np.cumsum(ssum, axis=0, out=csum[1:])
+    ccnt = np.zeros((P + 1, m), np.int64)
+    np.cumsum(scnt, axis=0, out=ccnt[1:])
+    crow = np.r_[0, np.cumsum(plen)]
+    memo = {}
+
+    def grouped(k):
+        """Sums, counts, rows and bandpass block per group of k aligned parts, and
+        each part's group (memoised)."""
+        if k not in memo:
+            gid = pidx // k
+            new_group = np.r_[True, gid[1:] != gid[:-1]]
+            starts = np.flatnonzero(new_group)
+            ends = np.r_[starts[1:], P]
+            memo[k] = (csum[ends] - csum[starts], ccnt[ends] - ccnt[starts], crow[ends] - crow[starts],
+                       pblock[starts], np.cumsum(new_group) - 1)
+        return memo[k]
+
+    every4 = (np.arange(m) % 4) == 0
+
+    def excess(k, cols=None):
+        """Per group of k parts: (ok, z over the smaller excess, z over the running
+        median's) and each part's group (see the docstring); with ``cols``, only for
+        those channels, the groups' gains then taken over every fourth channel (the
+        gain is common to all channels: a quarter of them pins it to well under the
+        thresholds' resolution)."""
+        gs, gc, rows, blk, grp = grouped(k)
+        ok = free[None, :] & (gc >= np.maximum(2, rows // 4)[:, None])
+        enough = ok.sum(axis=1) >= 8
+        ok &= enough[:, None]
+        gain_ok = ok if cols is None else ok & every4[None, :]
+        zs = []
+        with np.errstate(all="ignore"):
+            mean = gs / np.maximum(gc, 1)
+            for base in bases:
+                ratio = mean / base[blk]
+                g = _row_medians(ratio, gain_ok)
+                g = np.where(np.isfinite(g) & enough, g, 1.0)
+                rc = ratio if cols is None else ratio[:, cols]
+                cc = gc if cols is None else gc[:, cols]
+                zs.append((rc / g[:, None] - 1.0) * np.sqrt(cc) / sigma)
+        okc = ok if cols is None else ok[:, cols]
+        return okc, np.minimum(zs[0], zs[1]), zs[0], grp
+
+    def fine_z(k, cols):
+        """Per group of k parts, for channels ``cols`` (at least 3 from the ends):
+        the symmetric leave-one-out excess of the mean spectrum, in sigma of that
+        mean (its variance 1.5 times a sample's: 1 + 49/98); not ok where a channel
+        of the seven has no sample."""
+        gs, gc, _, _, grp = grouped(k)
+        idx = cols[:, None] + np.arange(-3, 4)[None, :]
+        c7 = gc[:, idx]
+        with np.errstate(all="ignore"):
+            lm = np.log(np.maximum(gs[:, idx] / np.maximum(c7, 1), 1e-30))
+            s1 = 0.5 * (lm[..., 2] + lm[..., 4])
+            s2 = 0.5 * (lm[..., 1] + lm[..., 5])
+            s3 = 0.5 * (lm[..., 0] + lm[..., 6])
+            e = lm[..., 3] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
+        ok = (c7 > 0).all(axis=2)
+        return ok, e * np.sqrt(np.maximum(c7[..., 3], 1) / 1.5) / sigma, grp
+
+    per_sub = max(1, SUB_DUMPS // S)
+    cand = np.zeros((P, m), np.bool_)
+    for L in lengths:
+        ok, zs, zm, grp = excess(int(L) // S)
+        with np.errstate(all="ignore"):
+            med = _row_medians(zm, ok)
+            sc = MAD_TO_SIGMA * _row_medians(np.abs(zm - med[:, None]), ok)
+        sc = np.where(np.isfinite(sc), np.maximum(1.0, sc), np.inf)
+        hit = ok & (zs > z * sc[:, None])
+        cand |= hit[grp]
+    flags = np.zeros((P, m), np.bool_)
+    cols = np.flatnonzero(cand.any(axis=0))
+    if cols.size:
+        # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
+        # the parts where it stands out by PART_SIGMA
+        okp, zp, _, _ = excess(1, cols)
+        oks, zsub, _, gsub = excess(per_sub, cols)
+        flags[:, cols] = cand[:, cols] & (oks & (zsub > REFINE_SIGMA))[gsub] & okp & (zp > PART_SIGMA)
+    # narrow emitters on steep slopes: the bandpass block's fine test, placed in time
+    # by the symmetric leave-one-out excess of the sub-block and part means
+    nb = bp.shape[0]
+    fine = np.zeros((nb, m), np.bool_)
+    for i in range(nb):
+        fine[i] = fine_excess(bp[i], z, protect)
+    cols = np.flatnonzero(fine.any(axis=0))
+    if cols.size:
+        fs_ok, fs_z, fs_g = fine_z(per_sub, cols)
+        fp_ok, fp_z, _ = fine_z(1, cols)
+        flags[:, cols] |= (fine[pblock][:, cols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g]
+                           & fp_ok & (fp_z > PART_SIGMA))
+    if flags.any():
+        prow_of = np.repeat(np.arange(P), plen)
+        out[:] = flags[prow_of] & ~ex
+    return out
+
+
+def _row_medians(a, ok):
+    """Median of each row of a over its ok entries (NaN for none)."""
+    out = np.empty(a.shape[0])
+    kernels.masked_row_medians(np.ascontiguousarray(a, dtype=np.float64), np.ascontiguousarray(ok), out)
+    return out
+
+
+def _running_mean(v, half):
+    """Mean of v over the window c - half .. c + half clipped to the ends."""
+    n = v.shape[0]
+    cs = np.concatenate(([0.0], np.cumsum(v)))
+    c = np.arange(n)
+    lo, hi = np.maximum(0, c - half), np.minimum(n, c + half + 1)
+    return (cs[hi] - cs[lo]) / (hi - lo)
+
+
+def _baselines(bp, half_width):
+    """The two frequency-robust baselines of each block's bandpass (see
+    :func:`persistent_flags`): the centred running median, and a local quadratic in
+    log power fitted with the channels that stand out of the running median (by
+    more than 3 robust sigma of that difference over the band) left out.  The
+    quadratic is fitted once: near a sharp knee it is poor, and the scatter of its
+    residual there would make a second pass reject the clean channels instead.
+    Where its mean absolute misfit over the window exceeds the running median's
+    (steps, knees) the second baseline is the running median too."""
+    med = np.empty(bp.shape, np.float64)
+    quad = np.empty(bp.shape, np.float64)
+    for i in range(bp.shape[0]):
+        row = bp[i].astype(np.float64)
+        kernels.running_median(row, half_width, med[i])
+        lb = np.log(np.maximum(row, 1e-30))
+        lm = np.log(np.maximum(med[i], 1e-30))
+        d = lb - lm
+        sc = MAD_TO_SIGMA * np.median(np.abs(d - np.median(d)))
+        w = (np.abs(d) <= 3.0 * sc).astype(np.float64) if sc > 0 else np.ones_like(d)
+        fit = np.empty_like(lb)
+        kernels.local_quadratic(lb, w, half_width, lm, fit)
+        # where the quadratic follows the band worse than the running median (steps,
+        # sharp knees: the mean absolute misfit over the window is larger),
+        # the running median alone counts
+        s_med = _running_mean(np.abs(d), half_width)
+        s_quad = _running_mean(np.abs(lb - fit), half_width)
+        quad[i] = np.where(s_quad < s_med, np.exp(fit), med[i])
+    return med, quad
+
+
+def _loo_quadratic(lb, nb=None):
+    """lb(c) less its prediction (6 s_1 + 3 s_2 - 2 s_3) / 7 from the pairs' means
+    s_j = (lb(c - j) + lb(c + j)) / 2 (see :func:`fine_excess`); 0 on the three
+    outer channels at each end."""
+    m = lb.shape[-1]
+    e = np.zeros(lb.shape)
+    if m < 7:
+        return e
+    nb = lb if nb is None else nb
+    c = np.arange(3, m - 3)
+    s1 = 0.5 * (nb[..., c - 1] + nb[..., c + 1])
+    s2 = 0.5 * (nb[..., c - 2] + nb[..., c + 2])
+    s3 = 0.5 * (nb[..., c - 3] + nb[..., c + 3])
+    e[..., c] = lb[..., c] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
+    return e
+
+
+def _loo_excess(lb, nb=None):
+    """lb's excess over leave-one-out predictions: the smaller of the excess over
+    the symmetric quadratic of :func:`_loo_quadratic` and the larger of the excesses
+    over the straight lines through the three channels on either side,
+    (4 l(c -+ 1) + l(c -+ 2) - 2 l(c -+ 3)) / 3 (least squares through j = 1, 2, 3,
+    at j = 0).  At a sharp knee (a kink of the log bandpass) the channel lies on
+    both sides' lines, so a knee is not taken for a carrier; a carrier stands out
+    of the symmetric prediction and of at least one side's (a side whose three
+    channels straddle a rounded knee may miss it).  Returns
+    (min excess, symmetric excess); 0 on the three outer channels at each end."""
+    m = lb.shape[0]
+    nb = lb if nb is None else nb
+    sym = _loo_quadratic(lb, nb)
+    if m < 7:
+        return sym, sym
+    c = np.arange(3, m - 3)
+    left = lb[c] - (4 * nb[c - 1] + nb[c - 2] - 2 * nb[c - 3]) / 3.0
+    right = lb[c] - (4 * nb[c + 1] + nb[c + 2] - 2 * nb[c + 3]) / 3.0
+    e = np.zeros(m)
+    e[c] = np.minimum(sym[c], np.maximum(left, right))
+    return e, sym
+
+
+def fine_excess(bp_row, z, protect=None):
+    r"""Channels of one block's bandpass that stand out of a local quadratic in log
+    power: narrow persistent emitters on steep slopes and knees.
+
+    Method: a centred running median returns the centre value itself on a steep
+    monotone slope, so a narrow carrier there hides in it.  Instead each channel's log
+    bandpass l(c) is predicted from its neighbours by the least-squares quadratic
+    through the pairs' means s_j = (l(c - j) + l(c + j)) / 2, j = 1, 2, 3 (exact for
+    cubics; the channel itself left out): p(c) = (6 s_1 + 3 s_2 - 2 s_3) / 7, and
+    by the straight lines through the three channels on either side
+    (:func:`_loo_excess`: a sharp knee lies on both sides' lines).  It
+    is divided by the robust scatter over the band of the symmetric excess (1.4826
+    MAD: the bandpass median's noise, about 1.25 / sqrt(2 T) of a dump's, times
+    sqrt(3/2) for the prediction); channels above ``z`` are flagged.  The three
+    outer channels at each end are not tested.  In the sub-blocks (which only place
+    the found channel in time) the symmetric excess of the sub-block means counts,
+    scaled by sqrt(n / 1.5) / sigma (1.5: its variance over a sample's, 1 + 49/98).
+
+    Parameters
+    ----------
+    bp_row : ndarray (nchan,)
+        One block's bandpass (:func:`block_bandpass`).
+    z : float
+        Threshold in robust sigma.
+    protect : ndarray of bool, optional
+        Channels not tested.
+
+    Returns
+    -------
+    ndarray of bool (nchan,)
+    """
+    lb = np.log(np.maximum(np.asarray(bp_row, dtype=np.float64), 1e-30))
+    m = lb.shape[0]
+    hit = np.zeros(m, np.bool_)
+    if m < 16:
+        return hit
+    e, sym = _loo_excess(lb)
+    inner = sym[3:m - 3]
+    sc = MAD_TO_SIGMA * np.median(np.abs(inner - np.median(inner)))
+    if not sc > 0:
+        return hit
+    # the predictions give the outer neighbours negative weight, so a strong carrier
+    # three channels away would lift a clean channel's excess: as neighbours, the
+    # channels found are replaced by the linear interpolation of the others, and the
+    # test is repeated until the channels found no longer change (at most 4 times)
+    found = e > z * sc
+    for _ in range(4):
+        if not found.any():
+            break
+        nb = np.where(found, np.nan, lb)
+        kernels.fill_nan_1d(nb)
+        e, _ = _loo_excess(lb, nb)
+        now = e > z * sc
+        if np.array_equal(now, found):
+            break
+        found = now
+    hit[3:m - 3] = found[3:m - 3]
+    if protect is not None:
+        hit &= ~np.asarray(protect, dtype=np.bool_)
+    return hit
+
+
+def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES):
+    r"""Compact time-frequency shapes: boxes whose normalised sum exceeds z.
+
+    Method: a matched (box) filter for pulses short in time and a few channels wide.
+    For a box of dt dumps x df channels of residuals r / sigma (samples already
+    detected or not free count 0), its sum over sqrt(dt df) is a unit-variance
+    Gaussian in noise; boxes above z are flagged.  A 3-sigma pulse one dump long and
+    three channels wide sums to 3 sqrt(3) = 5.2 sigma.  The sums are integer sums on
+    SumThreshold's grid (:func:`rfisieve.detect.sumthreshold.to_grid`).
+
+    Parameters
+    ----------
+    grid : ndarray of int (ntime, nchan)
+        Residual on the grid; ``unit_per_sigma`` grid steps are one noise sigma.
+    lev0 : ndarray of uint8
+        Flagger levels (0 = free).
+    detected : ndarray of bool
+        Already detected samples.
+    z : float
+        Threshold of the normalised box sum.
+    shapes : sequence of (int, int)
+        Box shapes (dt, df).
+
+    Returns
+    -------
+    ndarray of bool
+    """
+    out = np.zeros(grid.shape, np.bool_)
+    sh = np.array(shapes, dtype=np.int64).reshape(-1, 2)
+    thrs = np.array([int(math.floor(z * math.sqrt(dt * df) * unit_per_sigma)) for dt, df in sh], np.int64)
+    rest = np.array([int(math.floor(COMPACT_REST * z * math.sqrt(dt * df - 1) * unit_per_sigma))
+                     for dt, df in sh], np.int64)
+    kernels.box_test(grid, lev0, detected, sh, thrs, rest, out)
+    return out

@@ -1,0 +1,134 @@
+"""The bandpass-following background, the persistence test, protected ranges and
+chunk invariance of the L band's detection (rfisieve.detect.bandpass)."""
+
+import math
+
+import numpy as np
+import pytest
+
+from rfisieve.detect.bandpass import block_bandpass, persistent_flags, block_lengths
+from rfisieve.detect.sumthreshold import sumthreshold_flagger, sumthreshold_halo
+
+N_ACC = 512                      # raw spectra per dump
+SIGMA = 1 / math.sqrt(N_ACC)     # relative noise of a dump (radiometer equation)
+L_BAND = dict(background_freq=32.0, bandpass_dumps=256, persist_dumps=256, persist_sigma=6.0,
+              baseline_channels=64, compact_sigma=5.0)
+
+
+def knee_bandpass(m, knee=24, drop=50.0, over=20.0):
+    """Analytic bandpass: flat, then falling by `drop` over `over` channels beyond a
+    sharp knee `knee` channels from each edge (exp of a piecewise-linear log)."""
+    c = np.arange(m, dtype=np.float64)
+    u = np.maximum(0, knee - c) + np.maximum(0, c - (m - 1 - knee))
+    return np.exp(-math.log(drop) * u / over)
+
+
+def _plane(rng, n=1024, m=256):
+    bp = knee_bandpass(m)
+    gain = 1 + 0.03 * np.sin(np.arange(n) / 300.0)
+    mu = gain[:, None] * bp[None, :]
+    return mu, (rng.gamma(N_ACC, 1.0 / N_ACC, (n, m)) * mu).astype(np.float32)
+
+
+def test_bandpass_follows_a_steep_knee():
+    # Check value (the issue's requirement): within 0.2 of a dump's noise sigma of the
+    # analytic bandpass (knee_bandpass, written from its definition), at every channel,
+    # knees and edges included.  The estimate's own noise (about 0.055 sigma per block:
+    # the median of 512 dumps) is averaged down over the 14 blocks with a full window;
+    # block_bandpass returns the shape, scaled to a median of 1 over the channels.
+    rng = np.random.default_rng(1)
+    m = 256
+    bp_true = knee_bandpass(m)
+    x = (rng.gamma(N_ACC, 1.0 / N_ACC, (4096, m)) * bp_true).astype(np.float32)
+    bp, rows = block_bandpass(x, np.zeros(x.shape, bool), 0, 256)
+    err = (bp[1:-1] / (bp_true / np.median(bp_true)) - 1).mean(axis=0)
+    assert np.max(np.abs(err)) < 0.2 * SIGMA, np.max(np.abs(err)) / SIGMA
+
+
+def test_one_sigma_carrier_on_the_knee_is_found():
+    # Check value: a 1-sigma carrier in every dump is a sqrt(n)-sigma excess of an
+    # n-dump mean (radiometer equation); on the knee's steep slope it must be found in
+    # most of the dumps, and the clean knee channels not flagged.
+    rng = np.random.default_rng(2)
+    mu, x = _plane(rng)
+    c = 14                                     # on the roll-off, 10 channels past the knee
+    x[:, c] += (mu[:, c] * SIGMA).astype(np.float32)
+    hit = sumthreshold_flagger(x, sigma=SIGMA, **L_BAND)
+    assert hit[:, c].mean() > 0.9
+    others = np.ones(x.shape[1], bool)
+    others[c] = False
+    assert hit[:, others].mean() < 0.003
+
+
+def test_protected_range_is_honoured():
+    # A smooth steady line (Gaussian, FWHM 14 channels, 1.2 sigma: the 21-cm line of the
+    # issue) is flagged by the persistence test unless its channels are protected.
+    rng = np.random.default_rng(3)
+    mu, x = _plane(rng)
+    c = np.arange(x.shape[1])
+    line = 1.2 * np.exp(-0.5 * ((c - 128) / (14 / 2.3548)) ** 2)
+    x += (mu * SIGMA * line[None, :]).astype(np.float32)
+    on = line > 0.12
+    hit = sumthreshold_flagger(x, sigma=SIGMA, **L_BAND)
+    assert hit[:, on].mean() > 0.3
+    protect = np.zeros(x.shape[1], bool)
+    protect[100:157] = True
+    hit = sumthreshold_flagger(x, sigma=SIGMA, protect=protect, **L_BAND)
+    assert hit[:, on].mean() < 0.005
+
+
+def test_persistence_test_finds_a_wide_block_absorbed_by_the_median():
+    # An emitter 30 channels wide in every dump is held by the bandpass median (so
+    # SumThreshold alone cannot see it) and must be found by the persistence test.
+    rng = np.random.default_rng(4)
+    mu, x = _plane(rng)
+    x[:, 100:130] += (mu[:, 100:130] * 1.5 * SIGMA).astype(np.float32)
+    ex = np.zeros(x.shape, bool)
+    bp, rows = block_bandpass(x, ex, 0, 256)
+    hit = persistent_flags(x, ex, ex, bp, rows, 0, SIGMA, block_lengths(256, 256), 64, 6.0)
+    assert hit[:, 100:130].mean() > 0.95
+    assert hit[:, :100].mean() < 0.003
+
+
+def test_chunks_anywhere_exact_with_the_new_stages():
+    # With the halo of sumthreshold_halo, one sigma and t0, a chunk gives the whole
+    # plane's result (the chunk-invariance contract of the engine).
+    rng = np.random.default_rng(5)
+    mu, x = _plane(rng, n=3000, m=128)
+    x[500:1400, 40:60] += (mu[500:1400, 40:60] * 1.5 * SIGMA).astype(np.float32)
+    s = dict(L_BAND)
+    h = sumthreshold_halo(s)
+    whole = sumthreshold_flagger(x, sigma=SIGMA, **s)
+    for a, b in ((0, 1000), (1000, 1777), (1777, 3000)):
+        lo, hi = max(0, a - h), min(len(x), b + h)
+        part = sumthreshold_flagger(x[lo:hi], sigma=SIGMA, t0=lo, **s)[a - lo:b - lo]
+        assert np.array_equal(part, whole[a:b])
+
+
+def test_combining_two_polarizations_finds_a_carrier_neither_alone_passes():
+    # Check value: for strengths s and 0.8 s in two products with independent noise,
+    # the sum of the normalised residuals over sqrt(2) carries 1.8 s / sqrt(2) = 1.27 s
+    # (sums of independent Gaussians; common practice).  Carriers of 64 dumps at
+    # 0.5 sigma (0.4 in the second product) lie below chi_64 = 8 / 1.5**6 = 0.70
+    # (Offringa et al. 2010 thresholds) by 1.6 window sigma alone (0.125 for 64 dumps)
+    # and by 0.5 combined (0.64): each product alone finds under a fifth of them, the
+    # pair several times more.
+    from rfisieve.detect.sumthreshold import combined_flagger
+
+    rng = np.random.default_rng(6)
+    n, m = 512, 128
+    truth = np.zeros((n, m), bool)
+    planes = [rng.normal(1.0, SIGMA, (n, m)) for _ in range(2)]
+    for i, c in enumerate(range(10, 120, 12)):
+        truth[20 + 45 * i:84 + 45 * i, c] = True
+    for x, strength in zip(planes, (1.0, 0.8)):
+        x[truth] += 0.5 * strength * SIGMA
+    planes = [x.astype(np.float32) for x in planes]
+    s = dict(chi1=8.0, max_window_time=64, max_window_freq=32)
+    alone = [sumthreshold_flagger(x, sigma=SIGMA, **s) for x in planes]
+    both = combined_flagger(planes, [SIGMA, SIGMA], **s)
+    found_alone = max(a[truth].mean() for a in alone)
+    assert found_alone < 0.2
+    assert min(b[truth].mean() for b in both) > 0.3
+    assert both[0][truth].mean() > 3 * found_alone
+    assert max(b[~truth].mean() for b in both) < 0.002
