@@ -33,7 +33,7 @@ def _error(fn, *args, **kwargs):
 def test_shipped_run_config_validates():
     run = config.load_run_config(ROOT / "config" / "config.yaml")
     assert set(run) == set(settings.RUN_DEFAULTS)
-    for key in ("inputs", "outdir", "chunk_dumps", "workers"):  # DESIGN.md 2.4 contract
+    for key in ("inputs", "outdir", "chunk_dumps", "workers"):  # docs/design.md 3.4 contract
         assert key in run
 
 

@@ -9,7 +9,7 @@ from rfisieve.detect.growth import sir_grow, sir_halo, sir_operator
 
 def brute_sir(f, eta, reach=None):
     """Straight from the definition (Offringa, van de Gronde & Roerdink 2012,
-    A&A 539, A95; DESIGN.md 3): y is flagged when it lies in some interval
+    A&A 539, A95; docs/design.md 4): y is flagged when it lies in some interval
     [Y1, Y2) holding at least (1 - eta)(Y2 - Y1) flagged samples.  With
     ``reach`` = R (the project's bounded-reach variant, rfisieve.detect.growth) only
     intervals with Y1 >= y - R and Y2 <= y + 1 + R count."""

@@ -129,7 +129,6 @@ def test_a_replaced_scan_is_not_the_one_its_mask_was_made_from(tmp_path):
 def test_a_scan_held_open_for_writing_is_quarantined_not_fatal(tmp_path):
     import subprocess
     import sys
-    import time
 
     busy, good = tmp_path / "busy.h5", tmp_path / "good.h5"
     make_scan(busy, ntime=64, nchan=16, nprod=1, seed=1)

@@ -2,7 +2,7 @@
 
 Check values: every expected number below is recomputed by plain Python loops over a
 small hand-made mask (definition of occupancy: flagged samples / samples; a sample
-with several cause bits counts once overall and once per cause; DESIGN.md 2.2-2.3).
+with several cause bits counts once overall and once per cause; docs/design.md 3.2-3.3).
 """
 
 import csv
@@ -20,7 +20,7 @@ PRODUCTS = ["pier1.a-pier1.a", "pier1.a-pier2.a", "pier2.b-pier2.b"]
 
 
 def write_mask(path, flags, freq, band="L", t0=1.7e9, dt=2.0, products=PRODUCTS, chunk=None):
-    """A mask file laid out as DESIGN.md 2.2 (written here, not by the engine)."""
+    """A mask file laid out as docs/design.md 3.2 (written here, not by the engine)."""
     nt = flags.shape[0]
     with h5py.File(path, "w") as f:
         f.create_dataset("flags", data=flags.astype(np.uint8), chunks=chunk)

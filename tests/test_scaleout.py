@@ -5,7 +5,6 @@ The processes are always shut down."""
 
 import socket
 import subprocess
-import time
 
 import h5py
 import numpy as np

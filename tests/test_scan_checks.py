@@ -85,7 +85,7 @@ def test_s2_all_nan_falls_back_to_block_sk_with_a_warning(tmp_path, capfd):
     err = capfd.readouterr().err
     assert f"rfisieve: warning: {path}: /s2 holds no finite value" in err
     with h5py.File(part, "r") as f:
-        invalid = (f["flags"][()] & 2) != 0  # bit 1: invalid (DESIGN.md 2.2)
+        invalid = (f["flags"][()] & 2) != 0  # bit 1: invalid (docs/design.md 3.2)
         assert invalid.mean() < 0.01  # before: every auto sample was invalid
         assert f["diagnostics/sk"].attrs["mode"] == "block"
     assert sha256(path) == before

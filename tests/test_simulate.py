@@ -78,7 +78,7 @@ def test_sk_of_s2_scan_has_mean_one_and_published_variance(tmp_path):
                     with_s2=True, seed=11)
     s1 = d["data"].astype(np.float64) * m                       # /data = S1 / M
     s2 = d["s2"].astype(np.float64)
-    # generalized SK, Nita & Gary 2010 (DESIGN.md 3), N = 1, d = 1:
+    # generalized SK, Nita & Gary 2010 (docs/design.md 4), N = 1, d = 1:
     # SK = (M N d + 1)/(M - 1) * (M S2 / S1^2 - 1)
     sk = (m * 1 * 1.0 + 1) / (m - 1) * (m * s2 / s1 ** 2 - 1)
     clean = sk[t["kind"] == 0]

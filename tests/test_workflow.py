@@ -1,7 +1,7 @@
 """End to end: the real Snakemake workflow on a small simulated night.
 
 3 scans (2 in L band, 1 in P), 256 dumps x 64 channels, run by `snakemake` from the
-repository root exactly as DESIGN.md 2.4 says. Checks the outputs of DESIGN.md 2.2-2.3,
+repository root exactly as docs/design.md 3.4 says. Checks the outputs of docs/design.md 3.2-3.3,
 that masks and occupancy counts equal the staged engine's (detect, detect, merge, then
 counting the mask file), that inputs are untouched, that a killed run resumes without
 redoing finished scans, that editing one band's config re-flags only that band's scans,
@@ -167,7 +167,7 @@ def test_occupancy_tables(night):
     out = night["outdir"]
     for scan in SCANS:
         lines = (out / "occupancy" / f"{scan}.csv").read_text().splitlines()
-        assert len(lines) == NCHAN + 1  # header + one row per channel (DESIGN.md 2.3)
+        assert len(lines) == NCHAN + 1  # header + one row per channel (docs/design.md 3.3)
     assert len((out / "occupancy" / "run.csv").read_text().splitlines()) > NCHAN
 
 

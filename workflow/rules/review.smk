@@ -11,9 +11,10 @@ rule review:
         bands=band_configs(list(SCANS)),
         previous=[RUN["previous_run"]] if RUN["previous_run"] else [],
     output:
-        csv=out("occupancy", "run.csv"),
+        # report(): `snakemake --report report.html` gathers the page and the run table
+        csv=report(out("occupancy", "run.csv"), caption="../report/run_table.rst", category="Occupancy"),
         h5=out("occupancy", "run.h5"),
-        html=out("report", "index.html"),
+        html=report(out("report", "index.html"), caption="../report/review_page.rst", category="Review"),
         failed=out("failed_scans.csv"),
     params:
         previous=f"--previous {shlex.quote(RUN['previous_run'])}" if RUN["previous_run"] else "",

@@ -190,10 +190,9 @@ def cmd_merge(args):
 
 # -- inspect -------------------------------------------------------------------
 def _utc(t):
-    import datetime
+    from rfisieve.textfmt import utc_iso
 
-    return datetime.datetime.fromtimestamp(float(t), datetime.timezone.utc).isoformat(
-        timespec="seconds").replace("+00:00", "Z")
+    return utc_iso(t)
 
 
 def _upstream_fraction(scan, step=1024):

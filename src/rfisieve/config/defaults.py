@@ -54,7 +54,7 @@ def schema_defaults(node):
 BAND_DEFAULTS = schema_defaults(schema("band.schema.yaml"))
 
 #: Defaults of the run config (from config.schema.yaml); the top-level key names
-#: inputs, outdir, chunk_dumps and workers are a contract (DESIGN.md 2.4).
+#: inputs, outdir, chunk_dumps and workers are a contract (docs/design.md 3.4).
 RUN_DEFAULTS = schema_defaults(schema("config.schema.yaml"))
 
 

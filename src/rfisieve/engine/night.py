@@ -133,7 +133,7 @@ def record_path(outdir, scan):
 
 
 def scan_outputs(outdir, scan):
-    """Paths of one scan's outputs under ``outdir`` (DESIGN.md 2.2-2.3) and its record."""
+    """Paths of one scan's outputs under ``outdir`` (docs/design.md 3.2-3.3) and its record."""
     o = str(outdir)
     return {"mask": os.path.join(o, "flags", f"{scan}.h5"),
             "occupancy_csv": os.path.join(o, "occupancy", f"{scan}.csv"),

@@ -6,7 +6,7 @@ interference-to-noise ratio (INR, excess mean power in a dump over that dump's n
 rms, as in the simulator's truth files) is known sample by sample.
 
 Input files are never modified: :func:`copy_scan` writes a new scan file (standard
-layout of DESIGN.md 2.1) from a scan read through :mod:`rfisieve.io.scan`, optionally with
+layout of docs/design.md 3.1) from a scan read through :mod:`rfisieve.io.scan`, optionally with
 interference added.
 
 Model: a constant excess power ``c = INR * sigma`` is added to every raw spectrum of
@@ -20,13 +20,14 @@ product's amplitude is raised by exactly ``c`` (its phase is kept).
 
 import numpy as np
 
+from rfisieve.detect.background import MAD_TO_SIGMA
+
 #: Kind codes of the injected structures (names as in the simulator's truth files).
 KINDS = {1: "carrier", 3: "burst", 5: "intermittent"}
 CODE = {name: code for code, name in KINDS.items()}
 
-# 1.4826 = 1 / Phi^-1(3/4): MAD -> sigma for a Gaussian (common practice);
+# MAD_TO_SIGMA = 1 / Phi^-1(3/4): MAD -> sigma for a Gaussian (common practice);
 # sqrt(2): a difference of two independent samples has twice the variance.
-_MAD_TO_SIGMA = 1.4826
 
 
 def robust_rms(values, invalid=None):
@@ -50,7 +51,7 @@ def robust_rms(values, invalid=None):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
             med = np.nanmedian(d, axis=0)
-    return _MAD_TO_SIGMA * med / np.sqrt(2.0)
+    return MAD_TO_SIGMA * med / np.sqrt(2.0)
 
 
 def plan_injections(ntime, nchan, rng, levels=(1.0, 2.0, 5.0), fraction=0.01):

@@ -37,6 +37,7 @@ import numpy as np
 
 from rfisieve import bits
 from rfisieve.errors import ScanError
+from rfisieve.textfmt import pct
 
 #: Recall bins of INR, [lo, hi).  Per-sample INR below 0.5 is reported but not targeted.
 INR_EDGES = (0.5, 1.0, 2.0, 5.0)
@@ -200,7 +201,7 @@ def score_arrays(mask, inr, kind, kinds, dropped):
     Parameters
     ----------
     mask : uint8 ndarray (ntime, nchan, nprod)
-        Mask bits (DESIGN.md 2.2).
+        Mask bits (docs/design.md 3.2).
     inr : float ndarray, same shape
         Interference-to-noise ratio per sample (0 where clean).
     kind : integer ndarray, same shape
@@ -281,7 +282,7 @@ def score_files(mask_path, truth_path, chunk_dumps=1024):
 
 # -- text -------------------------------------------------------------------------
 def _pct(x, digits=2):
-    return "-" if x is None else f"{100 * x:.{digits}f} %"
+    return pct(x, digits, missing="-", sep=" ")
 
 
 def _rec(x):

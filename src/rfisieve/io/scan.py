@@ -1,4 +1,4 @@
-"""Reading scan files (DESIGN.md 2.1) and writing outputs safely.
+"""Reading scan files (docs/design.md 3.1) and writing outputs safely.
 
 Scans are opened read-only and validated against the layout table; every problem is
 raised as :class:`~rfisieve.errors.ScanError` with a one-line message naming the file.
@@ -20,7 +20,6 @@ of a killed run can be found and removed (:func:`remove_partials`).
 """
 
 import contextlib
-import datetime
 import hashlib
 import os
 import re
@@ -34,6 +33,7 @@ import numpy as np
 from rfisieve.config.load import scan_name  # noqa: F401  (re-exported: io.scan.scan_name)
 from rfisieve.errors import ScanError
 from rfisieve.io.hdf5 import attr_str as _attr_str
+from rfisieve.textfmt import utc_iso as _utc
 from rfisieve.config.defaults import RUN_DEFAULTS
 
 AXES = ("time", "freq", "product")
@@ -42,7 +42,7 @@ AXES = ("time", "freq", "product")
 #: does not run across it (common practice: a dump is late by less than half its length).
 GAP_FACTOR = 1.5
 
-#: The documented form of a product name (DESIGN.md 2.1): ``<inputA>-<inputB>``.
+#: The documented form of a product name (docs/design.md 3.1): ``<inputA>-<inputB>``.
 PRODUCT_NAME = re.compile(r"^[^\s-]+-[^\s-]+$")
 
 #: Temporary names of :func:`atomic_output` (hidden, in the destination directory):
@@ -59,8 +59,6 @@ def warn(path, message):
         print(f"rfisieve: warning: {path}: {message}", file=sys.stderr, flush=True)
 
 
-def _utc(t):
-    return datetime.datetime.fromtimestamp(float(t), datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 
@@ -124,7 +122,7 @@ def file_identity(path, head_bytes=1 << 20):
 
 
 class Scan:
-    """A scan file opened read-only, validated against DESIGN.md 2.1.
+    """A scan file opened read-only, validated against docs/design.md 3.1.
 
     Use as a context manager (``with open_scan(path) as scan: ...``).  :meth:`read`
     returns arrays in ``(time, chan, prod)`` order whatever the file's axis order.

@@ -342,7 +342,7 @@ def count_mask_file(path, chunk_dumps=None, image_bins=IMAGE_BINS, progress=None
     Raises
     ------
     ScanError
-        When the file is missing or is not a mask file of DESIGN.md 2.2.
+        When the file is missing or is not a mask file of docs/design.md 3.2.
     """
     import h5py
 

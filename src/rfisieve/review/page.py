@@ -39,6 +39,8 @@ import os
 import numpy as np
 
 from rfisieve.review import occupancy as occ
+from rfisieve.textfmt import pct as _pct
+from rfisieve.textfmt import utc_minutes as _utc
 from rfisieve.review.emitters import load_emitters, match_emitters, merge_duplicates, where_from
 from rfisieve.errors import ConfigError, ScanError
 from rfisieve.io.scan import atomic_output
@@ -146,22 +148,9 @@ def previous_on_grid(prev, band, freq_hz):
     return out
 
 
-def _utc(t):
-    if t is None or not np.isfinite(t):
-        return "?"
-    return _dt.datetime.fromtimestamp(float(t), tz=_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
-
-
 def _count(n, word):
     """``1 scan``, ``2 scans``."""
     return f"{n} {word}{'' if n == 1 else 's'}"
-
-
-def _pct(x, digits=2):
-    """A fraction as a percentage; number and sign joined by a no-break space (no wrapped cells)."""
-    if x is None or not np.isfinite(x):
-        return "n/a"
-    return f"{100 * x:.{digits}f}\u00a0%"
 
 
 def night_series(scans, points=600):

@@ -338,7 +338,7 @@ def expected_sk_pdf(x, m, n, d):
     Uses :func:`rfisieve.detect.kurtosis.sk_moments` (exact mean, variance, skewness) with a
     Pearson type III curve (Nita & Gary 2010, PASP 122, 595) when the module is
     present; otherwise a gamma law matched to the mean 1 and the variance of the
-    generalized estimator, computed from the gamma/Dirichlet moments of DESIGN.md 3.
+    generalized estimator, computed from the gamma/Dirichlet moments of docs/design.md 4.
     """
     from scipy import stats
 

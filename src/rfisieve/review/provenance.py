@@ -2,7 +2,7 @@
 
 The review reads files only (never the engine's internals):
 
-* each mask file (``<outdir>/flags/<scan>.h5``, DESIGN.md 2.2) records the package
+* each mask file (``<outdir>/flags/<scan>.h5``, docs/design.md 3.2) records the package
   version (``rfisieve_version``), the band settings as used (``band_settings``, JSON),
   the band config's path and the input file's identity (``input_identity``, JSON with
   ``path`` and ``size``);

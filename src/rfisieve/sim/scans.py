@@ -1,7 +1,7 @@
 """Simulated scans of the fictional Quillmoor Radio Observatory, with a truth file each.
 
 The simulator feeds the demo, the end-to-end tests and the quality benchmark.  It
-writes scan files in the layout of DESIGN.md 2.1 and, beside them, truth files that
+writes scan files in the layout of docs/design.md 3.1 and, beside them, truth files that
 say which samples carry interference, how strong it is and of which kind.
 
 Noise statistics are exact at dump level: a dump's mean power over N = accumulations
@@ -152,7 +152,7 @@ def simulate_scan(path, truth_path=None, *, band="L", ntime=512, nchan=256,
     Parameters
     ----------
     path : path-like
-        Scan file to write (layout of DESIGN.md 2.1); the scan name is its stem.
+        Scan file to write (layout of docs/design.md 3.1); the scan name is its stem.
     truth_path : path-like, optional
         Truth file to write (layout in the module docstring); none if omitted.
     band : {"P", "L", "C"}
@@ -516,7 +516,7 @@ def simulate_night(outdir, *, nscans=6, bands=("L", "P"), ntime=1024, nchan=512,
 
 _EPILOG = """\
 writes:
-  OUTDIR/scans/<scan>.h5        scan files (DESIGN.md 2.1 layout)
+  OUTDIR/scans/<scan>.h5        scan files (docs/design.md 3.1 layout)
   OUTDIR/truth/<scan>.truth.h5  truth: /inr (interference-to-noise ratio per sample),
                                 /kind (0 clean, 1 carrier, 2 pulsed, 3 burst,
                                 4 drifting, 5 intermittent, 6 noiselike), /dropped
