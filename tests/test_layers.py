@@ -11,7 +11,7 @@ PKG = Path(__file__).resolve().parents[1] / "src" / "rfisieve"
 
 #: Layer rank of each top-level part of the package (docs/design.md, section 2).
 RANK = {
-    "errors": 0, "bits": 0, "textfmt": 0, "__init__": 0,
+    "errors": 0, "bits": 0, "textfmt": 0, "commands": 0, "__init__": 0,
     "detect": 1, "sk": 1,
     "config": 2,
     "io": 3,

@@ -18,6 +18,7 @@ import time
 
 from rfisieve import __version__
 from rfisieve.errors import ConfigError, RfisieveError
+from rfisieve.commands import add_command
 
 #: Modules that add their own subcommands with ``register_cli(subparsers)``.
 PLUGIN_MODULES = ("rfisieve.sim.scans", "rfisieve.review.occupancy", "rfisieve.review.page",
@@ -431,6 +432,20 @@ def _quote(s):
 OWN_COMMANDS = ("run", "inspect", "thresholds", "plan", "detect", "merge", "flag", "wrap-up", "verdict")
 
 
+_INSPECT_HELP = "show what a scan file holds: shape, band, products, time span, frequencies"
+
+_INSPECT_DESCRIPTION = (
+    "Open scan files read-only and print shape and dtype, band, auto and cross "
+    "products, time span (UTC, ISO 8601), frequency range (MHz), channel width, "
+    "accumulations per dump, the upstream-flagged fraction and whether /s2 "
+    "(per-dump sum of squared powers, used by per-dump spectral kurtosis) is there.")
+
+_INSPECT_OPTIONS = [
+    ("scans", {"nargs": "+", "metavar": "SCAN", "help": "scan file(s) (HDF5)"}),
+    ("--json", {"action": "store_true", "help": "one JSON object per scan instead of a table"}),
+]
+
+
 def build_parser(plugins=True):
     """The argparse tree; ``plugins=False`` leaves out the other modules' subcommands."""
     parser = argparse.ArgumentParser(prog="rfisieve", description=DESCRIPTION, formatter_class=_TopFormatter)
@@ -471,37 +486,34 @@ def build_parser(plugins=True):
                    help="extra arguments passed to snakemake, after --")
     p.set_defaults(func=cmd_run)
 
-    p = sub.add_parser(
-        "inspect", formatter_class=_Formatter,
-        help="show what a scan file holds: shape, band, products, time span, frequencies",
-        description="Open scan files read-only and print shape and dtype, band, auto and cross "
-                    "products, time span (UTC, ISO 8601), frequency range (MHz), channel width, "
-                    "accumulations per dump, the upstream-flagged fraction and whether /s2 "
-                    "(per-dump sum of squared powers, used by per-dump spectral kurtosis) is there.")
-    p.add_argument("scans", nargs="+", metavar="SCAN", help="scan file(s) (HDF5)")
-    p.add_argument("--json", action="store_true", help="one JSON object per scan instead of a table")
+    p = add_command(sub, "inspect", cmd_inspect,
+        formatter=_Formatter, help=_INSPECT_HELP, description=_INSPECT_DESCRIPTION,
+        options=_INSPECT_OPTIONS)
     _add_run_options(p)
-    p.set_defaults(func=cmd_inspect)
 
-    p = sub.add_parser(
-        "thresholds", formatter_class=_Formatter,
+    p = add_command(
+        sub, "thresholds", cmd_thresholds,
+        formatter=_Formatter,
         help="spectral-kurtosis thresholds for M accumulations (and N, d) at a PFA or sigma",
         description="Print the lower and upper spectral-kurtosis (SK) thresholds of the generalized "
                     "estimator (Nita & Gary 2010) for M accumulations of N-presummed powers with "
                     "shape d, each tail holding the false-alarm probability PFA, or the probability "
                     "a Gaussian holds beyond S sigma. Example: --m 300 --n 10 --sigma 3 gives about "
-                    "0.77 and 1.28 (Nita & Gary 2010, PASP 122, 595, Table 1).")
-    p.add_argument("--m", type=int, required=True, metavar="M", help="accumulations M per SK estimate")
-    p.add_argument("--n", type=int, default=1, metavar="N", help="raw powers presummed into each accumulation")
-    p.add_argument("--d", type=float, default=1.0, metavar="D",
-                   help="shape of the power distribution: 1 for complex voltages, 0.5 for real")
+                    "0.77 and 1.28 (Nita & Gary 2010, PASP 122, 595, Table 1).",
+        options=[
+            ("--m", {"type": int, "required": True, "metavar": "M",
+                     "help": "accumulations M per SK estimate"}),
+            ("--n", {"type": int, "default": 1, "metavar": "N",
+                     "help": "raw powers presummed into each accumulation"}),
+            ("--d", {"type": float, "default": 1.0, "metavar": "D",
+                     "help": "shape of the power distribution: 1 for complex voltages, 0.5 for real"}),
+        ])
     g = p.add_mutually_exclusive_group(required=True)
     g.add_argument("--pfa", type=float, metavar="P", help="false-alarm probability per tail, e.g. 0.0013499")
     g.add_argument("--sigma", type=float, metavar="S", help="tail probability of a Gaussian beyond S sigma")
     p.add_argument("--method", default="auto", metavar="NAME",
                    help="threshold method: auto, exact, pearson (types IV/VI), pearson3 (type III)")
     p.add_argument("--quiet", "-q", action="store_true", help="print only 'lower upper'")
-    p.set_defaults(func=cmd_thresholds)
 
     p = _add_stage(
         sub, "plan", cmd_plan,

@@ -22,6 +22,7 @@ import time
 import traceback
 
 from rfisieve.errors import RfisieveError
+from rfisieve.commands import add_command
 
 
 class _ScanFailed(Exception):
@@ -314,46 +315,52 @@ def cmd_verdict(args):
 
 def register(sub, formatter, add_run_options, add_parallel_options):
     """Add ``flag``, ``wrap-up`` and ``verdict`` to the ``rfisieve`` parser."""
-    p = sub.add_parser(
-        "flag", formatter_class=formatter,
+    p = add_command(
+        sub, "flag", cmd_flag,
+        formatter=formatter,
         help="workflow job: scans end to end (checks, both detectors, merge, occupancy, record)",
         description="For each scan in turn, in one process: check the scan (and the night's plan "
                     "of it), run both detectors and the merge in one pass over the scan on dask "
                     "workers, count occupancy from the finished mask, and write the scan record "
                     "<outdir>/scans/<scan>.json. A scan that fails at any stage gets a record "
                     "naming the stage and the one-line reason (exit 0; --strict: exit 2). Outputs "
-                    "made from the same scan, settings and version are kept.")
-    p.add_argument("scans", nargs="+", metavar="SCAN", help="scan file(s) (HDF5), flagged in turn")
-    p.add_argument("--outdir", required=True, metavar="DIR",
-                   help="output directory: flags/<scan>.h5, occupancy/<scan>.{csv,h5}, scans/<scan>.json")
-    p.add_argument("--expect", metavar="JSON",
-                   help="the night's plan: {scan: {shape, identity}}; a scan that differs is not flagged")
-    p.add_argument("--keep-partial", action="store_true",
-                   help="also write each detector's partial mask to <outdir>/partial/<scan>.<detector>.h5")
-    p.add_argument("--strict", action="store_true", help="a failing scan is an error (exit 2)")
+                    "made from the same scan, settings and version are kept.",
+        options=[
+            ("scans", {"nargs": "+", "metavar": "SCAN", "help": "scan file(s) (HDF5), flagged in turn"}),
+            ("--outdir", {"required": True, "metavar": "DIR",
+                          "help": "output directory: flags/<scan>.h5, occupancy/<scan>.{csv,h5}, scans/<scan>.json"}),
+            ("--expect", {"metavar": "JSON",
+                          "help": "the night's plan: {scan: {shape, identity}}; a scan that differs is not flagged"}),
+            ("--keep-partial", {"action": "store_true",
+                                "help": "also write each detector's partial mask to <outdir>/partial/<scan>.<detector>.h5"}),
+            ("--strict", {"action": "store_true", "help": "a failing scan is an error (exit 2)"}),
+        ])
     add_run_options(p)
     add_parallel_options(p)
-    p.set_defaults(func=cmd_flag)
 
-    p = sub.add_parser(
-        "wrap-up", formatter_class=formatter,
+    p = add_command(
+        sub, "wrap-up", cmd_wrap_up,
+        formatter=formatter,
         help="workflow job: failed_scans.csv, run tables and the review page from the scan records",
         description="Read the night's scan records; write <outdir>/failed_scans.csv (scan,path,stage,"
                     "reason; header only when none failed) and, for the scans that were flagged, "
-                    "occupancy/run.csv, occupancy/run.h5 and report/index.html.")
-    p.add_argument("outdir", metavar="OUTDIR", help="the run's output directory")
-    p.add_argument("--records", nargs="*", default=[], metavar="SCAN.json", help="scan records")
-    p.add_argument("--bands-dir", metavar="DIR", help="band configs (for their emitter lists)")
-    p.add_argument("--previous", metavar="RUN.csv", help="run.csv of an earlier run to compare with")
-    p.add_argument("--workers", type=int, default=1, metavar="N",
-                   help="processes drawing the per-scan figures (default: 1)")
-    p.set_defaults(func=cmd_wrap_up)
+                    "occupancy/run.csv, occupancy/run.h5 and report/index.html.",
+        options=[
+            ("outdir", {"metavar": "OUTDIR", "help": "the run's output directory"}),
+            ("--records", {"nargs": "*", "default": [], "metavar": "SCAN.json", "help": "scan records"}),
+            ("--bands-dir", {"metavar": "DIR", "help": "band configs (for their emitter lists)"}),
+            ("--previous", {"metavar": "RUN.csv", "help": "run.csv of an earlier run to compare with"}),
+            ("--workers", {"type": int, "default": 1, "metavar": "N",
+                           "help": "processes drawing the per-scan figures (default: 1)"}),
+        ])
 
-    p = sub.add_parser(
-        "verdict", formatter_class=formatter,
+    p = add_command(
+        sub, "verdict", cmd_verdict,
+        formatter=formatter,
         help="workflow job: exit 1 when failed_scans.csv lists any scan",
         description="Print the failed scans of a night with their reasons and exit 1 when there "
-                    "are any; otherwise write --out and exit 0.")
-    p.add_argument("failed", metavar="FAILED.csv", help="<outdir>/failed_scans.csv")
-    p.add_argument("--out", metavar="FILE", help="file written when no scan failed")
-    p.set_defaults(func=cmd_verdict)
+                    "are any; otherwise write --out and exit 0.",
+        options=[
+            ("failed", {"metavar": "FAILED.csv", "help": "<outdir>/failed_scans.csv"}),
+            ("--out", {"metavar": "FILE", "help": "file written when no scan failed"}),
+        ])

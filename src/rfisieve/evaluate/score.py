@@ -38,6 +38,7 @@ import numpy as np
 from rfisieve import bits
 from rfisieve.errors import ScanError
 from rfisieve.textfmt import pct
+from rfisieve.commands import add_command
 
 #: Recall bins of INR, [lo, hi).  Per-sample INR below 0.5 is reported but not targeted.
 INR_EDGES = (0.5, 1.0, 2.0, 5.0)
@@ -348,31 +349,37 @@ def cmd_score(args):
     return 0
 
 
+_SCORE_HELP = "score a mask against the truth of a simulated scan (recall, false alarms)"
+
+_SCORE_DESCRIPTION = (
+    "Compare a mask file (<outdir>/flags/<scan>.h5) with the truth the simulator wrote\n"
+    "(<scan>.truth.h5: /inr, /kind, /dropped) and print:\n"
+    "  - recall per interference-to-noise ratio (INR) bin: 0.5-1, 1-2, 2-5, >=5\n"
+    "    (INR = the interference's excess mean power in a dump over that dump's noise rms);\n"
+    "  - recall per kind of emitter (carrier, pulsed, burst, drifting, ...);\n"
+    "  - the false-alarm rate on clean samples;\n"
+    "  - the clean data lost to each cause bit of the mask.\n"
+    "Dropped dumps and samples with the upstream, invalid or known bit are not the flagger's\n"
+    "decision: they are left out of recall and of the false-alarm rate (and counted apart).\n"
+    "Clean data lost is over every clean sample of a kept dump, known/upstream included.")
+
+_SCORE_OPTIONS = [
+    ("mask", {"metavar": "MASK", "help": "mask file written by the flagger (HDF5 with /flags)"}),
+    ("truth", {"metavar": "TRUTH", "help": "truth file of the simulated scan (<scan>.truth.h5)"}),
+    ("--json", {"action": "store_true", "help": "print the figures as JSON instead of a table"}),
+    ("--chunk-dumps", {"type": int, "default": 1024, "metavar": "N",
+                       "help": "dumps read at a time (bounds memory; default: %(default)s)"}),
+]
+
+
 def register_cli(subparsers):
     """Add the ``score`` subcommand to the ``rfisieve`` command."""
     import argparse
 
-    p = subparsers.add_parser(
-        "score", formatter_class=argparse.RawDescriptionHelpFormatter,
-        help="score a mask against the truth of a simulated scan (recall, false alarms)",
-        description=(
-            "Compare a mask file (<outdir>/flags/<scan>.h5) with the truth the simulator wrote\n"
-            "(<scan>.truth.h5: /inr, /kind, /dropped) and print:\n"
-            "  - recall per interference-to-noise ratio (INR) bin: 0.5-1, 1-2, 2-5, >=5\n"
-            "    (INR = the interference's excess mean power in a dump over that dump's noise rms);\n"
-            "  - recall per kind of emitter (carrier, pulsed, burst, drifting, ...);\n"
-            "  - the false-alarm rate on clean samples;\n"
-            "  - the clean data lost to each cause bit of the mask.\n"
-            "Dropped dumps and samples with the upstream, invalid or known bit are not the flagger's\n"
-            "decision: they are left out of recall and of the false-alarm rate (and counted apart).\n"
-            "Clean data lost is over every clean sample of a kept dump, static/input included."),
-        epilog="example: rfisieve score results/flags/qro_L_001.h5 sim/qro_L_001.truth.h5 --json")
-    p.add_argument("mask", metavar="MASK", help="mask file written by the flagger (HDF5 with /flags)")
-    p.add_argument("truth", metavar="TRUTH", help="truth file of the simulated scan (<scan>.truth.h5)")
-    p.add_argument("--json", action="store_true", help="print the figures as JSON instead of a table")
-    p.add_argument("--chunk-dumps", type=int, default=1024, metavar="N",
-                   help="dumps read at a time (bounds memory; default: %(default)s)")
-    p.set_defaults(func=cmd_score)
+    p = add_command(subparsers, "score", cmd_score,
+        formatter=argparse.RawDescriptionHelpFormatter, help=_SCORE_HELP, description=_SCORE_DESCRIPTION,
+        epilog="example: rfisieve score results/flags/qro_L_001.h5 sim/qro_L_001.truth.h5 --json",
+        options=_SCORE_OPTIONS)
     return p
 
 

@@ -39,6 +39,7 @@ import numpy as np
 
 from rfisieve.errors import ConfigError, RfisieveError
 from rfisieve.io.scan import atomic_output
+from rfisieve.commands import add_command
 
 #: (section, key, label, step, sensitive direction) of the swept thresholds.
 PARAMETERS = (
@@ -348,46 +349,54 @@ def cmd_tune(args):
     return 0
 
 
+_TUNE_HELP = "sweep a band's thresholds on sample scans; suggest a band config"
+
+_TUNE_DESCRIPTION = (
+    "Sweep the main detection thresholds of a band on a sample of its scans, one at a time\n"
+    "around the current value (SumThreshold chi_1, the spectral-kurtosis sigma, the SIR\n"
+    "operator's eta). For each value: the occupancy on the real data, and the recall of\n"
+    "synthetic interference of known strength (INR 1, 2, 5) injected into a copy of it.\n"
+    "The input scans and the band config are never modified: the copies live in a\n"
+    "temporary directory. Writes a table (stdout), <out>/tune_<band>.png,\n"
+    "<out>/tune_<band>.json and the suggestion <out>/<band>.suggested.yaml (the band\n"
+    "config with the suggested values put in, its comments kept).\n\n"
+    "Suggestion: per parameter, the value of highest recall whose occupancy is at most\n"
+    "the occupancy budget above the sweep's lowest occupancy.")
+
+_TUNE_OPTIONS = [
+    ("--band", {"required": True, "metavar": "BAND",
+                "help": "band to tune (its config: <bands-dir>/<BAND>.yaml)"}),
+    ("--scans", {"required": True, "nargs": "+", "metavar": "SCAN",
+                 "help": "sample scan files (paths or globs) of that band"}),
+    ("--bands-dir", {"default": "config/bands", "metavar": "DIR",
+                     "help": "directory of the band configs (default: %(default)s)"}),
+    ("--out", {"metavar": "DIR",
+               "help": "directory for the plot, the table and the suggested band config (default: tune-<band>)"}),
+    ("--values", {"type": int, "default": 5, "metavar": "N",
+                  "help": "values per parameter, centred on the current one (default: %(default)s)"}),
+    ("--max-dumps", {"type": int, "default": 2048, "metavar": "N",
+                     "help": "dumps used from the start of each scan (default: %(default)s)"}),
+    ("--occupancy-budget", {"type": float, "default": 0.003, "metavar": "F",
+                            "help": "extra occupancy (fraction of samples) allowed over the sweep's lowest "
+                "(default: %(default)s = 0.3 %%)"}),
+    ("--inject-fraction", {"type": float, "default": 0.01, "metavar": "F",
+                           "help": "fraction of the samples given injected interference (default: %(default)s)"}),
+    ("--seed", {"type": int, "default": 0,
+                "help": "seed of the injected interference (default: %(default)s)"}),
+    ("--run-config", {"metavar": "FILE",
+                      "help": "run config whose `layout` describes the scans' dataset names and axis order "
+                "(default: the standard layout)"}),
+    ("--workers", {"type": int, "default": 1, "metavar": "N",
+                   "help": "dask workers per flagging run (default: %(default)s)"}),
+]
+
+
 def register_cli(subparsers):
     """Add the ``tune`` subcommand to the ``rfisieve`` command."""
-    p = subparsers.add_parser(
-        "tune", formatter_class=argparse.RawDescriptionHelpFormatter,
-        help="sweep a band's thresholds on sample scans; suggest a band config",
-        description=(
-            "Sweep the main detection thresholds of a band on a sample of its scans, one at a time\n"
-            "around the current value (SumThreshold chi_1, the spectral-kurtosis sigma, the SIR\n"
-            "operator's eta). For each value: the occupancy on the real data, and the recall of\n"
-            "synthetic interference of known strength (INR 1, 2, 5) injected into a copy of it.\n"
-            "The input scans and the band config are never modified: the copies live in a\n"
-            "temporary directory. Writes a table (stdout), <out>/tune_<band>.png,\n"
-            "<out>/tune_<band>.json and the suggestion <out>/<band>.suggested.yaml (the band\n"
-            "config with the suggested values put in, its comments kept).\n\n"
-            "Suggestion: per parameter, the value of highest recall whose occupancy is at most\n"
-            "the occupancy budget above the sweep's lowest occupancy."),
-        epilog="example: rfisieve tune --band L --scans 'night1/*_L_*.h5' --out tune-L")
-    p.add_argument("--band", required=True, metavar="BAND", help="band to tune (its config: <bands-dir>/<BAND>.yaml)")
-    p.add_argument("--scans", required=True, nargs="+", metavar="SCAN",
-                   help="sample scan files (paths or globs) of that band")
-    p.add_argument("--bands-dir", default="config/bands", metavar="DIR",
-                   help="directory of the band configs (default: %(default)s)")
-    p.add_argument("--out", metavar="DIR",
-                   help="directory for the plot, the table and the suggested band config (default: tune-<band>)")
-    p.add_argument("--values", type=int, default=5, metavar="N",
-                   help="values per parameter, centred on the current one (default: %(default)s)")
-    p.add_argument("--max-dumps", type=int, default=2048, metavar="N",
-                   help="dumps used from the start of each scan (default: %(default)s)")
-    p.add_argument("--occupancy-budget", type=float, default=0.003, metavar="F",
-                   help="extra occupancy (fraction of samples) allowed over the sweep's lowest "
-                        "(default: %(default)s = 0.3 %%)")
-    p.add_argument("--inject-fraction", type=float, default=0.01, metavar="F",
-                   help="fraction of the samples given injected interference (default: %(default)s)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the injected interference (default: %(default)s)")
-    p.add_argument("--run-config", metavar="FILE",
-                   help="run config whose `layout` describes the scans' dataset names and axis order "
-                        "(default: the standard layout)")
-    p.add_argument("--workers", type=int, default=1, metavar="N",
-                   help="dask workers per flagging run (default: %(default)s)")
-    p.set_defaults(func=cmd_tune)
+    p = add_command(subparsers, "tune", cmd_tune,
+        formatter=argparse.RawDescriptionHelpFormatter, help=_TUNE_HELP, description=_TUNE_DESCRIPTION,
+        epilog="example: rfisieve tune --band L --scans 'night1/*_L_*.h5' --out tune-L",
+        options=_TUNE_OPTIONS)
     return p
 
 

@@ -58,6 +58,7 @@ from rfisieve.sim.emitters import (KIND_CODES, KIND_NAMES, KINDS_JSON,
 from rfisieve.sim.inject import inject
 from rfisieve.sim.model import (BANDS, check_band, clean_means, frequency_grid,
                                      parse_time, scan_name, time_grid)
+from rfisieve.commands import add_command
 
 __all__ = ["simulate_scan", "simulate_night", "inject", "register_cli", "KIND_CODES",
            "OBSERVATORY", "DEFAULT_START"]
@@ -578,33 +579,36 @@ def register_cli(subparsers):
 
     The subparser's ``func`` default is the handler; call ``args.func(args)``.
     """
-    p = subparsers.add_parser(
-        "simulate",
+    p = add_command(
+        subparsers, "simulate", _handle,
+        formatter=argparse.RawDescriptionHelpFormatter,
         help="simulate a night of scans of the Quillmoor Radio Observatory, with truth",
         description=textwrap.fill(
             "Simulate a night of scan files of the fictional Quillmoor Radio Observatory, "
             "with interference of known strength and a truth file per scan.  Noise follows "
             "the radiometer equation exactly (dump powers are Gamma-distributed); "
             "interference is modelled at the voltage level.", width=78),
-        epilog=_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("outdir", metavar="OUTDIR", help="directory to write scans/ and truth/ into")
-    p.add_argument("--scans", type=int, default=6, metavar="N",
-                   help="number of scans (default: %(default)s)")
-    p.add_argument("--dumps", type=int, default=1024, metavar="T",
-                   help="dumps per scan (default: %(default)s)")
-    p.add_argument("--channels", type=int, default=512, metavar="F",
-                   help="channels per scan (default: %(default)s)")
-    p.add_argument("--bands", default="L,P", metavar="LIST",
-                   help=f"comma-separated bands used in turn, from {', '.join(BANDS)} "
-                        "(default: %(default)s)")
-    p.add_argument("--seed", type=int, default=0, metavar="S",
-                   help="random seed; the same seed gives the same files (default: %(default)s)")
-    p.add_argument("--accumulations", type=int, default=1024, metavar="N",
-                   help="raw spectra per dump; relative noise 1/sqrt(N) (default: %(default)s)")
-    p.add_argument("--integration-time", type=float, default=2.0, metavar="SEC",
-                   help="dump length in seconds (default: %(default)s)")
-    p.add_argument("--start", default=DEFAULT_START, metavar="ISO",
-                   help="UTC start of the first scan, ISO 8601 (default: %(default)s)")
+        epilog=_EPILOG,
+        options=[
+            ("outdir", {"metavar": "OUTDIR", "help": "directory to write scans/ and truth/ into"}),
+            ("--scans", {"type": int, "default": 6, "metavar": "N",
+                         "help": "number of scans (default: %(default)s)"}),
+            ("--dumps", {"type": int, "default": 1024, "metavar": "T",
+                         "help": "dumps per scan (default: %(default)s)"}),
+            ("--channels", {"type": int, "default": 512, "metavar": "F",
+                            "help": "channels per scan (default: %(default)s)"}),
+            ("--bands", {"default": "L,P", "metavar": "LIST",
+                         "help": f"comma-separated bands used in turn, from {', '.join(BANDS)} "
+                        "(default: %(default)s)"}),
+            ("--seed", {"type": int, "default": 0, "metavar": "S",
+                        "help": "random seed; the same seed gives the same files (default: %(default)s)"}),
+            ("--accumulations", {"type": int, "default": 1024, "metavar": "N",
+                                 "help": "raw spectra per dump; relative noise 1/sqrt(N) (default: %(default)s)"}),
+            ("--integration-time", {"type": float, "default": 2.0, "metavar": "SEC",
+                                    "help": "dump length in seconds (default: %(default)s)"}),
+            ("--start", {"default": DEFAULT_START, "metavar": "ISO",
+                         "help": "UTC start of the first scan, ISO 8601 (default: %(default)s)"}),
+        ])
     group = p.add_mutually_exclusive_group()
     group.add_argument("--s2", action="store_true",
                        help="record /s2 (sum of squared raw powers) in every scan; every raw "
@@ -616,5 +620,4 @@ def register_cli(subparsers):
     p.add_argument("--quiet", action="store_true", help="print only the closing line")
     p.add_argument("--force", action="store_true",
                    help="write into OUTDIR even when it is not empty (files of the same name are replaced)")
-    p.set_defaults(func=_handle)
     return p
