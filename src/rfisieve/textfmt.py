@@ -26,3 +26,8 @@ def pct(x, digits=2, missing="n/a", sep="\u00a0"):
     if x is None or not math.isfinite(float(x)):
         return missing
     return f"{100 * float(x):.{digits}f}{sep}%"
+
+
+def count_noun(n, word):
+    """``1 scan``, ``2 scans``."""
+    return f"{n} {word}{'' if n == 1 else 's'}"
