@@ -130,6 +130,9 @@ def test_live_snakemake_lock_is_left_alone(tmp_path):
     fake.symlink_to(shutil.which("sleep"))
     proc = subprocess.Popen([str(fake), "30"], cwd=tmp_path)
     try:
+        deadline = time.time() + 10  # until the child has exec'd (before that it is a Python fork)
+        while guard.snakemake_processes_in(tmp_path) != [proc.pid] and time.time() < deadline:
+            time.sleep(0.02)
         assert guard.snakemake_processes_in(tmp_path) == [proc.pid]
         assert guard.clear_stale_snakemake_lock(tmp_path) == "live"
         assert (locks / "0.output.lock").exists()
