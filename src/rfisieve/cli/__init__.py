@@ -18,7 +18,7 @@ import time
 
 from rfisieve import __version__
 from rfisieve.errors import ConfigError, RfisieveError
-from rfisieve.commands import add_command
+from rfisieve.commands import add_command, add_options
 
 #: Modules that add their own subcommands with ``register_cli(subparsers)``.
 PLUGIN_MODULES = ("rfisieve.sim.scans", "rfisieve.review.occupancy", "rfisieve.review.page",
@@ -446,6 +446,33 @@ _INSPECT_OPTIONS = [
 ]
 
 
+#: One scan a step at a time (the workflow runs `flag`, which does all three in one pass):
+#: (command, help, description, options).
+_STEPS = (
+    ("plan", "step 1 of one scan: check it and cut it into chunks of dumps -> plan JSON",
+     "Open a scan read-only, check it against its band config, and write the processing plan: "
+     "shape, products (autos/crosses), chunks of dumps with the halo each detector needs, and "
+     "whether /s2 is there.",
+     [(("--out", "-o"), {"metavar": "PLAN.json", "help": "plan file to write; default: print it"})]),
+    ("detect", "step 2 of one scan: run one detector over it -> partial mask",
+     "Run one detector over every chunk of a scan on dask workers and write a partial mask (HDF5 "
+     "/flags, uint8: that detector's bit plus the invalid bit). sk = spectral kurtosis on auto "
+     "products (bit 3, value 8); sumthreshold = SumThreshold on background-subtracted amplitudes "
+     "(bit 4, value 16).",
+     [("--detector", {"required": True, "choices": ("sk", "sumthreshold"), "help": "detector to run"}),
+      (("--out", "-o"), {"required": True, "metavar": "PARTIAL.h5", "help": "partial mask file to write"}),
+      ("--plan", {"metavar": "PLAN.json", "help": "plan from `rfisieve plan`; default: plan afresh"})]),
+    ("merge", "step 3 of one scan: combine partial masks -> the scan's final mask file",
+     "Combine the detectors' partial masks with the upstream flags (bit 0), invalid samples (bit 1) "
+     "and the band's known-bad ranges (bit 2), grow them with the scale-invariant rank operator "
+     "(bit 5) and cut channels/dumps above the occupancy limits (bit 6); write the mask file with "
+     "/flags, /time, /freq, /products and the band config used.",
+     [("--partial", {"nargs": "+", "required": True, "metavar": "PARTIAL.h5",
+                     "help": "partial masks from `rfisieve detect`"}),
+      (("--out", "-o"), {"required": True, "metavar": "MASK.h5", "help": "mask file to write"})]),
+)
+
+
 def build_parser(plugins=True):
     """The argparse tree; ``plugins=False`` leaves out the other modules' subcommands."""
     parser = argparse.ArgumentParser(prog="rfisieve", description=DESCRIPTION, formatter_class=_TopFormatter)
@@ -515,37 +542,11 @@ def build_parser(plugins=True):
                    help="threshold method: auto, exact, pearson (types IV/VI), pearson3 (type III)")
     p.add_argument("--quiet", "-q", action="store_true", help="print only 'lower upper'")
 
-    p = _add_stage(
-        sub, "plan", cmd_plan,
-        help="stage 1 (workflow): check a scan and cut it into chunks of dumps -> plan JSON",
-        description="Open a scan read-only, check it against its band config, and write the "
-                    "processing plan: shape, products (autos/crosses), chunks of dumps with the "
-                    "halo each detector needs, and whether /s2 is there.")
-    p.add_argument("--out", "-o", metavar="PLAN.json", help="plan file to write; default: print it")
-
-    p = _add_stage(
-        sub, "detect", cmd_detect,
-        help="stage 2 (workflow): run one detector over a scan -> partial mask",
-        description="Run one detector over every chunk of a scan on dask workers and write a "
-                    "partial mask (HDF5 /flags, uint8: that detector's bit plus the invalid bit). "
-                    "sk = spectral kurtosis on auto products (bit 3, value 8); sumthreshold = "
-                    "SumThreshold on background-subtracted amplitudes (bit 4, value 16).")
-    p.add_argument("--detector", required=True, choices=("sk", "sumthreshold"), help="detector to run")
-    p.add_argument("--out", "-o", required=True, metavar="PARTIAL.h5", help="partial mask file to write")
-    p.add_argument("--plan", metavar="PLAN.json", help="plan from `rfisieve plan`; default: plan afresh")
-    _add_parallel_options(p)
-
-    p = _add_stage(
-        sub, "merge", cmd_merge,
-        help="stage 3 (workflow): combine partial masks -> the scan's final mask file",
-        description="Combine the detectors' partial masks with the upstream flags (bit 0), invalid "
-                    "samples (bit 1) and the band's static ranges (bit 2), grow them with the "
-                    "scale-invariant rank operator (bit 5) and cut channels/dumps above the "
-                    "occupancy limits (bit 6); write <outdir>/flags/<scan>.h5 with /flags, /time, "
-                    "/freq, /products and the band config used.")
-    p.add_argument("--partial", nargs="+", required=True, metavar="PARTIAL.h5",
-                   help="partial masks from `rfisieve detect`")
-    p.add_argument("--out", "-o", required=True, metavar="MASK.h5", help="mask file to write")
+    for name, help, description, options in _STEPS:
+        p = _add_stage(sub, name, globals()[f"cmd_{name}"], help=help, description=description)
+        add_options(p, options)
+        if name == "detect":
+            _add_parallel_options(p)
 
     from rfisieve.cli import night
 

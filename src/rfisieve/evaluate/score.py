@@ -30,6 +30,7 @@ plain numpy arrays (so that files can be read chunk by chunk);
 :func:`score_arrays` chains them, :func:`score_files` reads the two files in chunks.
 """
 
+import argparse
 import json
 import math
 
@@ -372,15 +373,16 @@ _SCORE_OPTIONS = [
 ]
 
 
+#: The command's texts and options (:func:`rfisieve.commands.add_command`).
+_SCORE = {"formatter": argparse.RawDescriptionHelpFormatter, "help": _SCORE_HELP,
+          "description": _SCORE_DESCRIPTION,
+          "epilog": 'example: rfisieve score results/flags/qro_L_001.h5 sim/qro_L_001.truth.h5 --json',
+          "options": _SCORE_OPTIONS}
+
+
 def register_cli(subparsers):
     """Add the ``score`` subcommand to the ``rfisieve`` command."""
-    import argparse
-
-    p = add_command(subparsers, "score", cmd_score,
-        formatter=argparse.RawDescriptionHelpFormatter, help=_SCORE_HELP, description=_SCORE_DESCRIPTION,
-        epilog="example: rfisieve score results/flags/qro_L_001.h5 sim/qro_L_001.truth.h5 --json",
-        options=_SCORE_OPTIONS)
-    return p
+    return add_command(subparsers, "score", cmd_score, **_SCORE)
 
 
 __all__ = ["score_arrays", "score_files", "count_arrays", "add_counts", "finish", "format_table",

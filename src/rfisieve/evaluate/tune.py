@@ -391,13 +391,16 @@ _TUNE_OPTIONS = [
 ]
 
 
+#: The command's texts and options (:func:`rfisieve.commands.add_command`).
+_TUNE = {"formatter": argparse.RawDescriptionHelpFormatter, "help": _TUNE_HELP,
+         "description": _TUNE_DESCRIPTION,
+         "epilog": "example: rfisieve tune --band L --scans 'night1/*_L_*.h5' --out tune-L",
+         "options": _TUNE_OPTIONS}
+
+
 def register_cli(subparsers):
     """Add the ``tune`` subcommand to the ``rfisieve`` command."""
-    p = add_command(subparsers, "tune", cmd_tune,
-        formatter=argparse.RawDescriptionHelpFormatter, help=_TUNE_HELP, description=_TUNE_DESCRIPTION,
-        epilog="example: rfisieve tune --band L --scans 'night1/*_L_*.h5' --out tune-L",
-        options=_TUNE_OPTIONS)
-    return p
+    return add_command(subparsers, "tune", cmd_tune, **_TUNE)
 
 
 __all__ = ["run_tune", "sweep_values", "suggest", "evaluate", "prepare_samples", "write_suggestion",
