@@ -544,6 +544,10 @@ def sumthreshold_halo(settings):
     in the bandpass blocks (its result at a dump depends on that block's window
     only); the compact boxes add their height less one (2 dumps).  For the L band
     (T = 256, boxes of up to 3 dumps): 303 + 384 + 2 = 689, rounded up to 696.
+    With ``combine_feeds`` (the engine gives a feed pair's two auto products to
+    :func:`combined_flagger`) the pass on the summed residuals, which takes each
+    product's detections as flagged, adds R_st once more: L band 689 + 57 = 746,
+    rounded up to 752.
 
     Parameters
     ----------
@@ -573,4 +577,8 @@ def sumthreshold_halo(settings):
         # dump depends on that block's window only (3 T / 2), already inside
     if s.get("compact_sigma", 0.0):
         halo += max(dt for dt, _ in COMPACT_SHAPES) - 1
+    if s.get("combine_feeds", False):
+        # a feed pair's combined pass (:func:`combined_flagger`) runs SumThreshold once
+        # more on the last residuals, with the products' detections as flagged: R_st more
+        halo += r_st
     return int(-(-halo // ct) * ct)
