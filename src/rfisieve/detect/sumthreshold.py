@@ -224,7 +224,8 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
                          max_window_freq=128, iterations=3, start_scale=4.0,
                          background_time=15.0, background_freq=5.0, bandpass_dumps=0,
                          persist_dumps=0, persist_sigma=6.0, baseline_channels=64,
-                         compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None):
+                         compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None,
+                         combine_feeds=False):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
@@ -299,6 +300,9 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
         Absolute dump number of the plane's first row (the chunk start less the
         halo): aligns the background's time cells to the scan, so a chunk gives
         the whole scan's result whatever dump it starts at.
+    combine_feeds : bool
+        The band key that makes the engine give a feed pair to
+        :func:`combined_flagger`; without effect on one plane.
 
     Returns
     -------
@@ -352,6 +356,7 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     invalids = [None] * k if invalids is None else list(invalids)
     s = dict(settings)
     s.pop("enabled", None)
+    s.pop("combine_feeds", None)
     own, zs = [], []
     for x, sig, mk, inv in zip(planes, sigmas, masks, invalids):
         r = np.zeros(np.shape(x), np.float32)
@@ -404,6 +409,7 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
     s.pop("enabled", None)
     s.pop("sigma", None)
     s.pop("protect", None)
+    s.pop("combine_feeds", None)
     return _flag(values, mask, invalid=invalid, t0=t0, noise_only=True, **s)[1]
 
 
