@@ -27,8 +27,8 @@ import numpy as np
 from rfisieve.detect import _sumthreshold_kernels as kernels
 from rfisieve.detect import _bandpass_kernels as bpk
 from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
-from rfisieve.detect.bandpass import (COMPACT_SHAPES, bandpass_reach, block_bandpass, block_lengths, compact_flags,
-                                      persistent_flags)
+from rfisieve.detect.bandpass import (COMPACT_SHAPES, BlockMeans, bandpass_reach, block_bandpass, block_lengths,
+                                      compact_flags, persistence_test)
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger", "combined_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
@@ -335,8 +335,10 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     along frequency with the time pass's detections as flagged, thresholds chi_1 =
     ``chi1``, as in the flagger) and, with ``compact_sigma``, the compact boxes
     (:func:`rfisieve.detect.bandpass.compact_flags`) run on z with both products'
-    detections and input flags as flagged; a sample found on z is flagged in *both*
-    products (the emitter is in both).  A sample invalid in either product is left
+    detections and input flags as flagged; with the persistence test on, it runs on
+    the pair's block means together (:func:`rfisieve.detect.bandpass.persistence_test`:
+    each z of the test summed over the products, over sqrt(2)).  A sample found
+    together is flagged in *both* products (the emitter is in both).  A sample invalid in either product is left
     out of z.  z is formed on the grid, rint((g_a + g_b) / sqrt(2)), clipped as the
     grid is (:func:`to_grid`).
 
@@ -384,7 +386,14 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     if s.get("compact_sigma", 0.0):
         hit |= compact_flags(z, lev, hit, unit / float(s.get("chi1", 8.0)), float(s["compact_sigma"]))
     hit &= lev != kernels.LEV_INVALID
-    return [d | hit for d in own]
+    out = [d | hit for d in own]
+    if "blocks" in ka and "blocks" in kb:
+        # the persistence test on the pair's block means together
+        prot = None if protect is None else np.asarray(protect, dtype=np.bool_)
+        for d, p in zip(out, persistence_test([ka["blocks"], kb["blocks"]], float(s.get("persist_sigma", 6.0)),
+                                              prot)):
+            d |= p
+    return out
 
 
 def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
@@ -520,10 +529,12 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
     if bandpass_dumps and persist_dumps:
         lengths = block_lengths(persist_dumps, bandpass_dumps)
         strong = prev & (rg > STRONG_SIGMA * unit / float(chi1))
-        prev |= persistent_flags(raw, base_ex, strong, bp, rowblock, int(t0), sig, lengths,
-                                 int(baseline_channels), float(persist_sigma),
-                                 None if protect is None else np.asarray(protect, dtype=np.bool_),
-                                 int(bandpass_dumps))
+        prot = None if protect is None else np.asarray(protect, dtype=np.bool_)
+        blocks = BlockMeans(raw, base_ex, strong, bp, rowblock, int(t0), sig, int(baseline_channels), lengths,
+                            prot)
+        prev |= persistence_test([blocks], float(persist_sigma), prot)[0]
+        if keep is not None:
+            keep["blocks"] = blocks      # the pair's persistence test reuses its block means
     return prev, sig
 
 
