@@ -525,17 +525,28 @@ def fine_excess(bp_row, z, protect=None):
     # three channels away would lift a clean channel's excess: as neighbours, the
     # channels found are replaced by the linear interpolation of the others, and the
     # test is repeated until the channels found no longer change (at most 4 times)
-    found = e > z * sc
+    return _found_channels([lb], e > z * sc, lambda nbs: _loo_excess(lb, nbs[0])[0] > z * sc, protect)
+
+
+def _found_channels(lbs, found, test, protect):
+    """The channels found by :func:`fine_excess`: ``found`` refined by ``test`` (the
+    channels found, given each product's log bandpass with them replaced as
+    neighbours) until they no longer change, at most 4 times; the three outer
+    channels at each end and the protected ones left out."""
+    m = lbs[0].shape[0]
     for _ in range(4):
         if not found.any():
             break
-        nb = np.where(found, np.nan, lb)
-        kernels.fill_nan_1d(nb)
-        e, _ = _loo_excess(lb, nb)
-        now = e > z * sc
+        nbs = []
+        for lb in lbs:
+            nb = np.where(found, np.nan, lb)
+            kernels.fill_nan_1d(nb)
+            nbs.append(nb)
+        now = test(nbs)
         if np.array_equal(now, found):
             break
         found = now
+    hit = np.zeros(m, np.bool_)
     hit[3:m - 3] = found[3:m - 3]
     if protect is not None:
         hit &= ~np.asarray(protect, dtype=np.bool_)
@@ -561,23 +572,7 @@ def _fine_excess_joint(rows, z, protect=None):
     def joint(nbs):
         return sum(_loo_excess(lb, nb)[0] / sc for lb, nb, sc in zip(lbs, nbs, scs)) / math.sqrt(k)
 
-    found = joint([None] * k) > z
-    for _ in range(4):
-        if not found.any():
-            break
-        nbs = []
-        for lb in lbs:
-            nb = np.where(found, np.nan, lb)
-            kernels.fill_nan_1d(nb)
-            nbs.append(nb)
-        now = joint(nbs) > z
-        if np.array_equal(now, found):
-            break
-        found = now
-    hit[3:m - 3] = found[3:m - 3]
-    if protect is not None:
-        hit &= ~np.asarray(protect, dtype=np.bool_)
-    return hit
+    return _found_channels(list(lbs), joint([None] * k) > z, lambda nbs: joint(nbs) > z, protect)
 
 
 def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES):
