@@ -366,9 +366,9 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     s.pop("enabled", None)
     s.pop("combine_feeds", None)
     own, kept = [], []
-    for x, sig, mk, inv in zip(planes, sigmas, masks, invalids):
+    for x, sig, mk, inv, name in zip(planes, sigmas, masks, invalids, ("pair", "work")):
         keep = {}
-        own.append(_flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, keep=keep, **s)[0])
+        own.append(_flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, keep=keep, scratch=name, **s)[0])
         kept.append(keep)
     if not all(kept):       # a product without a valid sample: nothing to combine
         return own
@@ -439,20 +439,23 @@ STRONG_SIGMA = 4.0
 _local = threading.local()
 
 
-def _scratch():
-    """This thread's scratch buffers of the flagger, reused between calls of the same
-    plane shape (fresh pages cost a page fault each on first touch; the engine calls
-    the flagger once per chunk and product from a few threads)."""
-    work = getattr(_local, "work", None)
-    if work is None:
-        work = _local.work = {}
-    return work
+def _scratch(name="work"):
+    """This thread's scratch buffers ``name`` of the flagger, reused between calls of the
+    same plane shape (fresh pages cost a page fault each on first touch; the engine calls
+    the flagger once per chunk and product from a few threads).  A feed pair's first
+    product uses its own set (:func:`combined_flagger` keeps its buffers while the
+    second product is flagged)."""
+    sets = getattr(_local, "sets", None)
+    if sets is None:
+        sets = _local.sets = {}
+    return sets.setdefault(name, {})
 
 
 def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_freq=128,
           iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
           invalid=None, sigma=None, t0=0, bandpass_dumps=0, persist_dumps=0, persist_sigma=6.0,
-          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, keep=None):
+          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, keep=None,
+          scratch="work"):
     """The flagger; returns (detections, sigma of the last iteration).  With ``keep``
     (a dict) it also gets the last iteration's residual on the grid (``grid``: chi_1
     sigma is ``unit`` steps, windows up to ``max_window``) and the levels (``lev0``),
@@ -473,7 +476,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         sigma = float(sigma)
         if not sigma > 0 or not np.isfinite(sigma):
             raise ValueError("sigma must be a positive finite number, not %r" % (sigma,))
-    work = _scratch()
+    work = _scratch(scratch)
     lev0 = _buf(work, "lev0", np.uint8, (n, m))
     base_ex = _buf(work, "base_ex", np.bool_, (n, m))     # input-flagged or invalid
     rowbad, colbad = kernels.init_flagger(x, inv, invalid is not None, flagged, mask is not None,
@@ -520,7 +523,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         _st_freq(rg, lev0, rowbad, colbad, unit, float(rho), np_f, det, True)
         det, prev = prev, det
     if keep is not None and np.isfinite(sig):
-        keep.update(grid=rg.copy(), lev0=lev0.copy(), unit=unit, max_window=mw)
+        keep.update(grid=rg, lev0=lev0, unit=unit, max_window=mw)
     if noise_only or not np.isfinite(sig):
         return prev, sig
     if compact_sigma:
