@@ -6,8 +6,10 @@ Builds simulated scans, then measures in one run, each step in its own process:
 1. ``rfisieve run``: the whole workflow on one long scan, end to end, as users start it
    (Snakemake, the night's checks, the flag job, occupancy, the review page), timed from
    the command's start to its exit;
-2. ``engine``: the engine alone (``flag_scan`` in a fresh process, imports included), the
-   second line: what the workflow adds is the ratio of the two;
+2. ``engine``: the engine alone (``flag_scan`` in a fresh process, imports included) with
+   the shipped config/bands/L.yaml, as ``rfisieve run`` uses it: what the workflow adds is
+   the ratio of the two; and the engine with the band schema's defaults (the bandpass
+   model, persistence, compact and feed-pair tests off): what the new detection costs;
 3. ``io``: the I/O floor: a plain h5py read of the data plus a write of a same-shaped
    uint8 mask, chunk by chunk;
 4. ``sigmaclip``: astropy's ``sigma_clip`` written the way a user would: one call per
@@ -17,7 +19,9 @@ Builds simulated scans, then measures in one run, each step in its own process:
    through ``rfisieve run`` against one scan holding the same samples;
 6. memory: peak resident memory of the flag job (Snakemake's benchmark file) and of the
    engine alone on a scan 4x longer than a base scan (both longer than the engine's two
-   windows of chunks).
+   windows of chunks: with the four products in two feed pairs a window holds two chunks
+   of 4096 dumps, so the base scan has 20480 dumps; at 12288 it never held two full
+   windows and the longer scan seemed to grow by 1.24 x).
 
 Every time is wall-clock; ``--repeat`` (default 2) fresh runs of the long-scan steps
 and the best is tabled (all are printed).
@@ -50,7 +54,10 @@ def build_scan(path, ntime, nchan, nprod, seed=1, accumulations=1024):
     rng = np.random.default_rng(seed)
     freq = 1.30e9 + np.arange(nchan) * 200e3
     bandpass = (1.0 + 0.3 * np.sin(np.linspace(0, 6 * np.pi, nchan))).astype(np.float32)
-    products = [f"q0{i + 1}h-q0{i + 1}h" for i in range(nprod)]
+    # the demo observatory's inputs <antenna>.<feed>: both feeds of each antenna, so the
+    # feed pairs are flagged together as users' scans are (sumthreshold.combine_feeds)
+    inputs = [f"pier{i // 2 + 1}.{'ab'[i % 2]}" for i in range(nprod)]
+    products = [f"{a}-{a}" for a in inputs]
     rows = 1024
     with h5py.File(path, "w") as f:
         d = f.create_dataset("data", (ntime, nchan, nprod), dtype=np.float32,
@@ -72,11 +79,16 @@ def build_scan(path, ntime, nchan, nprod, seed=1, accumulations=1024):
 
 
 # -- child steps (each in a fresh process) --------------------------------------------
-def step_engine(scan, out, workers, chunk_dumps):
+def step_engine(scan, out, workers, chunk_dumps, defaults=False):
+    """``flag_scan`` with the shipped config/bands/L.yaml (what users run), or with the
+    band schema's defaults (``defaults``: the bandpass model, persistence, compact and
+    feed-pair tests off)."""
     from rfisieve.config.defaults import band_settings, run_settings
+    from rfisieve.config.load import load_band
     from rfisieve.engine import flag_scan
 
-    flag_scan(scan, out, band_settings({"band": "L"}), run_settings({"workers": workers, "chunk_dumps": chunk_dumps}))
+    band = band_settings({"band": "L"}) if defaults else load_band(str(ROOT / "config" / "bands"), "L")[0]
+    flag_scan(scan, out, band, run_settings({"workers": workers, "chunk_dumps": chunk_dumps}))
 
 
 def step_io(scan, out, chunk_dumps):
@@ -118,8 +130,8 @@ def child(argv):
     step, scan, out = argv[0], argv[1], argv[2]
     workers, chunk_dumps = int(argv[3]), int(argv[4])
     t0 = time.perf_counter()
-    if step == "engine":
-        step_engine(scan, out, workers, chunk_dumps)
+    if step in ("engine", "engine-defaults"):
+        step_engine(scan, out, workers, chunk_dumps, defaults=step == "engine-defaults")
     elif step == "io":
         step_io(scan, out, chunk_dumps)
     elif step in ("sigmaclip", "sigmaclip-channels"):
@@ -175,8 +187,9 @@ def main():
     ap.add_argument("--repeat", type=int, default=2, help="fresh runs of the long-scan steps; best tabled")
     ap.add_argument("--night-scans", type=int, default=24, help="small scans in the many-scan night (default 24)")
     ap.add_argument("--night-shape", default="1024x256x2", help="dumps x channels x products of each small scan")
-    ap.add_argument("--memory-dumps", type=int, default=12288,
-                    help="dumps of the memory check's base scan (its 4x longer twin is also flagged)")
+    ap.add_argument("--memory-dumps", type=int, default=20480,
+                    help="dumps of the memory check's base scan, longer than two windows of chunks "
+                         "(its 4x longer twin is also flagged)")
     ap.add_argument("--no-memory", action="store_true", help="skip the memory check")
     ap.add_argument("--no-sigmaclip", action="store_true", help="skip the astropy sigma_clip comparison")
     ap.add_argument("--channel-loop", action="store_true", help="also time sigma_clip per channel (slow)")
@@ -211,6 +224,7 @@ def main():
 
         runs = table("rfisieve run", n, rep(lambda: rfisieve_run([str(scan)], tmp / "out_long", w, cd)))
         table("engine only", n, rep(lambda: run_child("engine", scan, tmp / "engine.h5", w, cd)))
+        table("engine, defaults", n, rep(lambda: run_child("engine-defaults", scan, tmp / "engine_d.h5", w, cd)))
         table("io floor", n, rep(lambda: run_child("io", scan, tmp / "io.h5", w, cd)))
         if not args.no_sigmaclip:
             table("sigma_clip per plane", n, [run_child("sigmaclip", scan, tmp / "sc.h5", w, cd)])
@@ -257,6 +271,10 @@ def main():
         print()
         print(f"rfisieve run on the long scan: {n / rr['seconds'] / 1e6:.1f} M samples/s (target >= 15); "
               f"{rr['seconds'] / eng['seconds']:.2f} x engine only (target <= 1.3)")
+        print(f"engine with the shipped config/bands/L.yaml: {n / eng['seconds'] / 1e6:.1f} M samples/s; with the "
+              f"band defaults (bandpass, persistence, compact, feed pairs off): "
+              f"{n / by['engine, defaults']['seconds'] / 1e6:.1f} M samples/s "
+              f"({eng['seconds'] / by['engine, defaults']['seconds']:.2f} x the time)")
         if "sigma_clip per plane" in by:
             print(f"  against sigma_clip per plane: {rr['seconds'] / by['sigma_clip per plane']['seconds']:.2f} x "
                   "its time (target <= 1)")

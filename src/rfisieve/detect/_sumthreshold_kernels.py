@@ -476,3 +476,29 @@ def init_flagger(x, inv, has_inv, flg, has_flg, lev, ex):
             colbad[c] += 1 if b else 0
         rowbad[t] = nb
     return rowbad, colbad
+
+
+@njit(**_opts)
+def pair_grid(ga, gb, la, lb, da, db, scale, lo, hi, z, lev):
+    """A feed pair's summed residual on the grid: z = rint(clip((ga + gb) * scale, lo,
+    hi)) (scale = 1 / sqrt(2): unit noise when ga and gb each have it); lev = 255 where
+    either product's level is invalid, 1 where either is flagged on input or detected
+    (da, db), 0 elsewhere.  Returns the per-row and per-column counts of invalid samples
+    (as :func:`init_levels`)."""
+    n, m = z.shape
+    rowbad = np.zeros(n, np.int64)
+    colbad = np.zeros(m, np.int64)
+    for t in range(n):
+        nb = 0
+        for c in range(m):
+            bad = la[t, c] == LEV_INVALID or lb[t, c] == LEV_INVALID
+            flg = la[t, c] != LEV_FREE or lb[t, c] != LEV_FREE or da[t, c] or db[t, c]
+            lev[t, c] = np.uint8(LEV_INVALID) if bad else (np.uint8(LEV_INPUT) if flg else np.uint8(LEV_FREE))
+            v = (np.float64(ga[t, c]) + np.float64(gb[t, c])) * scale
+            v = v if v > lo else lo
+            v = v if v < hi else hi
+            z[t, c] = np.rint(v)
+            nb += 1 if bad else 0
+            colbad[c] += 1 if bad else 0
+        rowbad[t] = nb
+    return rowbad, colbad

@@ -29,8 +29,8 @@ import numpy as np
 
 from rfisieve.detect import _bandpass_kernels as kernels
 
-__all__ = ["block_bandpass", "persistent_flags", "compact_flags", "block_lengths", "COMPACT_SHAPES",
-           "bandpass_reach"]
+__all__ = ["block_bandpass", "persistent_flags", "persistence_test", "BlockMeans", "compact_flags",
+           "block_lengths", "COMPACT_SHAPES", "bandpass_reach"]
 
 #: MAD to standard deviation for Gaussian noise, 1 / Phi^-1(3/4) (common practice).
 MAD_TO_SIGMA = 1.482602218505602
@@ -224,82 +224,97 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     -------
     ndarray of bool (ntime, nchan)
     """
-    x = np.ascontiguousarray(values, dtype=np.float32)
-    ex = np.ascontiguousarray(exclude, dtype=np.bool_)
-    n, m = x.shape
-    out = np.zeros((n, m), np.bool_)
-    if not (sigma > 0) or n == 0 or m < 16:
-        return out
-    bases = _baselines(bp, int(half_width))
-    # sums over aligned parts of S dumps of the samples neither excluded nor in
-    # ``detected`` (the caller passes the strong detections only: leaving out every
-    # detection would bias a partly detected weak channel's mean low, keeping strong
-    # ones would let a radar's bright pulses flag its channel between them)
-    det = np.ascontiguousarray(detected, dtype=np.bool_)
-    S = min(PART_DUMPS, min(int(L) for L in lengths))
-    parts = _blocks(t0, n, S)
-    P = len(parts)
-    ssum = np.empty((P, m), np.float64)
-    scnt = np.empty((P, m), np.int64)
-    for q, (_, a, b) in enumerate(parts):
-        kernels.block_sums(x, ex, det, a, b, ssum[q], scnt[q])
-    pidx = np.array([k for k, _, _ in parts], np.int64)          # absolute part numbers
-    prow = np.array([a for _, a, _ in parts], np.int64)          # first row of each part
-    plen = np.array([b - a for _, a, b in parts], np.int64)
-    free = np.ones(m, np.bool_) if protect is None else ~np.asarray(protect, dtype=np.bool_)
-    pblock = rowblock[prow]                                      # bandpass block of each part
+    bm = BlockMeans(values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect)
+    return persistence_test([bm], z, protect)[0]
 
-    csum = np.zeros((P + 1, m))
-    np.cumsum(ssum, axis=0, out=csum[1:])
-    ccnt = np.zeros((P + 1, m), np.int64)
-    np.cumsum(scnt, axis=0, out=ccnt[1:])
-    crow = np.r_[0, np.cumsum(plen)]
-    memo = {}
 
-    def grouped(k):
+class BlockMeans:
+    """One product's sums over aligned parts of ``PART_DUMPS`` dumps, its bandpass
+    baselines and the excesses of :func:`persistent_flags` (memoised per group of parts),
+    so that the persistence test of a product and of its feed pair
+    (:func:`persistence_test`) share them.  Arguments as for :func:`persistent_flags`."""
+
+    def __init__(self, values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect=None):
+        x = np.ascontiguousarray(values, dtype=np.float32)
+        self.ex = np.ascontiguousarray(exclude, dtype=np.bool_)
+        self.n, self.m = n, m = x.shape
+        self.sigma, self.bp, self.lengths = sigma, bp, tuple(lengths)
+        self.usable = bool(sigma > 0) and n > 0 and m >= 16
+        self.memo, self.zmemo = {}, {}
+        if not self.usable:
+            return
+        self.bases = _baselines(bp, int(half_width))
+        # sums over aligned parts of S dumps of the samples neither excluded nor in
+        # ``detected`` (the caller passes the strong detections only: leaving out every
+        # detection would bias a partly detected weak channel's mean low, keeping strong
+        # ones would let a radar's bright pulses flag its channel between them)
+        det = np.ascontiguousarray(detected, dtype=np.bool_)
+        self.S = S = min(PART_DUMPS, min(int(L) for L in lengths))
+        parts = _blocks(t0, n, S)
+        self.P = P = len(parts)
+        ssum = np.empty((P, m), np.float64)
+        scnt = np.empty((P, m), np.int64)
+        for q, (_, a, b) in enumerate(parts):
+            kernels.block_sums(x, self.ex, det, a, b, ssum[q], scnt[q])
+        self.pidx = np.array([k for k, _, _ in parts], np.int64)       # absolute part numbers
+        prow = np.array([a for _, a, _ in parts], np.int64)            # first row of each part
+        self.plen = np.array([b - a for _, a, b in parts], np.int64)
+        self.free = np.ones(m, np.bool_) if protect is None else ~np.asarray(protect, dtype=np.bool_)
+        self.pblock = rowblock[prow]                                   # bandpass block of each part
+        self.csum = np.zeros((P + 1, m))
+        np.cumsum(ssum, axis=0, out=self.csum[1:])
+        self.ccnt = np.zeros((P + 1, m), np.int64)
+        np.cumsum(scnt, axis=0, out=self.ccnt[1:])
+        self.crow = np.r_[0, np.cumsum(self.plen)]
+        self.every4 = (np.arange(m) % 4) == 0
+
+    def grouped(self, k):
         """Sums, counts, rows and bandpass block per group of k aligned parts, and
         each part's group (memoised)."""
-        if k not in memo:
-            gid = pidx // k
+        if k not in self.memo:
+            gid = self.pidx // k
             new_group = np.r_[True, gid[1:] != gid[:-1]]
             starts = np.flatnonzero(new_group)
-            ends = np.r_[starts[1:], P]
-            memo[k] = (csum[ends] - csum[starts], ccnt[ends] - ccnt[starts], crow[ends] - crow[starts],
-                       pblock[starts], np.cumsum(new_group) - 1)
-        return memo[k]
+            ends = np.r_[starts[1:], self.P]
+            self.memo[k] = (self.csum[ends] - self.csum[starts], self.ccnt[ends] - self.ccnt[starts],
+                            self.crow[ends] - self.crow[starts], self.pblock[starts], np.cumsum(new_group) - 1)
+        return self.memo[k]
 
-    every4 = (np.arange(m) % 4) == 0
-
-    def excess(k, cols=None):
+    def excess(self, k, cols=None):
         """Per group of k parts: (ok, z over the smaller excess, z over the running
-        median's) and each part's group (see the docstring); with ``cols``, only for
-        those channels, the groups' gains then taken over every fourth channel (the
-        gain is common to all channels: a quarter of them pins it to well under the
-        thresholds' resolution)."""
-        gs, gc, rows, blk, grp = grouped(k)
-        ok = free[None, :] & (gc >= np.maximum(2, rows // 4)[:, None])
+        median's) and each part's group (see :func:`persistent_flags`; memoised for
+        all channels); with ``cols``, only for those channels, the groups' gains then
+        taken over every fourth channel (the gain is common to all channels: a quarter
+        of them pins it to well under the thresholds' resolution)."""
+        if cols is None and k in self.zmemo:
+            return self.zmemo[k]
+        gs, gc, rows, blk, grp = self.grouped(k)
+        ok = self.free[None, :] & (gc >= np.maximum(2, rows // 4)[:, None])
         enough = ok.sum(axis=1) >= 8
         ok &= enough[:, None]
-        gain_ok = ok if cols is None else ok & every4[None, :]
+        gain_ok = ok if cols is None else ok & self.every4[None, :]
         zs = []
         with np.errstate(all="ignore"):
             mean = gs / np.maximum(gc, 1)
-            for base in bases:
+            for base in self.bases:
                 ratio = mean / base[blk]
                 g = _row_medians(ratio, gain_ok)
                 g = np.where(np.isfinite(g) & enough, g, 1.0)
                 rc = ratio if cols is None else ratio[:, cols]
                 cc = gc if cols is None else gc[:, cols]
-                zs.append((rc / g[:, None] - 1.0) * np.sqrt(cc) / sigma)
+                zs.append((rc / g[:, None] - 1.0) * np.sqrt(cc) / self.sigma)
         okc = ok if cols is None else ok[:, cols]
-        return okc, np.minimum(zs[0], zs[1]), zs[0], grp
+        res = (okc, np.minimum(zs[0], zs[1]), zs[0], grp)
+        if cols is None:
+            self.zmemo[k] = res
+        return res
 
-    def fine_z(k, cols):
+    def fine_z(self, k, cols):
         """Per group of k parts, for channels ``cols`` (at least 3 from the ends):
         the symmetric leave-one-out excess of the mean spectrum, in sigma of that
         mean (its variance 1.5 times a sample's: 1 + 49/98); not ok where a channel
         of the seven has no sample."""
-        gs, gc, _, _, grp = grouped(k)
+        gs, gc, _, _, grp = self.grouped(k)
         idx = cols[:, None] + np.arange(-3, 4)[None, :]
         c7 = gc[:, idx]
         with np.errstate(all="ignore"):
@@ -309,12 +324,36 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
             s3 = 0.5 * (lm[..., 0] + lm[..., 6])
             e = lm[..., 3] - (6 * s1 + 3 * s2 - 2 * s3) / 7.0
         ok = (c7 > 0).all(axis=2)
-        return ok, e * np.sqrt(np.maximum(c7[..., 3], 1) / 1.5) / sigma, grp
+        return ok, e * np.sqrt(np.maximum(c7[..., 3], 1) / 1.5) / self.sigma, grp
 
+
+def _joint(results):
+    """Products' (ok, z, ...) tests joined: ok in all of them, z = the sum of the z's
+    over sqrt(K) (independent noise of unit variance: unit variance again; common
+    practice); one product's result unchanged."""
+    if len(results) == 1:
+        return results[0]
+    ok = np.logical_and.reduce([r[0] for r in results])
+    zs = [sum(r[i] for r in results) / math.sqrt(len(results)) for i in range(1, len(results[0]) - 1)]
+    return (ok, *zs, results[0][-1])
+
+
+def persistence_test(products, z, protect=None):
+    """The persistence test of :func:`persistent_flags` on one product, or on a feed
+    pair's products together (:class:`BlockMeans` each): every z of the test is the
+    sum of the products' z's over sqrt(K), and a channel must be usable in all of them.
+    For a pair, an emitter in both polarizations at strengths 1 and 0.8 stands out by
+    1.27 times one product's excess.  Returns each product's flags (the same samples,
+    less each one's excluded samples)."""
+    b0 = products[0]
+    n, m = b0.n, b0.m
+    if not all(b.usable for b in products):
+        return [np.zeros((n, m), np.bool_) for _ in products]
+    P, S = b0.P, b0.S
     per_sub = max(1, SUB_DUMPS // S)
     cand = np.zeros((P, m), np.bool_)
-    for L in lengths:
-        ok, zs, zm, grp = excess(int(L) // S)
+    for L in b0.lengths:
+        ok, zs, zm, grp = _joint([b.excess(int(L) // S) for b in products])
         with np.errstate(all="ignore"):
             med = _row_medians(zm, ok)
             sc = MAD_TO_SIGMA * _row_medians(np.abs(zm - med[:, None]), ok)
@@ -326,25 +365,30 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     if cols.size:
         # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
         # the parts where it stands out by PART_SIGMA
-        okp, zp, _, _ = excess(1, cols)
-        oks, zsub, _, gsub = excess(per_sub, cols)
+        okp, zp, _, _ = _joint([b.excess(1, cols) for b in products])
+        oks, zsub, _, gsub = _joint([b.excess(per_sub, cols) for b in products])
         flags[:, cols] = cand[:, cols] & (oks & (zsub > REFINE_SIGMA))[gsub] & okp & (zp > PART_SIGMA)
     # narrow emitters on steep slopes: the bandpass block's fine test, placed in time
     # by the symmetric leave-one-out excess of the sub-block and part means
-    nb = bp.shape[0]
+    nb = b0.bp.shape[0]
     fine = np.zeros((nb, m), np.bool_)
     for i in range(nb):
-        fine[i] = fine_excess(bp[i], z, protect)
+        fine[i] = fine_excess(np.array([b.bp[i] for b in products]) if len(products) > 1 else b0.bp[i],
+                              z, protect)
     cols = np.flatnonzero(fine.any(axis=0))
     if cols.size:
-        fs_ok, fs_z, fs_g = fine_z(per_sub, cols)
-        fp_ok, fp_z, _ = fine_z(1, cols)
-        flags[:, cols] |= (fine[pblock][:, cols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g]
+        fs_ok, fs_z, fs_g = _joint([b.fine_z(per_sub, cols) for b in products])
+        fp_ok, fp_z, _ = _joint([b.fine_z(1, cols) for b in products])
+        flags[:, cols] |= (fine[b0.pblock][:, cols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g]
                            & fp_ok & (fp_z > PART_SIGMA))
-    if flags.any():
-        prow_of = np.repeat(np.arange(P), plen)
-        out[:] = flags[prow_of] & ~ex
-    return out
+    outs = []
+    prow_of = np.repeat(np.arange(P), b0.plen) if flags.any() else None
+    for b in products:
+        out = np.zeros((n, m), np.bool_)
+        if prow_of is not None:
+            out[:] = flags[prow_of] & ~b.ex
+        outs.append(out)
+    return outs
 
 
 def _row_medians(a, ok):
@@ -464,7 +508,10 @@ def fine_excess(bp_row, z, protect=None):
     -------
     ndarray of bool (nchan,)
     """
-    lb = np.log(np.maximum(np.asarray(bp_row, dtype=np.float64), 1e-30))
+    rows = np.asarray(bp_row, dtype=np.float64)
+    if rows.ndim == 2:
+        return _fine_excess_joint(rows, z, protect)
+    lb = np.log(np.maximum(rows, 1e-30))
     m = lb.shape[0]
     hit = np.zeros(m, np.bool_)
     if m < 16:
@@ -478,21 +525,54 @@ def fine_excess(bp_row, z, protect=None):
     # three channels away would lift a clean channel's excess: as neighbours, the
     # channels found are replaced by the linear interpolation of the others, and the
     # test is repeated until the channels found no longer change (at most 4 times)
-    found = e > z * sc
+    return _found_channels([lb], e > z * sc, lambda nbs: _loo_excess(lb, nbs[0])[0] > z * sc, protect)
+
+
+def _found_channels(lbs, found, test, protect):
+    """The channels found by :func:`fine_excess`: ``found`` refined by ``test`` (the
+    channels found, given each product's log bandpass with them replaced as
+    neighbours) until they no longer change, at most 4 times; the three outer
+    channels at each end and the protected ones left out."""
+    m = lbs[0].shape[0]
     for _ in range(4):
         if not found.any():
             break
-        nb = np.where(found, np.nan, lb)
-        kernels.fill_nan_1d(nb)
-        e, _ = _loo_excess(lb, nb)
-        now = e > z * sc
+        nbs = []
+        for lb in lbs:
+            nb = np.where(found, np.nan, lb)
+            kernels.fill_nan_1d(nb)
+            nbs.append(nb)
+        now = test(nbs)
         if np.array_equal(now, found):
             break
         found = now
+    hit = np.zeros(m, np.bool_)
     hit[3:m - 3] = found[3:m - 3]
     if protect is not None:
         hit &= ~np.asarray(protect, dtype=np.bool_)
     return hit
+
+
+def _fine_excess_joint(rows, z, protect=None):
+    """:func:`fine_excess` on a feed pair's bandpasses (K, nchan) together: each
+    product's excess in its own robust sigma, summed over sqrt(K) (unit variance
+    again), must pass ``z``; the neighbours found are replaced in every product."""
+    lbs = np.log(np.maximum(rows, 1e-30))
+    k, m = lbs.shape
+    hit = np.zeros(m, np.bool_)
+    if m < 16:
+        return hit
+    scs = []
+    for lb in lbs:
+        inner = _loo_excess(lb)[1][3:m - 3]
+        scs.append(MAD_TO_SIGMA * np.median(np.abs(inner - np.median(inner))))
+    if not all(sc > 0 for sc in scs):
+        return hit
+
+    def joint(nbs):
+        return sum(_loo_excess(lb, nb)[0] / sc for lb, nb, sc in zip(lbs, nbs, scs)) / math.sqrt(k)
+
+    return _found_channels(list(lbs), joint([None] * k) > z, lambda nbs: joint(nbs) > z, protect)
 
 
 def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES):

@@ -27,8 +27,8 @@ import numpy as np
 from rfisieve.detect import _sumthreshold_kernels as kernels
 from rfisieve.detect import _bandpass_kernels as bpk
 from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
-from rfisieve.detect.bandpass import (COMPACT_SHAPES, bandpass_reach, block_bandpass, block_lengths, compact_flags,
-                                      persistent_flags)
+from rfisieve.detect.bandpass import (COMPACT_SHAPES, BlockMeans, bandpass_reach, block_bandpass, block_lengths,
+                                      compact_flags, persistence_test)
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger", "combined_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
@@ -224,7 +224,8 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
                          max_window_freq=128, iterations=3, start_scale=4.0,
                          background_time=15.0, background_freq=5.0, bandpass_dumps=0,
                          persist_dumps=0, persist_sigma=6.0, baseline_channels=64,
-                         compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None):
+                         compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None,
+                         combine_feeds=False):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
@@ -299,6 +300,9 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
         Absolute dump number of the plane's first row (the chunk start less the
         halo): aligns the background's time cells to the scan, so a chunk gives
         the whole scan's result whatever dump it starts at.
+    combine_feeds : bool
+        The band key that makes the engine give a feed pair to
+        :func:`combined_flagger`; without effect on one plane.
 
     Returns
     -------
@@ -317,26 +321,33 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
 
 
 def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=None, **settings):
-    r"""SumThreshold on auto products of one feed pair together (both polarizations).
+    r"""SumThreshold on the two auto products of one feed pair together (both
+    polarizations of one antenna).
 
     Method: one emitter reaches both polarizations (at strengths s_a, s_b) and their
     noise is independent, so the sum of the normalised residuals
     z = (r_a / sigma_a + r_b / sigma_b) / sqrt(2) has unit noise and the excess
     (s_a + s_b) / sqrt(2): for s_b = 0.8 s_a, 1.27 times a's own signal-to-noise
     (sums of independent Gaussians; common practice).  Each product is flagged on its
-    own (:func:`sumthreshold_flagger`, so a product hit alone is still flagged), its
-    last residual kept; SumThreshold (:func:`sumthreshold`, along time, then along
-    frequency with the time pass's detections as flagged, thresholds chi_1 = ``chi1``)
-    runs on z with every product's detections as flagged; a sample found on z is
-    flagged in *every* product of the pair (the emitter is in both).  A sample
-    invalid in any product is invalid in z.
+    own (:func:`sumthreshold_flagger`, every test: a product hit alone is still
+    flagged), its last residual kept on SumThreshold's grid (in units of its own
+    chi_1 sigma, so the two grids share one scale); SumThreshold (along time, then
+    along frequency with the time pass's detections as flagged, thresholds chi_1 =
+    ``chi1``, as in the flagger) and, with ``compact_sigma``, the compact boxes
+    (:func:`rfisieve.detect.bandpass.compact_flags`) run on z with both products'
+    detections and input flags as flagged; with the persistence test on, it runs on
+    the pair's block means together (:func:`rfisieve.detect.bandpass.persistence_test`:
+    each z of the test summed over the products, over sqrt(2)).  A sample found
+    together is flagged in *both* products (the emitter is in both).  A sample invalid in either product is left
+    out of z.  z is formed on the grid, rint((g_a + g_b) / sqrt(2)), clipped as the
+    grid is (:func:`to_grid`).
 
     Parameters
     ----------
-    planes : sequence of ndarray (ntime, nchan)
+    planes : sequence of two ndarray (ntime, nchan)
         The products' powers x.
-    sigmas : sequence of float
-        Each product's noise sigma (:func:`sumthreshold_noise`).
+    sigmas : sequence of two float
+        Each product's noise sigma (:func:`sumthreshold_noise`); None estimates it.
     masks, invalids : sequence of ndarray of bool, optional
         Per product, as for :func:`sumthreshold_flagger`.
     t0, protect, **settings
@@ -344,32 +355,45 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
 
     Returns
     -------
-    list of ndarray of bool
+    list of two ndarray of bool
         Each product's detections: its own, or'ed with those on z.
     """
-    k = len(planes)
-    masks = [None] * k if masks is None else list(masks)
-    invalids = [None] * k if invalids is None else list(invalids)
+    if len(planes) != 2 or len(sigmas) != 2:
+        raise ValueError("combined_flagger takes the two products of one feed pair")
+    masks = [None] * 2 if masks is None else list(masks)
+    invalids = [None] * 2 if invalids is None else list(invalids)
     s = dict(settings)
     s.pop("enabled", None)
-    own, zs = [], []
-    for x, sig, mk, inv in zip(planes, sigmas, masks, invalids):
-        r = np.zeros(np.shape(x), np.float32)
-        det = _flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, residual_out=r, **s)[0]
-        own.append(det)
-        zs.append(r)
-    bad = np.zeros(np.shape(planes[0]), np.bool_)
-    for x, inv in zip(planes, invalids):
-        bad |= ~np.isfinite(np.asarray(x))
-        if inv is not None:
-            bad |= np.asarray(inv, dtype=np.bool_)
-    z = (np.sum(zs, axis=0) / np.sqrt(k)).astype(np.float32)
-    flagged = np.logical_or.reduce(own)
-    chi1 = float(s.get("chi1", 8.0))
-    rho = float(s.get("rho", 1.5))
-    hit = sumthreshold(z, flagged, chi1, rho, s.get("max_window_time", 32), 0, bad)
-    hit |= sumthreshold(z, flagged | hit, chi1, rho, s.get("max_window_freq", 128), 1, bad)
-    return [d | (hit & ~bad) for d in own]
+    s.pop("combine_feeds", None)
+    own, kept = [], []
+    for x, sig, mk, inv, name in zip(planes, sigmas, masks, invalids, ("pair", "work")):
+        keep = {}
+        own.append(_flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, keep=keep, scratch=name, **s)[0])
+        kept.append(keep)
+    if not all(kept):       # a product without a valid sample: nothing to combine
+        return own
+    (ka, kb), (n, m) = kept, own[0].shape
+    mw = ka["max_window"]
+    z = np.empty((n, m), ka["grid"].dtype)
+    lev = np.empty((n, m), np.uint8)
+    _, lo, hi = _grid_args(1.0, mw)
+    rowbad, colbad = kernels.pair_grid(ka["grid"], kb["grid"], ka["lev0"], kb["lev0"], own[0], own[1],
+                                       1.0 / np.sqrt(2.0), lo, hi, z, lev)
+    unit, rho = ka["unit"], float(s.get("rho", 1.5))
+    hit = np.zeros((n, m), np.bool_)
+    _st_time(z, lev, rowbad, colbad, unit, rho, _npass(s.get("max_window_time", 32)), hit, False)
+    _st_freq(z, lev, rowbad, colbad, unit, rho, _npass(s.get("max_window_freq", 128)), hit, True)
+    if s.get("compact_sigma", 0.0):
+        hit |= compact_flags(z, lev, hit, unit / float(s.get("chi1", 8.0)), float(s["compact_sigma"]))
+    hit &= lev != kernels.LEV_INVALID
+    out = [d | hit for d in own]
+    if "blocks" in ka and "blocks" in kb:
+        # the persistence test on the pair's block means together
+        prot = None if protect is None else np.asarray(protect, dtype=np.bool_)
+        for d, p in zip(out, persistence_test([ka["blocks"], kb["blocks"]], float(s.get("persist_sigma", 6.0)),
+                                              prot)):
+            d |= p
+    return out
 
 
 def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
@@ -404,6 +428,7 @@ def sumthreshold_noise(values, invalid=None, mask=None, t0=0, **settings):
     s.pop("enabled", None)
     s.pop("sigma", None)
     s.pop("protect", None)
+    s.pop("combine_feeds", None)
     return _flag(values, mask, invalid=invalid, t0=t0, noise_only=True, **s)[1]
 
 
@@ -414,24 +439,27 @@ STRONG_SIGMA = 4.0
 _local = threading.local()
 
 
-def _scratch():
-    """This thread's scratch buffers of the flagger, reused between calls of the same
-    plane shape (fresh pages cost a page fault each on first touch; the engine calls
-    the flagger once per chunk and product from a few threads)."""
-    work = getattr(_local, "work", None)
-    if work is None:
-        work = _local.work = {}
-    return work
+def _scratch(name="work"):
+    """This thread's scratch buffers ``name`` of the flagger, reused between calls of the
+    same plane shape (fresh pages cost a page fault each on first touch; the engine calls
+    the flagger once per chunk and product from a few threads).  A feed pair's first
+    product uses its own set (:func:`combined_flagger` keeps its buffers while the
+    second product is flagged)."""
+    sets = getattr(_local, "sets", None)
+    if sets is None:
+        sets = _local.sets = {}
+    return sets.setdefault(name, {})
 
 
 def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_freq=128,
           iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
           invalid=None, sigma=None, t0=0, bandpass_dumps=0, persist_dumps=0, persist_sigma=6.0,
-          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, residual_out=None):
-    """The flagger; returns (detections, sigma of the last iteration).  With
-    ``residual_out`` (float32 (ntime, nchan)) it also gets the last iteration's
-    residual in noise sigma (from the grid: clipped at 2 chi_1 above, -M_max chi_1
-    below; 0 where invalid)."""
+          baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, keep=None,
+          scratch="work"):
+    """The flagger; returns (detections, sigma of the last iteration).  With ``keep``
+    (a dict) it also gets the last iteration's residual on the grid (``grid``: chi_1
+    sigma is ``unit`` steps, windows up to ``max_window``) and the levels (``lev0``),
+    copies of this thread's buffers (nothing when the plane has no valid sample)."""
     x = np.ascontiguousarray(values, dtype=np.float32)
     if x.ndim != 2:
         raise ValueError("values must be a 2-D (time, channel) plane")
@@ -448,7 +476,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         sigma = float(sigma)
         if not sigma > 0 or not np.isfinite(sigma):
             raise ValueError("sigma must be a positive finite number, not %r" % (sigma,))
-    work = _scratch()
+    work = _scratch(scratch)
     lev0 = _buf(work, "lev0", np.uint8, (n, m))
     base_ex = _buf(work, "base_ex", np.bool_, (n, m))     # input-flagged or invalid
     rowbad, colbad = kernels.init_flagger(x, inv, invalid is not None, flagged, mask is not None,
@@ -494,8 +522,8 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         # frequency pass on lev0 joined by the time detections in det
         _st_freq(rg, lev0, rowbad, colbad, unit, float(rho), np_f, det, True)
         det, prev = prev, det
-    if residual_out is not None and np.isfinite(sig):
-        np.multiply(rg, float(chi1) / unit, out=residual_out, casting="unsafe")
+    if keep is not None and np.isfinite(sig):
+        keep.update(grid=rg, lev0=lev0, unit=unit, max_window=mw)
     if noise_only or not np.isfinite(sig):
         return prev, sig
     if compact_sigma:
@@ -504,10 +532,12 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
     if bandpass_dumps and persist_dumps:
         lengths = block_lengths(persist_dumps, bandpass_dumps)
         strong = prev & (rg > STRONG_SIGMA * unit / float(chi1))
-        prev |= persistent_flags(raw, base_ex, strong, bp, rowblock, int(t0), sig, lengths,
-                                 int(baseline_channels), float(persist_sigma),
-                                 None if protect is None else np.asarray(protect, dtype=np.bool_),
-                                 int(bandpass_dumps))
+        prot = None if protect is None else np.asarray(protect, dtype=np.bool_)
+        blocks = BlockMeans(raw, base_ex, strong, bp, rowblock, int(t0), sig, int(baseline_channels), lengths,
+                            prot)
+        prev |= persistence_test([blocks], float(persist_sigma), prot)[0]
+        if keep is not None:
+            keep["blocks"] = blocks      # the pair's persistence test reuses its block means
     return prev, sig
 
 
@@ -544,6 +574,10 @@ def sumthreshold_halo(settings):
     in the bandpass blocks (its result at a dump depends on that block's window
     only); the compact boxes add their height less one (2 dumps).  For the L band
     (T = 256, boxes of up to 3 dumps): 303 + 384 + 2 = 689, rounded up to 696.
+    With ``combine_feeds`` (the engine gives a feed pair's two auto products to
+    :func:`combined_flagger`) the pass on the summed residuals, which takes each
+    product's detections as flagged, adds R_st once more: L band 689 + 57 = 746,
+    rounded up to 752.
 
     Parameters
     ----------
@@ -573,4 +607,8 @@ def sumthreshold_halo(settings):
         # dump depends on that block's window only (3 T / 2), already inside
     if s.get("compact_sigma", 0.0):
         halo += max(dt for dt, _ in COMPACT_SHAPES) - 1
+    if s.get("combine_feeds", False):
+        # a feed pair's combined pass (:func:`combined_flagger`) runs SumThreshold once
+        # more on the last residuals, with the products' detections as flagged: R_st more
+        halo += r_st
     return int(-(-halo // ct) * ct)

@@ -9,7 +9,7 @@ import numpy as np
 
 from rfisieve.engine.plan import (detect_halo, halo_span, noise_windows, segment_chunks, segment_of,
                                   split_at_gaps, window_span)
-from rfisieve.engine.planes import (_assemble, _detect_product, _flag_product, _meta, _noise_task,
+from rfisieve.engine.planes import (_assemble_groups, _detect_group, _flag_group, _meta, _noise_task,
                                     _planes, _prepare)
 from rfisieve.errors import RfisieveError
 
@@ -225,9 +225,12 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
     chunks = split_at_gaps(plan["chunks"], segments) if plan else segment_chunks(
         segments, int(run["chunk_dumps"]))
     longest = max(c1 - c0 for c0, c1 in chunks)
-    size = _window_chunks(scan, longest, halo, sched.window(scan.nprod), jobs)
+    size = _window_chunks(scan, longest, halo, sched.window(len(meta["groups"])), jobs)
     names = ["final"] if grow is not None else list(detectors)
     prep_task = dask.delayed(partial(_prepare, meta=meta))
+    # one task per group of products: a feed pair's two auto products together (their
+    # SumThreshold detection combined), every other product alone
+    groups = meta["groups"]
     tasks = {}  # stretch -> (flag task, detect task), band and meta bound once (dask
     #             would walk these nested dicts for every task)
 
@@ -239,22 +242,23 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
             meta["sigma"] = sigmas[0] if len(segments) == 1 else sigmas
         for k, sig in enumerate(sigmas):
             m = meta if sig is None else dict(meta, sigma=sig)
-            tasks[k] = (dask.delayed(partial(_flag_product, band=band, meta=m)),
-                        dask.delayed(partial(_detect_product, band=band, meta=m)))
+            tasks[k] = (dask.delayed(partial(_flag_group, band=band, meta=m)),
+                        dask.delayed(partial(_detect_group, band=band, meta=m)))
 
     def build(block, base, c0, c1, a, b):
         k = segments.index(list(segment_of(c0, segments)))
         flag_task, det_task = tasks[k]
         t0 = a - segments[k][0]  # dump numbers count from the stretch's first dump
+        core = (c0 - a, c1 - a)
         if grow is not None:
-            parts = [flag_task(sched.put(_planes(block, a - base, b - base, p)), p=p,
-                               t0=t0, core=(c0 - a, c1 - a), grow=grow)
-                     for p in range(scan.nprod)]
-            return [dask.delayed(_assemble)(parts, scan.nprod)]
+            parts = [flag_task([sched.put(_planes(block, a - base, b - base, p)) for p in g], group=g,
+                               t0=t0, core=core, grow=grow)
+                     for g in groups]
+            return [dask.delayed(_assemble_groups)(parts, groups, scan.nprod)]
         preps = [prep_task(sched.put(_planes(block, a - base, b - base, p)), p=p)
                  for p in range(scan.nprod)]
-        return [dask.delayed(_assemble)([det_task(preps[p], p=p, detector=det, t0=t0, core=(c0 - a, c1 - a))
-                                         for p in range(scan.nprod)], scan.nprod)
+        return [dask.delayed(_assemble_groups)([det_task([preps[p] for p in g], group=g, detector=det, t0=t0,
+                                                         core=core) for g in groups], groups, scan.nprod)
                 for det in detectors]
 
     run_windows(sched, chunks, scan.ntime, halo, size, lambda a, b: scan.read(a, b, what), build,

@@ -1,4 +1,5 @@
-"""Per-plane work: what one dask task does to one (chunk x product) plane.
+"""Per-plane work: what one dask task does to one (chunk x product) plane, or to the
+two auto products of one antenna's feed pair (:func:`feed_groups`).
 
 Each function here takes numpy planes and returns numpy planes; the detectors it calls
 are pure functions from :mod:`rfisieve.detect`.
@@ -44,6 +45,56 @@ def _sk_edges(meta):
     return meta["sk"]["edges"] if "sk" in meta else SK_EDGES
 
 
+def _st_settings(band):
+    """The flagger's keyword settings of a band (``combine_feeds`` is the engine's)."""
+    st = _sumthreshold_settings(band)
+    st.pop("combine_feeds", None)
+    return st
+
+
+def _antenna_feed(product):
+    """(antenna, feed) of an auto product ``<antenna>.<feed>-<antenna>.<feed>``, or None
+    when the product is not an auto product of an input named that way."""
+    parts = str(product).split("-")
+    if len(parts) != 2 or parts[0] != parts[1]:
+        return None
+    ant, dot, feed = parts[0].rpartition(".")
+    return (ant, feed) if dot and ant and feed else None
+
+
+def feed_groups(products, combine=True):
+    """The products flagged together: tuples of product indices, in product order.
+
+    Rule (docs/design.md 5): inputs are named ``<antenna>.<feed>`` (``pier3.a``); the
+    name before the last dot is the antenna.  The auto products of an antenna form one
+    group when there are exactly two of them, with different feeds (both
+    polarizations of one feed pair); everything else is flagged alone: cross products,
+    autos of inputs without a dot, and an antenna with one auto product or more than
+    two (the pairing is then unclear).  ``combine`` False gives every product alone.
+    """
+    names = [str(p) for p in products]
+    alone = [(p,) for p in range(len(names))]
+    if not combine:
+        return alone
+    by_ant = {}
+    for p, name in enumerate(names):
+        af = _antenna_feed(name)
+        if af is not None:
+            by_ant.setdefault(af[0], []).append((p, af[1]))
+    pair_of = {}
+    for members in by_ant.values():
+        if len(members) == 2 and members[0][1] != members[1][1]:
+            g = (members[0][0], members[1][0])
+            pair_of[g[0]] = pair_of[g[1]] = g
+    groups, seen = [], set()
+    for p in range(len(names)):
+        g = pair_of.get(p, (p,))
+        if g not in seen:
+            seen.add(g)
+            groups.append(g)
+    return groups
+
+
 def _meta(scan, band):
     k = band["kurtosis"]
     meta = {
@@ -52,6 +103,10 @@ def _meta(scan, band):
         "nchan": scan.nchan,
         "nprod": scan.nprod,
         "autos": [bool(a) for a in scan.autos],
+        # products flagged together: the two auto products of a feed pair (band key
+        # sumthreshold.combine_feeds), every other product alone
+        "groups": feed_groups(scan.products, bool(band["sumthreshold"].get("combine_feeds", False))
+                              and band["sumthreshold"]["enabled"]),
         "has_s2": scan.has_s2,
         "accumulations": scan.accumulations,
         "presum": scan.presum,
@@ -95,7 +150,7 @@ def _noise_task(planes, band, meta, p, t0):
     if prep["excluded"].all():
         return np.nan
     return float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0,
-                                    **_sumthreshold_settings(band)))
+                                    **_st_settings(band)))
 
 
 def _s2_invalid(s2):
@@ -147,27 +202,52 @@ def _prepare(planes, p, meta):
     return {"values": values, "invalid": invalid, "excluded": excluded, "s2": planes.get("s2")}
 
 
-def _detect_product(prep, p, detector, band, meta, t0, core, rows=None):
+def _detect_product(prep, p, detector, band, meta, t0, core, rows=None, hit=None):
     """One detector on one (chunk x product) plane with halo rows from dump ``t0``.
 
     ``prep`` is :func:`_prepare`'s result.  Returns (uint8 (rows, chan) with that
     detector's bit and the invalid bit, SK histogram counts of the core rows or None);
-    ``rows`` (default ``core``) are the plane rows returned.
+    ``rows`` (default ``core``) are the plane rows returned.  ``hit``: SumThreshold's
+    detections of this product already found (by the feed pair's combined detection,
+    :func:`_sumthreshold_hits`).
     """
     r = slice(*(core if rows is None else rows))
     values, invalid, excluded = prep["values"], prep["invalid"], prep["excluded"]
     out = np.where(invalid[r], np.uint8(bits.INVALID), np.uint8(0))
     hist = None
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
-        from rfisieve.detect.sumthreshold import sumthreshold_flagger
-
-        hit = sumthreshold_flagger(values, invalid=excluded, sigma=meta["sigma"][p], t0=t0,
-                                   protect=meta.get("protect"), **_sumthreshold_settings(band))
+        if hit is None:
+            hit = _sumthreshold_hits([prep], (p,), band, meta, t0)[0]
         out[hit[r] & ~excluded[r]] |= bits.SUMTHRESHOLD
     elif detector == "sk" and meta["autos"][p] and "sk" in meta:
         hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)
         out[hit[r] & ~excluded[r]] |= bits.SK
     return out, hist
+
+
+def _sumthreshold_hits(preps, group, band, meta, t0):
+    """SumThreshold's detections of each product of ``group``: alone, or for a feed pair
+    by :func:`rfisieve.detect.sumthreshold.combined_flagger` (each product's own
+    detections, or'ed with those on the pair's summed normalised residuals)."""
+    from rfisieve.detect.sumthreshold import combined_flagger, sumthreshold_flagger
+
+    st = _st_settings(band)
+    if len(group) == 1:
+        prep = preps[0]
+        return [sumthreshold_flagger(prep["values"], invalid=prep["excluded"], sigma=meta["sigma"][group[0]],
+                                     t0=t0, protect=meta.get("protect"), **st)]
+    return combined_flagger([pr["values"] for pr in preps], [meta["sigma"][p] for p in group],
+                            invalids=[pr["excluded"] for pr in preps], t0=t0, protect=meta.get("protect"), **st)
+
+
+def _detect_group(preps, group, detector, band, meta, t0, core, rows=None):
+    """:func:`_detect_product` on each product of ``group`` (a feed pair's SumThreshold
+    detections found together); a list of its results in the group's order."""
+    hits = [None] * len(group)
+    if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
+        hits = _sumthreshold_hits(preps, group, band, meta, t0)
+    return [_detect_product(prep, p, detector, band, meta, t0, core, rows=rows, hit=h)
+            for prep, p, h in zip(preps, group, hits)]
 
 
 def _kurtosis(prep, values, excluded, sk, t0, core):
@@ -188,26 +268,41 @@ def _kurtosis(prep, values, excluded, sk, t0, core):
     return hit, sk_block_histogram(values, valid, m, n, d, edges, t0=t0, rows=core)
 
 
-def _flag_product(planes, p, band, meta, t0, core, grow):
-    """Both detectors, SIR growth and the dump cut on one (chunk x product) plane.
+def _flag_group(planes, group, band, meta, t0, core, grow):
+    """Both detectors, SIR growth and the dump cut on the (chunk x product) planes of
+    one group of products (:func:`feed_groups`: a feed pair, or one product alone).
 
     The single-pass form of :func:`detect` + :func:`merge` (used by :func:`flag_scan`):
-    the plane carries the detection halo plus ``grow`` (the merge halo) rows on each
+    the planes carry the detection halo plus ``grow`` (the merge halo) rows on each
     side, so the detections of the core rows +- ``grow`` are exact and the merge of
-    :func:`_merge_plane` sees exactly what it sees in the staged path.  Returns
-    (final uint8 (core rows, chan), SK histogram counts of the core rows or None).
+    :func:`_merge_plane` sees exactly what it sees in the staged path.  Returns, per
+    product of the group, (final uint8 (core rows, chan), SK histogram counts of the
+    core rows or None).
     """
-    prep = _prepare(planes, p, meta)
-    n = prep["values"].shape[0]
+    preps = [_prepare(pl, p, meta) for pl, p in zip(planes, group)]
+    n = preps[0]["values"].shape[0]
     lo, hi = max(0, core[0] - grow), min(n, core[1] + grow)
-    det, hist = None, None
+    dets = [None] * len(group)
+    hists = [None] * len(group)
     for detector in DETECTORS:
-        out, h = _detect_product(prep, p, detector, band, meta, t0, core, rows=(lo, hi))
-        det = out if det is None else det | out
-        hist = h if h is not None else hist
-    flags = planes.get("flags")
-    extra = _extra_bits(det.shape, None if flags is None else flags[lo:hi], meta["static"])
-    return _merge_plane(det, extra, band, (core[0] - lo, core[1] - lo)), hist
+        for i, (out, h) in enumerate(_detect_group(preps, group, detector, band, meta, t0, core, rows=(lo, hi))):
+            dets[i] = out if dets[i] is None else dets[i] | out
+            hists[i] = h if h is not None else hists[i]
+    results = []
+    for pl, det, hist in zip(planes, dets, hists):
+        flags = pl.get("flags")
+        extra = _extra_bits(det.shape, None if flags is None else flags[lo:hi], meta["static"])
+        results.append((_merge_plane(det, extra, band, (core[0] - lo, core[1] - lo)), hist))
+    return results
+
+
+def _assemble_groups(per_group, groups, nprod):
+    """:func:`_assemble` of the groups' results (lists in each group's order)."""
+    parts = [None] * nprod
+    for group, res in zip(groups, per_group):
+        for p, part in zip(group, res):
+            parts[p] = part
+    return _assemble(parts, nprod)
 
 
 def _assemble(parts, nprod):
