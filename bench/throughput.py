@@ -278,7 +278,7 @@ def main():
         if "sigma_clip per plane" in by:
             print(f"  against sigma_clip per plane: {rr['seconds'] / by['sigma_clip per plane']['seconds']:.2f} x "
                   "its time (target <= 1)")
-        print(f"  jobs of the best run: " + ", ".join(f"{k} {v:.2f} s" for k, v in runs["jobs"].items()))
+        print("  jobs of the best run: " + ", ".join(f"{k} {v:.2f} s" for k, v in runs["jobs"].items()))
         print(f"night of {args.night_scans} scans: {many['seconds'] / single['seconds']:.2f} x the same samples "
               "in one scan (target <= 2)")
         for label, r in (("night", many), ("one scan", single)):

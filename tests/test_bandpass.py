@@ -4,7 +4,6 @@ chunk invariance of the L band's detection (rfisieve.detect.bandpass)."""
 import math
 
 import numpy as np
-import pytest
 
 from rfisieve.detect.bandpass import block_bandpass, persistent_flags, block_lengths
 from rfisieve.detect.sumthreshold import sumthreshold_flagger, sumthreshold_halo

@@ -1,5 +1,5 @@
 """The chunked engine: chunk independence, worker independence, invalid samples,
-bad files, and the mask file layout of DESIGN.md 2.2."""
+bad files, and the mask file layout of docs/design.md 3.2."""
 
 import json
 import os
@@ -74,7 +74,7 @@ def test_mask_file_layout(tmp_path):
         assert f.attrs["band_config_text"] == "x: 1"
         assert json.loads(f.attrs["input_identity"])["size"] == os.path.getsize(path)
         assert "rfisieve_version" in f.attrs
-        # no kurtosis bit on the cross product (SK is for power only: DESIGN.md 3)
+        # no kurtosis bit on the cross product (SK is for power only: docs/design.md 4)
         assert not np.any(mask[:, :, -1] & bits.SK)
         assert "diagnostics/sk/counts" in f
 
@@ -218,7 +218,7 @@ def test_other_layout_axis_order(tmp_path):
                                         ("complex64", False), ("complex128", False), ("float16", True)])
 def test_prepare_equals_numpy_definition(dtype, auto):
     # the one-pass kernel against masks.amplitude / masks.invalid_mask and the OR of
-    # the static and input flags written out in numpy (DESIGN.md 2.2, bits 0-2)
+    # the static and input flags written out in numpy (docs/design.md 3.2, bits 0-2)
     from rfisieve.engine.planes import _prepare
     from rfisieve.detect.masks import amplitude, invalid_mask
 
@@ -248,7 +248,7 @@ def test_prepare_equals_numpy_definition(dtype, auto):
 
 @pytest.mark.parametrize("limit,eta", [(0.3, 0.2), (1.0, 0.2), (0.5, 0.0)])
 def test_merge_plane_equals_numpy_definition(limit, eta):
-    # the compiled merge against the bit rules of DESIGN.md 2.2 written out in numpy:
+    # the compiled merge against the bit rules of docs/design.md 3.2 written out in numpy:
     # growth (bit 5) only where the SIR operator adds to the detectors' flags, the dump
     # cut (bit 6) only on samples no other cause flagged
     from rfisieve.engine.planes import _merge_plane

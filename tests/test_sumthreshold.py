@@ -16,7 +16,7 @@ from rfisieve.detect.sumthreshold import (sumthreshold, sumthreshold_1d, sumthre
 
 def brute_sumthreshold(x, flagged, invalid, chi1, rho, max_window):
     """SumThreshold along axis 0 straight from the definition (Offringa et al. 2010,
-    MNRAS 405, 155, sect. 3; DESIGN.md 3): for M = 1, 2, 4, ..., a run of M
+    MNRAS 405, 155, sect. 3; docs/design.md 4): for M = 1, 2, 4, ..., a run of M
     consecutive (valid) samples is flagged when its mean exceeds
     chi_M = chi_1 / rho**log2(M); samples flagged before the pass enter at chi_M;
     invalid samples are left out of the line."""
@@ -204,7 +204,7 @@ def test_line_rfi_recall_and_false_positives():
 
 
 def test_invalid_values_do_not_matter():
-    # Invalid samples are left out (DESIGN.md 3, common practice): NaN at the
+    # Invalid samples are left out (docs/design.md 4, common practice): NaN at the
     # invalid positions gives the same result as finite garbage there.
     rng = np.random.default_rng(3)
     x, _ = _line_rfi_plane(rng, 256, 128)

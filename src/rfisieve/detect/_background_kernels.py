@@ -166,20 +166,6 @@ def fill_gaps(b):
                 b[t, c] = b[src, c]
 
 
-@njit(**_opts)
-def strided_sample(x, exclude, step, out):
-    """Copy x.flat[0::step] where not excluded into out; returns the count."""
-    xf = x.ravel()
-    ef = exclude.ravel()
-    k = 0
-    for i in range(0, xf.shape[0], step):
-        if not ef[i]:
-            v = xf[i]
-            if v == v:
-                out[k] = v
-                k += 1
-    return k
-
 
 @njit(**_opts)
 def _box_rows5(p, tmp, m, r):
@@ -451,8 +437,9 @@ def coarse_interp(G, ct, cf, off, x, lev0, out, mode, H, scale=1.0, lo=0.0, hi=0
 
 
 @njit(**_opts)
-def strided_sample2(x, ex1, ex2, step, out):
-    """As :func:`strided_sample`, excluding where ex1 or ex2."""
+def strided_sample(x, ex1, ex2, step, out):
+    """Copy x.flat[0::step] where neither ex1 nor ex2 is set (and x is not NaN) into out;
+    returns the count."""
     xf = x.ravel()
     e1 = ex1.ravel()
     e2 = ex2.ravel()

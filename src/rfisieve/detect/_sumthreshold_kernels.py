@@ -219,8 +219,6 @@ def _tile_sweep(v, lv, L, thrs, lims, npass, lag, final_lag, ring, s, last, iden
     last (npass + 1, B) int32 are scratch; ident_rows = 0, 1, 2, ... (>= L)."""
     B = v.shape[1]
     RM = ring.shape[0] - 1
-    two = np.uint8(2)
-    zero = np.uint8(0)
     c1 = thrs[1]
     for q in range(npass + 1):
         for b in range(B):
@@ -416,8 +414,6 @@ def st_time_pipe(x, lev0, rows, partial, thrs, lims, npass, det, merge):
     ring = np.zeros((R, m), np.uint8)
     s = np.zeros((max(npass, 1) + 1, m), x.dtype)
     last = np.full((max(npass, 1) + 1, m), -1, np.int32)
-    two = np.uint8(2)
-    zero = np.uint8(0)
     c1 = thrs[1]
     for K in range(L + final_lag):
         if K < L:

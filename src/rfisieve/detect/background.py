@@ -444,7 +444,7 @@ def robust_sigma(x, mask=None, max_samples=ROBUST_MAX_SAMPLES):
     while step > 1 and math.gcd(step, ncol) != 1:
         step += 1
     out = np.empty(-(-a.size // step), np.float32)
-    k = kernels.strided_sample(a, ex, step, out)
+    k = kernels.strided_sample(a, ex, ex, step, out)
     return _mad_sigma(out, k)
 
 
@@ -460,7 +460,7 @@ def robust_sigma2(x, ex1, ex2, max_samples=ROBUST_MAX_SAMPLES):
     C-contiguous 2-D float32 x and bool ex1, ex2)."""
     step = _sample_step(x.size, x.shape[-1], max_samples)
     out = np.empty(-(-x.size // step), np.float32)
-    k = kernels.strided_sample2(x, ex1, ex2, step, out)
+    k = kernels.strided_sample(x, ex1, ex2, step, out)
     return _mad_sigma(out, k)
 
 

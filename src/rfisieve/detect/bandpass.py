@@ -28,12 +28,11 @@ import math
 import numpy as np
 
 from rfisieve.detect import _bandpass_kernels as kernels
+from rfisieve.detect.background import MAD_TO_SIGMA  # noqa: F401  (one home: 1 / Phi^-1(3/4))
 
 __all__ = ["block_bandpass", "persistent_flags", "persistence_test", "BlockMeans", "compact_flags",
            "block_lengths", "COMPACT_SHAPES", "bandpass_reach"]
 
-#: MAD to standard deviation for Gaussian noise, 1 / Phi^-1(3/4) (common practice).
-MAD_TO_SIGMA = 1.482602218505602
 
 #: Sub-blocks (dumps) in which a channel found by the persistence test is flagged, and
 #: the excess (sigma of the sub-block mean) it must show there: an emitter that

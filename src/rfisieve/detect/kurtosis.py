@@ -1,6 +1,6 @@
 """Spectral kurtosis (SK) detector: estimator, thresholds and flagging functions.
 
-Two modes (DESIGN.md 3): (a) the backend recorded S2: one SK per dump with
+Two modes (docs/design.md 4): (a) the backend recorded S2: one SK per dump with
 M = ``accumulations`` (:func:`sk_flag_dumps`); (b) no S2: SK over blocks of M
 consecutive dumps with N = ``accumulations`` (:func:`sk_flag_blocks`).  SK is for power
 (auto products), not cross products.  Only k = N d enters the distribution of SK.

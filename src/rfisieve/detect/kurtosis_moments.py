@@ -63,6 +63,14 @@ def _cumulants_to_moments(kap):
     return mu
 
 
+def _check_m(m):
+    """M as an int; SK needs at least two accumulations."""
+    m = int(m)
+    if m < 2:
+        raise ValueError(f"SK needs M >= 2, got {m}")
+    return m
+
+
 @lru_cache(maxsize=1024)
 def _ratio_raw_moments(m, k, order):
     x_mom = [Fraction(1)] + [_rising(k, 2 * j) for j in range(1, order + 1)]  # E[(P^2)^j]
@@ -88,10 +96,7 @@ def ratio_raw_moments(m, n=1, d=1.0, order=4):
     -------
     tuple of Fraction
     """
-    m = int(m)
-    if m < 2:
-        raise ValueError(f"SK needs M >= 2, got {m}")
-    return _ratio_raw_moments(m, shape_k(n, d), int(order))
+    return _ratio_raw_moments(_check_m(m), shape_k(n, d), int(order))
 
 
 @lru_cache(maxsize=1024)
@@ -107,10 +112,7 @@ def _sk_raw(m, k, order):
 
 def sk_raw_moments(m, n=1, d=1.0, order=4):
     """Exact raw moments E[SK^j], j = 0..order, of the generalized SK estimator (Fractions)."""
-    m = int(m)
-    if m < 2:
-        raise ValueError(f"SK needs M >= 2, got {m}")
-    return _sk_raw(m, shape_k(n, d), int(order))
+    return _sk_raw(_check_m(m), shape_k(n, d), int(order))
 
 
 @lru_cache(maxsize=1024)
@@ -125,10 +127,7 @@ def _sk_central(m, k, order):
 
 def sk_central_moments(m, n=1, d=1.0, order=4):
     """Exact central moments mu_j = E[(SK - 1)^j], j = 0..order (Fractions; mu_1 = 0)."""
-    m = int(m)
-    if m < 2:
-        raise ValueError(f"SK needs M >= 2, got {m}")
-    return _sk_central(m, shape_k(n, d), int(order))
+    return _sk_central(_check_m(m), shape_k(n, d), int(order))
 
 
 def sk_moments(m, n=1, d=1.0):

@@ -4,7 +4,6 @@ only; no files).  The public entry point is :func:`rfisieve.detect.kurtosis.sk_t
 measured accuracy are described in :mod:`rfisieve.detect.kurtosis`.
 """
 
-import math
 from functools import lru_cache
 
 import numpy as np
@@ -25,10 +24,7 @@ class _LazyModule:
 integrate, optimize, special, stats = (_LazyModule(f"scipy.{_m}") for _m in ("integrate", "optimize", "special", "stats"))
 
 from rfisieve.detect.kurtosis_moments import (
-    shape_k,
-    sk_central_moments,
     sk_moments,
-    sk_raw_moments,
 )
 
 #: Threshold methods accepted by :func:`rfisieve.detect.kurtosis.sk_thresholds`.

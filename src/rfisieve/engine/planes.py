@@ -28,7 +28,7 @@ SK_MAX_BINS = 8192
 def sk_histogram_edges(lower, upper, m, n=1, d=1.0):
     """Uniform edges of the SK histogram kept for the review, from 0 past both thresholds.
 
-    SK lies in [0, M N d + 1] (S2 / S1^2 lies in [1/M, 1]; DESIGN.md 3).  The bins are
+    SK lies in [0, M N d + 1] (S2 / S1^2 lies in [1/M, 1]; docs/design.md 4).  The bins are
     (upper - lower) / 100 wide and reach that bound unless that takes more than
     :data:`SK_MAX_BINS` bins, and always reach a quarter of the thresholds' distance past
     the upper one.  One more bin follows: larger values are clipped into it, so the
@@ -120,7 +120,7 @@ def _meta(scan, band):
 
         pfa = k["pfa"] if k.get("pfa") is not None else gaussian_tail(k["sigma"])
         if scan.has_s2:
-            # Mode (a): SK per dump, M = accumulations, N = presum (DESIGN.md 3).
+            # Mode (a): SK per dump, M = accumulations, N = presum (docs/design.md 4).
             m, n = scan.accumulations, scan.presum
         else:
             # Mode (b): blocks of M dumps, N = raw spectra per dump.

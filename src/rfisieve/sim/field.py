@@ -308,7 +308,7 @@ def field_scene(kinds, seed, ntime=4096, nchan=1024, accumulations=512, channel_
 
 
 def write_field_scene(path, truth_path, scene, band="L", integration_time=1.0, start=1.7e9):
-    """Write a :func:`field_scene` as a scan file (DESIGN 2.1 layout) and its truth file."""
+    """Write a :func:`field_scene` as a scan file (docs/design.md 3.1 layout) and its truth file."""
     ntime = scene["data"].shape[0]
     chunks = (min(ntime, 128),) + scene["data"].shape[1:]
     with atomic_output(path) as tmp, h5py.File(tmp, "w") as f:
