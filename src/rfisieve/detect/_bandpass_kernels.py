@@ -63,8 +63,28 @@ def median_inplace(a):
 
 
 @njit(**_opts)
-def column_medians(x, ex, a, b, out, buf):
-    """out[c] = median of x[a:b, c] over rows with ex False (NaN when none).
+def quantile_inplace(a, q):
+    """The q-quantile of a[:] with linear interpolation between order statistics
+    (numpy.quantile's default: position q (n - 1)), reordering a; q = 0.5 is the
+    median of :func:`median_inplace`."""
+    n = a.shape[0]
+    pos = q * (n - 1)
+    k = int(np.floor(pos))
+    lo = _select(a, k)
+    w = pos - k
+    if w == 0.0 or k + 1 >= n:
+        return lo
+    hi = a[k + 1]
+    for i in range(k + 2, n):     # after the select, a[k + 1:] hold the larger values
+        if a[i] < hi:
+            hi = a[i]
+    return lo + w * (hi - lo)
+
+
+@njit(**_opts)
+def column_quantiles(x, ex, a, b, q, out, buf):
+    """out[c] = q-quantile (:func:`quantile_inplace`) of x[a:b, c] over rows with ex
+    False (NaN when none).
 
     The rows are copied transposed in tiles of 64 x 64 (cache-friendly) into
     ``buf`` (nchan, >= b - a), the valid values of each channel first."""
@@ -85,7 +105,7 @@ def column_medians(x, ex, a, b, out, buf):
         if k == 0:
             out[c] = np.nan
         else:
-            out[c] = median_inplace(buf[c, :k])
+            out[c] = quantile_inplace(buf[c, :k], q)
 
 
 @njit(**_opts)
@@ -325,3 +345,22 @@ def masked_row_medians(a, ok, out):
                 buf[k] = a[j, c]
                 k += 1
         out[j] = median_inplace(buf[:k]) if k > 0 else np.nan
+
+
+@njit(**_opts)
+def edge_test(g, lev0, det, thr, out):
+    """out[t, c] = True for free samples (lev0 == 0, not det) with g[t, c] > thr next
+    to a detected sample in the same dump (c - 1, c + 1) or channel (t - 1, t + 1).
+    Returns the number marked."""
+    n, m = g.shape
+    hits = 0
+    for t in range(n):
+        for c in range(m):
+            if lev0[t, c] != 0 or det[t, c] or g[t, c] <= thr:
+                continue
+            near = ((c > 0 and det[t, c - 1]) or (c + 1 < m and det[t, c + 1])
+                    or (t > 0 and det[t - 1, c]) or (t + 1 < n and det[t + 1, c]))
+            if near:
+                out[t, c] = True
+                hits += 1
+    return hits

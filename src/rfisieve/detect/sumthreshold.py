@@ -28,7 +28,7 @@ from rfisieve.detect import _sumthreshold_kernels as kernels
 from rfisieve.detect import _bandpass_kernels as bpk
 from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
 from rfisieve.detect.bandpass import (COMPACT_SHAPES, BlockMeans, bandpass_reach, block_bandpass, block_lengths,
-                                      compact_flags, persistence_test)
+                                      compact_flags, edge_flags, persistence_test)
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger", "combined_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
@@ -385,6 +385,7 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     _st_freq(z, lev, rowbad, colbad, unit, rho, _npass(s.get("max_window_freq", 128)), hit, True)
     if s.get("compact_sigma", 0.0):
         hit |= compact_flags(z, lev, hit, unit / float(s.get("chi1", 8.0)), float(s["compact_sigma"]))
+        hit |= edge_flags(z, lev, hit | own[0] | own[1], unit / float(s.get("chi1", 8.0)))
     hit &= lev != kernels.LEV_INVALID
     out = [d | hit for d in own]
     if "blocks" in ka and "blocks" in kb:
@@ -529,6 +530,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
     if compact_sigma:
         # compact shapes on the last residual (grid steps per sigma: unit / chi1)
         prev |= compact_flags(rg, lev0, prev, unit / float(chi1), float(compact_sigma))
+        prev |= edge_flags(rg, lev0, prev, unit / float(chi1))
     if bandpass_dumps and persist_dumps:
         lengths = block_lengths(persist_dumps, bandpass_dumps)
         strong = prev & (rg > STRONG_SIGMA * unit / float(chi1))
@@ -572,11 +574,12 @@ def sumthreshold_halo(settings):
     on each side (reach 3 T / 2, :func:`rfisieve.detect.bandpass.bandpass_reach`),
     so the detections reach that much further; the persistence test's blocks nest
     in the bandpass blocks (its result at a dump depends on that block's window
-    only); the compact boxes add their height less one (2 dumps).  For the L band
-    (T = 256, boxes of up to 3 dumps): 303 + 384 + 2 = 689, rounded up to 696.
+    only); the compact boxes add their height less one (2 dumps) and the edge test
+    (:func:`rfisieve.detect.bandpass.edge_flags`) one more.  For the L band
+    (T = 256, boxes of up to 3 dumps): 303 + 384 + 3 = 690, rounded up to 696.
     With ``combine_feeds`` (the engine gives a feed pair's two auto products to
     :func:`combined_flagger`) the pass on the summed residuals, which takes each
-    product's detections as flagged, adds R_st once more: L band 689 + 57 = 746,
+    product's detections as flagged, adds R_st once more: L band 690 + 57 = 747,
     rounded up to 752.
 
     Parameters
@@ -606,7 +609,8 @@ def sumthreshold_halo(settings):
         # the persistence test's blocks nest in the bandpass blocks: its result at a
         # dump depends on that block's window only (3 T / 2), already inside
     if s.get("compact_sigma", 0.0):
-        halo += max(dt for dt, _ in COMPACT_SHAPES) - 1
+        # the boxes reach their height less one; the edge test one dump further
+        halo += max(dt for dt, _ in COMPACT_SHAPES) - 1 + 1
     if s.get("combine_feeds", False):
         # a feed pair's combined pass (:func:`combined_flagger`) runs SumThreshold once
         # more on the last residuals, with the products' detections as flagged: R_st more
