@@ -61,6 +61,16 @@ COMPACT_SHAPES = ((1, 2), (1, 3), (1, 4), (1, 6), (2, 1), (2, 2), (2, 3), (3, 1)
 EDGE_SIGMA = 3.0
 
 
+#: The persistence test's threshold where the baseline is rougher than the noise:
+#: z + RIPPLE_FACTOR s_r, s_r = sqrt(s**2 - 1) the roughness beyond the noise (s: the
+#: robust scatter of the excesses, in noise sigma).  A ripple left by the running
+#: median (a standing wave of a few channels' period) has a robust scatter of 1.05
+#: times its amplitude (1.4826 MAD of A sin: 1.4826 x 0.707 A), so 3 s_r clears its
+#: peaks three times over, where z s (6 s) asked an emitter to stand 6 ripple
+#: amplitudes out: a 7-channel block at 5 sigma per dump on a 3 % ripple was missed.
+RIPPLE_FACTOR = 3.0
+
+
 #: Dumps averaged before the bandpass quantile (aligned to absolute dump numbers).
 GROUP_DUMPS = 8
 
@@ -194,12 +204,13 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     e = m_j / (g_j B_k) - 1 has noise sigma / sqrt(n_j) (sigma: a dump's relative
     noise); a channel is flagged over the block when
 
-    .. math:: e \sqrt{n_j} / \sigma > z \max(1, s_j)
+    .. math:: e \sqrt{n_j} / \sigma > z + 3 \sqrt{\max(0, s_j^2 - 1)}
 
     with s_j the robust scatter (1.4826 MAD) over channels of the excess over the
-    running median (below) in the same units: where
-    the baseline is rougher than the noise (ripple of a few channels' period), the
-    threshold rises with it.  Only channels with n_j >= L / 4 are tested.  An
+    running median (below) in the same units: where the baseline is rougher than
+    the noise (ripple of a few channels' period), the threshold rises by three times
+    the roughness beyond the noise (``RIPPLE_FACTOR``; a ripple's peaks lie at about
+    one robust scatter).  Only channels with n_j >= L / 4 are tested.  An
     emitter up to about h channels wide stands out of the running median (a median
     ignores under half of its window).  The excess is taken over two baselines and
     the smaller one counts: the running median, which follows a monotone edge, knee
@@ -373,8 +384,8 @@ def persistence_test(products, z, protect=None):
         with np.errstate(all="ignore"):
             med = _row_medians(zm, ok)
             sc = MAD_TO_SIGMA * _row_medians(np.abs(zm - med[:, None]), ok)
-        sc = np.where(np.isfinite(sc), np.maximum(1.0, sc), np.inf)
-        hit = ok & (zs > z * sc[:, None])
+        thr = np.where(np.isfinite(sc), z + RIPPLE_FACTOR * np.sqrt(np.maximum(0.0, sc * sc - 1.0)), np.inf)
+        hit = ok & (zs > thr[:, None])
         cand |= hit[grp]
     flags = np.zeros((P, m), np.bool_)
     cols = np.flatnonzero(cand.any(axis=0))
