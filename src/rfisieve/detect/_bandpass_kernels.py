@@ -364,3 +364,54 @@ def edge_test(g, lev0, det, thr, out):
                 out[t, c] = True
                 hits += 1
     return hits
+
+
+@njit(**_opts)
+def run_end_scores(x, ex, bp, rowblock, inv_sigma, crow, bcol, bpart, pin, pout, score):
+    """Adds one product's log-likelihood ratios of the dumps of each boundary part to
+    ``score`` (nb, S): for boundary i (channel bcol[i], boundary part bpart[i], the
+    run's part inside it pin[i] and the unflagged part outside pout[i]), with
+    r_t = (x[t, c] / bp[rowblock[t], c] - 1) / sigma and the inside and outside
+    means mu_in, mu_out of r over the samples not excluded, score[i, j] +=
+    (mu_in - mu_out) (r_t - (mu_in + mu_out) / 2) for the j-th dump of the boundary
+    part counted from the inside (0 for an excluded sample)."""
+    for i in range(bcol.shape[0]):
+        c = bcol[i]
+        mus = np.zeros(2)
+        for side in range(2):
+            q = pin[i] if side == 0 else pout[i]
+            s = 0.0
+            k = 0
+            for t in range(crow[q], crow[q + 1]):
+                if not ex[t, c]:
+                    s += (x[t, c] / bp[rowblock[t], c] - 1.0) * inv_sigma
+                    k += 1
+            mus[side] = s / k if k > 0 else np.nan
+        d = mus[0] - mus[1]
+        if not (d == d):
+            continue
+        mid = 0.5 * (mus[0] + mus[1])
+        a, b = crow[bpart[i]], crow[bpart[i] + 1]
+        inward_first = pin[i] < bpart[i]          # the run lies before the boundary part
+        for j in range(b - a):
+            t = a + j if inward_first else b - 1 - j
+            if not ex[t, c]:
+                r = (x[t, c] / bp[rowblock[t], c] - 1.0) * inv_sigma
+                score[i, j] += d * (r - mid)
+
+
+@njit(**_opts)
+def clear_run_ends(rows, crow, bcol, bpart, pin, keep):
+    """rows[t, bcol[i]] = False for the dumps of boundary part bpart[i] beyond the
+    first keep[i] counted from the run's inside (pin[i] before or after it)."""
+    for i in range(bcol.shape[0]):
+        a, z = crow[bpart[i]], crow[bpart[i] + 1]
+        if keep[i] >= z - a:
+            continue
+        c = bcol[i]
+        if pin[i] < bpart[i]:
+            for t in range(a + keep[i], z):
+                rows[t, c] = False
+        else:
+            for t in range(a, z - keep[i]):
+                rows[t, c] = False

@@ -262,7 +262,8 @@ class BlockMeans:
     (:func:`persistence_test`) share them.  Arguments as for :func:`persistent_flags`."""
 
     def __init__(self, values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect=None):
-        x = np.ascontiguousarray(values, dtype=np.float32)
+        self.x = x = np.ascontiguousarray(values, dtype=np.float32)
+        self.rowblock = rowblock
         self.ex = np.ascontiguousarray(exclude, dtype=np.bool_)
         self.n, self.m = n, m = x.shape
         self.sigma, self.bp, self.lengths = sigma, bp, tuple(lengths)
@@ -410,12 +411,51 @@ def persistence_test(products, z, protect=None):
                            & fp_ok & (fp_z > PART_SIGMA))
     outs = []
     prow_of = np.repeat(np.arange(P), b0.plen) if flags.any() else None
+    rows = np.zeros((n, m), np.bool_)
+    if prow_of is not None:
+        rows[:] = flags[prow_of]
+        _trim_run_ends(products, flags, rows)
     for b in products:
-        out = np.zeros((n, m), np.bool_)
-        if prow_of is not None:
-            out[:] = flags[prow_of] & ~b.ex
-        outs.append(out)
+        outs.append(rows & ~b.ex)
     return outs
+
+
+def _trim_run_ends(products, flags, rows):
+    r"""The dumps of a run's end parts where the emitter is on (in place on ``rows``).
+
+    Method: a run of flagged parts (``PART_DUMPS`` dumps) along time ends in a part
+    that an emitter switching on or off fills only in part.  Between the run's last
+    part inside (level mu_in) and the unflagged part outside (mu_out), the switch is
+    placed at the maximum-likelihood change point of a step of known levels in
+    Gaussian noise: the dumps of the end part, counted from the inside, are kept up
+    to the k that maximises the cumulative sum of the log-likelihood ratios
+    (mu_in - mu_out)(r_t - (mu_in + mu_out) / 2) (Page 1954, Biometrika 41, 100;
+    Hinkley 1970, Biometrika 57, 1), r_t the dump's excess over its bandpass in its
+    own noise sigma, summed over a feed pair's products.  The gain is taken as
+    constant over the three parts (it drifts slowly).  Runs one part long, and ends
+    at the plane's edges, are kept whole."""
+    b0 = products[0]
+    P = flags.shape[0]
+    if P < 3:
+        return
+    inside_before = flags[1:-1] & ~flags[2:] & flags[:-2]      # run ends at part p (p = 1 .. P - 2)
+    inside_after = flags[1:-1] & ~flags[:-2] & flags[2:]       # run starts at part p
+    pr, cr = np.nonzero(inside_before)
+    pl, cl = np.nonzero(inside_after)
+    bpart = np.concatenate([pr, pl]).astype(np.int64) + 1
+    bcol = np.concatenate([cr, cl]).astype(np.int64)
+    if bpart.size == 0:
+        return
+    pin = np.concatenate([pr, pl + 2]).astype(np.int64)
+    pout = np.concatenate([pr + 2, pl]).astype(np.int64)
+    S = int(b0.plen.max())
+    score = np.zeros((bpart.size, S))
+    for b in products:
+        kernels.run_end_scores(b.x, b.ex, b.bp, b.rowblock, 1.0 / b.sigma, b.crow, bcol, bpart, pin, pout,
+                               score)
+    cum = np.cumsum(score, axis=1)
+    keep = np.where(cum.max(axis=1) > 0, np.argmax(cum, axis=1) + 1, 0).astype(np.int64)
+    kernels.clear_run_ends(rows, b0.crow, bcol, bpart, pin, keep)
 
 
 def _row_medians(a, ok):

@@ -27,8 +27,8 @@ import numpy as np
 from rfisieve.detect import _sumthreshold_kernels as kernels
 from rfisieve.detect import _bandpass_kernels as bpk
 from rfisieve.detect.background import _buf, cell_size, coarse_reach, coarse_residual, robust_sigma2
-from rfisieve.detect.bandpass import (COMPACT_SHAPES, BlockMeans, bandpass_reach, block_bandpass, block_lengths,
-                                      compact_flags, edge_flags, persistence_test)
+from rfisieve.detect.bandpass import (COMPACT_SHAPES, PART_DUMPS, BlockMeans, bandpass_reach, block_bandpass,
+                                      block_lengths, compact_flags, edge_flags, persistence_test)
 
 __all__ = ["window_sizes", "sumthreshold", "sumthreshold_1d", "sumthreshold_flagger", "combined_flagger",
            "sumthreshold_noise", "threshold_factors", "sumthreshold_halo", "grid_unit", "to_grid"]
@@ -570,17 +570,18 @@ def sumthreshold_halo(settings):
     303, rounded up to 304 dumps.
 
     With the bandpass divided out first (``bandpass_dumps`` = T), the residual at a
-    dump depends on its block's bandpass, a median over the block and half a block
+    dump depends on its block's bandpass, a quantile over the block and half a block
     on each side (reach 3 T / 2, :func:`rfisieve.detect.bandpass.bandpass_reach`),
     so the detections reach that much further; the persistence test's blocks nest
     in the bandpass blocks (its result at a dump depends on that block's window
-    only); the compact boxes add their height less one (2 dumps) and the edge test
+    only), and the trimming of its runs' ends looks one part (``PART_DUMPS`` = 16)
+    beyond; the compact boxes add their height less one (2 dumps) and the edge test
     (:func:`rfisieve.detect.bandpass.edge_flags`) one more.  For the L band
-    (T = 256, boxes of up to 3 dumps): 303 + 384 + 3 = 690, rounded up to 696.
+    (T = 256, boxes of up to 3 dumps): 303 + 384 + 16 + 3 = 706, rounded up to 712.
     With ``combine_feeds`` (the engine gives a feed pair's two auto products to
     :func:`combined_flagger`) the pass on the summed residuals, which takes each
-    product's detections as flagged, adds R_st once more: L band 690 + 57 = 747,
-    rounded up to 752.
+    product's detections as flagged, adds R_st once more: L band 706 + 57 = 763,
+    rounded up to 768.
 
     Parameters
     ----------
@@ -607,7 +608,10 @@ def sumthreshold_halo(settings):
         # the residual at a dump depends on its block's bandpass: reach 3 T / 2
         halo += bandpass_reach(tb)
         # the persistence test's blocks nest in the bandpass blocks: its result at a
-        # dump depends on that block's window only (3 T / 2), already inside
+        # dump depends on that block's window only (3 T / 2), already inside, and
+        # the run ends' trimming looks one part beyond
+        if s.get("persist_dumps", 0):
+            halo += PART_DUMPS
     if s.get("compact_sigma", 0.0):
         # the boxes reach their height less one; the edge test one dump further
         halo += max(dt for dt, _ in COMPACT_SHAPES) - 1 + 1
