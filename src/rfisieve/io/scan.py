@@ -313,6 +313,12 @@ class Scan:
     def shape(self):
         return (self.ntime, self.nchan, self.nprod)
 
+    @property
+    def first_auto(self):
+        """Index of the first auto product (0 when there is none): the product of the
+        review's data image."""
+        return int(np.flatnonzero(self.autos)[0]) if self.autos.any() else 0
+
     def _read(self, ds, start, stop, prod=None):
         def axis_sel(ax):
             if ax == "time":

@@ -4,8 +4,9 @@
 (:mod:`rfisieve.review.occupancy`) into ``<outdir>/occupancy/run.csv`` and ``run.h5``, draws
 the figures into ``<outdir>/report/`` and writes ``<outdir>/report/index.html``, one
 self-contained page (images embedded as base64 ``data:`` URIs) that opens from disk.
-It also reads, read-only, each scan's mask file (settings and version as used), the scan
-file itself (a downsampled dynamic spectrum) and ``<outdir>/failed_scans.csv``
+It also reads, read-only, each scan's mask file (settings and version as used), the data
+image the flag job stored in the occupancy file (a downsampled dynamic spectrum; the scan
+file itself only for an occupancy file without one) and ``<outdir>/failed_scans.csv``
 (:mod:`rfisieve.review.provenance`); each of these may be missing, and the page says so.
 
 Page, top to bottom: overview cards (the kurtosis card says "check" whenever its inputs
@@ -158,7 +159,8 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
 
     Besides the per-scan occupancy files it reads, read-only, each scan's mask file
     (settings and version, :func:`rfisieve.review.provenance.mask_provenance`), the
-    scan file itself for a downsampled dynamic spectrum (``data_preview``), and
+    downsampled dynamic spectrum (``data_preview``: the occupancy file's ``/image/data``,
+    or the scan file itself for an occupancy file without it), and
     ``<outdir>/failed_scans.csv``.  The per-scan figures are drawn in ``workers``
     processes.  Returns the path of ``index.html``.
     """
@@ -238,7 +240,9 @@ def _scan_figure(job):
 
     path, s, ident = job
     data, note = None, "not read (data_preview=False)"
-    if ident is not None:
+    if ident is not None and "image/data" in s:  # taken by the flag job while it read the scan
+        data, note = s["image/data"], str(s["attrs"].get("data_image_note", ""))
+    elif ident is not None:  # an occupancy file without it: read the scan file
         data, note = pv.data_preview(ident.get("path"), s["image/time_start"], s["image/chan_start"],
                                      expect_size=ident.get("size"))
     rp.scan_image(path, s, data=data, data_note=note if data is not None else "")
