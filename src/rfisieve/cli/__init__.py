@@ -412,11 +412,15 @@ def cmd_run(args):
                           "no longer running)")
             guard.clear_stale_snakemake_lock(root)
             guard.remove_leftovers(outdir)
-            guard.memory_advice(args.night_paths, args.night_run,
-                                os.path.join(str(root), args.night_run["bands_dir"]), args.cores)
         started = time.time()
         with guard.ChildGuard() as child:
             proc = night_run.start(cmd, root, args, launch=child.start)
+            if lock is not None:
+                # while Snakemake starts (its import and the night's checks take the first
+                # second, before any job): its messages wait in the pipe, so the advice
+                # still comes first on the terminal
+                guard.memory_advice(args.night_paths, args.night_run,
+                                    os.path.join(str(root), args.night_run["bands_dir"]), args.cores)
             rc = night_run.wait(proc, outdir, args)
         child.check()  # SIGINT/SIGTERM/SIGHUP: snakemake was stopped; one line, exit 128 + signal
         return night_run.finish(rc, outdir, args, root, started)

@@ -161,7 +161,7 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     (settings and version, :func:`rfisieve.review.provenance.mask_provenance`), the
     downsampled dynamic spectrum (``data_preview``: the occupancy file's ``/image/data``,
     or the scan file itself for an occupancy file without it), and
-    ``<outdir>/failed_scans.csv``.  The per-scan figures are drawn in ``workers``
+    ``<outdir>/failed_scans.csv``.  The figures are drawn in ``workers``
     processes.  Returns the path of ``index.html``.
     """
     from rfisieve import __version__
@@ -193,30 +193,33 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
                             "band_settings_json": json.dumps(settings, sort_keys=True),
                             "rfisieve_version": __version__})
 
+    # Every figure is one job (the kurtosis figures one together, with the SK summaries
+    # the page needs), drawn in up to ``workers`` forked processes; the longest first.
     figs = {"band": {}, "scan": {}, "kurtosis": [], "change": {}, "night": None, "shown": {}, "data_note": {}}
-    if scans:
-        p = os.path.join(rep_dir, "night.png")
-        rp.night_fraction(p, night_series(scans))
-        figs["night"] = p
-    for band, agg in bands.items():
-        p = os.path.join(rep_dir, f"band_{band}.png")
-        figs["shown"][band] = rp.band_occupancy(p, band, agg, emitters)
-        figs["band"][band] = p
-        if prev is not None:
-            p = os.path.join(rep_dir, f"change_{band}.png")
-            before = previous_on_grid(prev, band, agg["freq"])
-            rp.change_plot(p, band, agg["freq"], fraction(agg["flagged"], agg["samples"]), before)
-            figs["change"][band] = (p, before)
-    jobs = []
+    jobs = [("kurtosis", ([{"attrs": s["attrs"], "sk": s.get("sk")} for s in scans], rep_dir))]
     for s in scans:
         name = str(s["attrs"]["scan"])
         ident = (provs[name].get("input") or {}) if data_preview else None
-        p = os.path.join(rep_dir, f"scan_{name}.png")
-        jobs.append((p, s, ident))
-        figs["scan"][name] = p
-    for name, note in zip((str(s["attrs"]["scan"]) for s in scans), _map(_scan_figure, jobs, workers)):
-        figs["data_note"][name] = note
-    sk_summaries, figs["kurtosis"] = kurtosis_figures(scans, rep_dir)
+        figs["scan"][name] = os.path.join(rep_dir, f"scan_{name}.png")
+        jobs.append(("scan", (figs["scan"][name], s, ident)))
+    for band, agg in bands.items():
+        figs["band"][band] = os.path.join(rep_dir, f"band_{band}.png")
+        jobs.append(("band", (figs["band"][band], band, agg, emitters)))
+        if prev is not None:
+            p = os.path.join(rep_dir, f"change_{band}.png")
+            before = previous_on_grid(prev, band, agg["freq"])
+            jobs.append(("change", (p, band, agg["freq"], fraction(agg["flagged"], agg["samples"]), before)))
+            figs["change"][band] = (p, before)
+    if scans:
+        figs["night"] = os.path.join(rep_dir, "night.png")
+        jobs.append(("night", (figs["night"], night_series(scans))))
+    for (kind, args), result in zip(jobs, _map(_figure, jobs, workers)):
+        if kind == "kurtosis":
+            sk_summaries, figs["kurtosis"] = result
+        elif kind == "scan":
+            figs["data_note"][str(args[1]["attrs"]["scan"])] = result
+        elif kind == "band":
+            figs["shown"][args[1]] = result
 
     ranges = annotated_ranges(bands, emitters, threshold)
     ctx = {"provs": provs, "settings": settings, "failed": failed, "failed_note": failed_note,
@@ -230,7 +233,18 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     return index
 
 
+def _figure(job):
+    """Draw one figure job of :func:`build_review`: ``(kind, args)``; returns what the page
+    needs of it (the data note of a scan figure, the emitters shown on a band figure,
+    the SK summaries and figure list of the kurtosis figures)."""
+    from rfisieve.review import plots as rp
 
+    kind, args = job
+    if kind == "scan":
+        return _scan_figure(args)
+    if kind == "kurtosis":
+        return kurtosis_figures(*args)
+    return {"band": rp.band_occupancy, "change": rp.change_plot, "night": rp.night_fraction}[kind](*args)
 
 
 def _scan_figure(job):
