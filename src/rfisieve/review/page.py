@@ -164,8 +164,16 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     ``<outdir>/failed_scans.csv``.  The figures are drawn in ``workers``
     processes.  Returns the path of ``index.html``.
     """
+    pool = _start_pool(workers)  # its processes import matplotlib while this one reads
+    try:
+        return _build_review(outdir, scan_files, previous, emitters_path, bands_dir, threshold, data_preview, pool)
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+
+def _build_review(outdir, scan_files, previous, emitters_path, bands_dir, threshold, data_preview, pool):
     from rfisieve import __version__
-    from rfisieve.review import plots as rp
     from rfisieve.review import provenance as pv
 
     scans = [occ.read_scan_h5(p) for p in scan_files]
@@ -213,7 +221,7 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     if scans:
         figs["night"] = os.path.join(rep_dir, "night.png")
         jobs.append(("night", (figs["night"], night_series(scans))))
-    for (kind, args), result in zip(jobs, _map(_figure, jobs, workers)):
+    for (kind, args), result in zip(jobs, _map(_figure, jobs, pool)):
         if kind == "kurtosis":
             sk_summaries, figs["kurtosis"] = result
         elif kind == "scan":
@@ -263,17 +271,29 @@ def _scan_figure(job):
     return note
 
 
-def _map(fn, items, workers):
-    """``map(fn, items)`` in up to ``workers`` forked processes (in this one when 1)."""
-    items = list(items)
-    workers = max(1, min(int(workers or 1), len(items)))
-    if workers == 1:
-        return [fn(x) for x in items]
+def _load_plots():
+    from rfisieve.review import plots  # noqa: F401
+
+
+def _start_pool(workers):
+    """``workers`` forked processes for the figures, started now, each importing
+    matplotlib as it starts (None for one worker: the figures are then drawn here)."""
+    if int(workers or 1) <= 1:
+        return None
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
-    with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
-        return list(pool.map(fn, items))
+    pool = ProcessPoolExecutor(int(workers), mp_context=multiprocessing.get_context("fork"),
+                               initializer=_load_plots)
+    pool.submit(int)  # a fork-based pool starts all its processes at the first task
+    return pool
+
+
+def _map(fn, items, pool):
+    """``map(fn, items)`` in ``pool`` (in this process when None)."""
+    if pool is None:
+        return [fn(x) for x in items]
+    return list(pool.map(fn, items))
 
 
 def kurtosis_figures(scans, rep_dir):

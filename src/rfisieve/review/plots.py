@@ -17,22 +17,8 @@ from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 
 from rfisieve.review.occupancy import BIT_NAMES, fraction  # noqa: E402
 
-PAPER = "#fbf8f1"
-INK = "#23202b"
-GRID = "#d9d2c3"
-
-#: One colour per cause bit, in bit order.
-CAUSE_COLOURS = {
-    "upstream": "#8c8577",      # warm grey
-    "invalid": "#3b3355",       # aubergine
-    "known": "#c9a227",         # mustard
-    "sk": "#1f6f8b",            # petrol blue
-    "sumthreshold": "#d1495b",  # coral red
-    "grown": "#66a182",         # sage green
-    "cut": "#a05195",           # orchid
-}
-EMITTER_COLOUR = "#7d93ab"
-PROTECTED_COLOUR = "#4f7a3a"
+from rfisieve.review.palette import (CAUSE_COLOURS, EMITTER_COLOUR, GRID, INK, PAPER,  # noqa: E402,F401
+                                     PROTECTED_COLOUR)
 
 STYLE = {
     "figure.facecolor": PAPER, "axes.facecolor": PAPER, "savefig.facecolor": PAPER,
