@@ -81,6 +81,58 @@ def test_flag_job_counts_equal_the_mask_files_own_counts(tmp_path, hot):
     assert sha256(scan) == before
 
 
+def _with_bad_samples(path):
+    """NaN, zero and negative powers in a few dumps of the first product (left out of the image)."""
+    with h5py.File(path, "a") as f:
+        d = f["data"][()]
+        d[5, 3:9, 0] = np.nan
+        d[6, :, 0] = 0.0
+        d[40:44, 7, 0] = -1.0
+        f["data"][...] = d
+
+
+def test_flag_jobs_data_image_is_the_one_read_from_the_scan_file(tmp_path):
+    """The data image stored by the flag job equals the one the review used to read from
+    the scan file (brute force: :func:`data_preview`, dump by dump from the file)."""
+    from rfisieve.cli.night import flag_scans
+    from rfisieve.review import provenance, tables
+
+    scan = tmp_path / "scans" / "s.h5"
+    scan.parent.mkdir()
+    make_scan(scan, ntime=1500, nchan=40, nprod=2, seed=5, upstream=True)
+    _with_bad_samples(scan)
+    outdir = tmp_path / "out"
+    rec, = flag_scans([scan], outdir, _run(tmp_path))
+    assert rec["status"] == "flagged", rec
+    got = tables.read_scan_h5(outdir / "occupancy" / "s.h5")
+    want, note = provenance.data_preview(str(scan), got["image/time_start"], got["image/chan_start"])
+    assert want is not None, note
+    np.testing.assert_array_equal(got["image/data"], want)   # NaN where the file gave nothing valid
+    assert got["attrs"]["data_image_note"] == note
+
+
+@pytest.mark.parametrize("step,overlap", [(7, 3), (5, 0), (64, 10)])
+def test_data_image_from_overlapping_blocks_that_split_its_bins(tmp_path, step, overlap):
+    """Blocks of any length, overlapping or not, that split a bin's dumps between them
+    give the image read from the file (:func:`data_preview`)."""
+    from rfisieve.io.scan import open_scan
+    from rfisieve.review import counts, provenance
+
+    scan = tmp_path / "s.h5"
+    make_scan(scan, ntime=300, nchan=24, nprod=3, seed=6, upstream=True)
+    _with_bad_samples(scan)
+    ts, cs = counts.bin_starts(300, 70), counts.bin_starts(24, 10)
+    want, note = provenance.data_preview(str(scan), ts, cs)
+    with open_scan(scan) as sc:
+        image = provenance.DataImage(ts, cs, sc.first_auto, sc.products[sc.first_auto])
+        for a in range(0, 300, step):
+            image.add(max(0, a - overlap), sc.read(max(0, a - overlap), a + step, ("data", "flags")))
+    got, got_note = image.result()
+    np.testing.assert_array_equal(got, want)
+    assert got_note == note
+    assert provenance.DataImage(ts, cs, 0, "x").result() is None   # nothing seen: no image
+
+
 def test_outputs_that_stand_are_kept_and_stale_ones_redone(tmp_path):
     from rfisieve.cli.night import flag_scans
 

@@ -175,6 +175,25 @@ def test_expected_curve_uses_published_thresholds():
     assert dist.ppf(1 - 0.0013499) == pytest.approx(1.28212, abs=2e-3)
 
 
+@pytest.mark.parametrize("m,n,d", [(8, 1, 1.0), (64, 1, 1.0), (300, 10, 1.0), (1024, 4, 0.5), (100000, 1, 1.0)])
+def test_pearson3_without_scipy_stats_is_scipy_stats_pearson3(m, n, d):
+    # scipy.stats.pearson3 itself (the reference implementation): the review's own copy
+    # must give the very same numbers (bit for bit), so the figures and page do not change
+    from scipy import stats
+
+    from rfisieve.detect.kurtosis_moments import sk_moments
+    from rfisieve.review.plots import pearson3
+
+    mean, var, skew, _ = sk_moments(m, n, d)
+    ours, ref = pearson3(skew, mean, np.sqrt(var)), stats.pearson3(skew, loc=mean, scale=np.sqrt(var))
+    x, q = np.linspace(-1.0, 4.0, 5001), np.linspace(0.0, 1.0, 2001)
+    for name, arg in (("pdf", x), ("cdf", x), ("ppf", q)):
+        np.testing.assert_array_equal(getattr(ours, name)(arg), getattr(ref, name)(arg), err_msg=name)
+        for v in (0.0, 1e-9, 0.7, 1.0):
+            got, want = getattr(ours, name)(v), getattr(ref, name)(v)
+            assert np.shape(got) == np.shape(want) and (got == want or np.isnan(got) and np.isnan(want)), (name, v)
+
+
 CHROMIUM = "/usr/bin/chromium"
 
 

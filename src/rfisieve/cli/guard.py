@@ -238,7 +238,7 @@ def clear_stale_snakemake_lock(checkout):
 # -- leftovers ---------------------------------------------------------------------
 def remove_leftovers(outdir):
     """Remove hidden temporary files of outputs that killed runs left in ``outdir``."""
-    from rfisieve.io.scan import remove_partials
+    from rfisieve.io.atomic import remove_partials
 
     removed = remove_partials(outdir)
     if removed:

@@ -3,7 +3,8 @@
 ``rfisieve flag`` is the one job per scan: it checks the scan, checks the night's plan
 against the file it reads, runs both detectors and the merge in one pass over the scan
 (:func:`rfisieve.engine.stages.flag_scan`: (chunk x product) dask tasks over one read of
-each chunk), counts occupancy from the finished mask in one compiled pass, and ends
+each chunk), counts occupancy from the finished mask in one compiled pass, takes the
+review's data image from the data as they are read, and ends
 with the scan record (:mod:`rfisieve.engine.night`).  A scan that fails at any stage
 gets a record saying where and why, and the job exits 0, so that the other scans and
 the review go on; ``--strict`` exits 2 instead.
@@ -119,10 +120,10 @@ def flag_one(scan_path, outputs, run, expect=None, keep_partial=None, strict=Fal
             nt, nc, npr = entry["shape"]
             prog = ProgressFile(outputs.get("progress"), record["scan"], nt * nc * npr,
                                 f"flag {os.path.basename(str(scan_path))}")
-            counted = _flag_stage(scan_path, outputs, band, source, run, prog, written, entry, jobs)
+            counted, image = _flag_stage(scan_path, outputs, band, source, run, prog, written, entry, jobs)
             if keep_partial:
                 _keep_partial(scan_path, keep_partial, record["scan"], band, run, written, jobs)
-            _occupancy_stage(outputs, written, counted)
+            _occupancy_stage(outputs, written, counted, image)
         record.update(status="flagged", stage="", reason="", reused=bool(reuse),
                       outputs={k: os.path.abspath(outputs[k]) for k in ("mask", "occupancy_csv", "occupancy_h5")})
     except _ScanFailed as err:
@@ -171,25 +172,29 @@ def flag_scans(paths, outdir, run, expect=None, keep_partial=False, strict=False
 
 
 def _flag_stage(scan_path, outputs, band, source, run, prog, written, entry, jobs=1):
-    """Flag the scan into its mask file; returns the occupancy counts taken while the
-    mask was in memory (a ScanOccupancy), or None when the per-channel cut changed the
-    mask after that (the counts are then taken from the file)."""
+    """Flag the scan into its mask file; returns (counts, data image): the occupancy
+    counts taken while the mask was in memory (a ScanOccupancy), or None when the
+    per-channel cut changed the mask after that (the counts are then taken from the
+    file); and the review's data image taken while the data were in memory
+    (:meth:`rfisieve.review.provenance.DataImage.result`)."""
     import rfisieve.engine as engine
     from rfisieve.engine import night
     from rfisieve.review.counts import ScanOccupancy
+    from rfisieve.review.provenance import DataImage
 
     stage = "flag"
     acc = ScanOccupancy(*entry["shape"])
+    image = DataImage(acc.time_start, acc.chan_start, *entry["image_product"])
     try:
         done = engine.flag_scan(scan_path, outputs["mask"], band, run, band_source=source, progress=prog,
-                                jobs=jobs, observe=acc.add)
+                                jobs=jobs, observe=acc.add, observe_data=image.add)
     except RfisieveError as err:
         raise _ScanFailed(stage, err) from None
     written.append(outputs["mask"])
     if night.identity(scan_path) != entry["identity"]:
         raise _ScanFailed(stage, f"{scan_path}: changed while it was being flagged; its mask is "
                                  "discarded, run again to flag it as it is now")
-    return None if done["channel_cut"] else acc
+    return (None if done["channel_cut"] else acc), image.result()
 
 
 def _keep_partial(scan_path, directory, scan, band, run, written, jobs=1):
@@ -205,12 +210,12 @@ def _keep_partial(scan_path, directory, scan, band, run, written, jobs=1):
         written.append(out)
 
 
-def _occupancy_stage(outputs, written, counted=None):
+def _occupancy_stage(outputs, written, counted=None, image=None):
     from rfisieve.review import occupancy
 
     try:
         occupancy.occupancy_of_mask(outputs["mask"], outputs["occupancy_csv"], outputs["occupancy_h5"],
-                                    counted=counted)
+                                    counted=counted, data_image=image)
     except RfisieveError as err:
         raise _ScanFailed("occupancy", err) from None
     written += [outputs["occupancy_csv"], outputs["occupancy_h5"]]

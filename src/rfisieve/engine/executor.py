@@ -202,7 +202,8 @@ def run_windows(sched, chunks, ntime, halo, size, read, build, sink, progress=No
                     progress(done, len(chunks))
 
 
-def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None, jobs=1):
+def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None, jobs=1,
+                   observe_data=None):
     """Run detectors over every chunk; ``sink(start, stop, results_by_detector)``.
 
     Chunks go in windows (:meth:`_Scheduler.window`, :func:`run_windows`): the driver reads
@@ -215,6 +216,7 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
     ``jobs`` is the number of such jobs running at once on this machine
     (:func:`_window_chunks`).  Returns the scan metadata used, including the pre-pass
     noise sigmas (``sigma``: per product, or per stretch and product when there are gaps).
+    ``observe_data(start, block)`` sees each window's block as read (in the reader thread).
     """
     meta = _meta(scan, band)
     what = ["data", "flags"] + (["s2"] if scan.has_s2 else [])
@@ -261,7 +263,13 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
                                                          core=core) for g in groups], groups, scan.nprod)
                 for det in detectors]
 
-    run_windows(sched, chunks, scan.ntime, halo, size, lambda a, b: scan.read(a, b, what), build,
+    def read(a, b):
+        block = scan.read(a, b, what)
+        if observe_data is not None:
+            observe_data(a, block)
+        return block
+
+    run_windows(sched, chunks, scan.ntime, halo, size, read, build,
                 lambda c0, c1, per_det: sink(c0, c1, dict(zip(names, per_det))), progress, first=noise,
                 segments=segments)
     return meta

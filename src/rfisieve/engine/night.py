@@ -90,15 +90,17 @@ def check_scan(path, run, bands):
 
     Entry keys: ``scan``, ``path``, ``band`` (or None), ``band_path`` (or None),
     ``shape`` (ntime, nchan, nprod), ``identity`` (:func:`identity`), ``settings``
-    (:func:`settings_digest`) and ``problem``: None, or ``{"stage", "reason"}`` with
-    the one-line reason (which names the file).
+    (:func:`settings_digest`), ``image_product`` (index and name of the product the
+    review's data image shows: the first auto product, else the first) and ``problem``:
+    None, or ``{"stage", "reason"}`` with the one-line reason (which names the file).
     """
     entry = {"scan": scan_name(path), "path": str(path), "band": None, "band_path": None,
-             "shape": None, "identity": None, "settings": None, "problem": None}
+             "shape": None, "identity": None, "settings": None, "image_product": None, "problem": None}
     try:
         with open_scan(path, run.get("layout")) as scan:
             entry["band"] = scan.band
             entry["shape"] = [int(scan.ntime), int(scan.nchan), int(scan.nprod)]
+            entry["image_product"] = [scan.first_auto, str(scan.products[scan.first_auto])]
         entry["band_path"] = config.band_config_path(bands.bands_dir, entry["band"])
         band, source = bands.get(entry["band"])
         entry["settings"] = settings_digest(source["text"], run)

@@ -160,7 +160,8 @@ def merge(scan_path, partial_paths, out_path, band, run, band_source=None, progr
                 h.close()
 
 
-def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, jobs=1, observe=None):
+def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, jobs=1, observe=None,
+              observe_data=None):
     """Both detectors and the merge in one pass over the scan (no partial masks).
 
     Gives the same mask file as :func:`detect` for each detector followed by
@@ -174,16 +175,19 @@ def flag_scan(scan_path, out_path, band, run, band_source=None, progress=None, j
     chunk's values as the writer thread stores them, before the per-channel cut.
     Returns ``{"channel_cut": bool}``: when False (the usual case) the cut changed
     nothing, and counts added up over the blocks observed are the counts of the
-    finished mask file.
+    finished mask file.  ``observe_data(start, block)``, when given, sees each block of
+    the scan as read (a :meth:`rfisieve.io.scan.Scan.read` dict holding dumps ``start``
+    onwards; blocks overlap by the halos), in the reader thread.
     """
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    return _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs, observe)
+    return _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs, observe, observe_data)
 
 
 @small_pages
 @_fail_clean
-def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1, observe=None):
+def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1, observe=None,
+                   observe_data=None):
     from concurrent.futures import ThreadPoolExecutor
 
     _check_run(run)
@@ -215,7 +219,7 @@ def _flag_one_pass(scan_path, out_path, band, run, band_source, progress, jobs=1
                     pending.append(writer.submit(write, c0, c1, out))
 
                 used = _run_detection(scan, list(DETECTORS), band, run, None, sched, progress, sink,
-                                      grow=merge_halo(band), jobs=jobs)
+                                      grow=merge_halo(band), jobs=jobs, observe_data=observe_data)
                 for fut in pending:
                     fut.result()
             cut = _channel_cut_pass(flags, counts, segments, band["cuts"]["channel_limit"], chunk_dumps)

@@ -16,21 +16,21 @@ kurtosis then runs over blocks of dumps), rather than making every sample invali
 Outputs are written to a temporary name in the destination directory and renamed
 when complete (:func:`atomic_output`), so an interrupted run never leaves a file that
 looks finished.  Their temporary names match :data:`PARTIAL_GLOBS`, so that leftovers
-of a killed run can be found and removed (:func:`remove_partials`).
+of a killed run can be found and removed (:func:`remove_partials`).  Those three live in
+:mod:`rfisieve.io.atomic` (no h5py) and are re-exported here.
 """
 
-import contextlib
 import hashlib
 import os
 import re
 import sys
-import tempfile
 from pathlib import Path
 
 import h5py
 import numpy as np
 
 from rfisieve.config.load import scan_name  # noqa: F401  (re-exported: io.scan.scan_name)
+from rfisieve.io.atomic import PARTIAL_GLOBS, atomic_output, remove_partials  # noqa: F401  (re-exported)
 from rfisieve.errors import ScanError
 from rfisieve.io.hdf5 import attr_str as _attr_str
 from rfisieve.textfmt import utc_iso as _utc
@@ -45,9 +45,6 @@ GAP_FACTOR = 1.5
 #: The documented form of a product name (docs/design.md 3.1): ``<inputA>-<inputB>``.
 PRODUCT_NAME = re.compile(r"^[^\s-]+-[^\s-]+$")
 
-#: Temporary names of :func:`atomic_output` (hidden, in the destination directory):
-#: ``.<name>.partial.<random>[<suffix>]``, and ``.<name>.<random>.partial`` of older versions.
-PARTIAL_GLOBS = (".*.partial.*", ".*.partial")
 
 _WARNED = set()
 
@@ -313,6 +310,12 @@ class Scan:
     def shape(self):
         return (self.ntime, self.nchan, self.nprod)
 
+    @property
+    def first_auto(self):
+        """Index of the first auto product (0 when there is none): the product of the
+        review's data image."""
+        return int(np.flatnonzero(self.autos)[0]) if self.autos.any() else 0
+
     def _read(self, ds, start, stop, prod=None):
         def axis_sel(ax):
             if ax == "time":
@@ -373,48 +376,3 @@ def _is_auto(product):
 def open_scan(path, layout=None):
     """Open a scan file read-only and validate it (raises ScanError)."""
     return Scan(path, layout)
-
-
-def remove_partials(directory):
-    """Remove the temporary files that :func:`atomic_output` left under ``directory``.
-
-    Only files whose name matches :data:`PARTIAL_GLOBS` are removed: those of runs that
-    were killed (SIGKILL, power loss) before they could clean up.  Call it only while no
-    other process writes under ``directory`` (``rfisieve run`` holds the outdir lock).
-    Returns the paths removed.
-    """
-    removed = []
-    found = {p for pattern in PARTIAL_GLOBS for p in Path(directory).rglob(pattern)} if Path(directory).is_dir() else ()
-    for path in sorted(found):
-        if path.is_file() and not path.is_symlink():
-            with contextlib.suppress(FileNotFoundError):
-                path.unlink()
-                removed.append(path)
-    return removed
-
-
-def _umask():
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
-@contextlib.contextmanager
-def atomic_output(path, suffix=None):
-    """Yield a temporary path beside ``path``; rename it to ``path`` when the block ends.
-
-    On an exception the temporary file is removed and nothing is left at ``path``.
-    """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.partial.", suffix=suffix or "", dir=path.parent)
-    os.close(fd)
-    tmp = Path(tmp)
-    try:
-        yield tmp
-        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; outputs are for everyone
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            tmp.unlink()
-        raise

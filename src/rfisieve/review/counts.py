@@ -15,6 +15,7 @@ Counting rules
 The file formats written from these counts are described in :mod:`rfisieve.review.tables`.
 """
 
+import functools
 import os
 
 import numpy as np
@@ -53,13 +54,12 @@ def bin_starts(n, nbins):
     return -((-idx * int(n)) // nb)
 
 
+@functools.lru_cache(maxsize=None)
 def _value_tables():
+    # on first use: the kernels' module imports numba, which the review never needs
     from rfisieve.review._count_kernels import value_tables
 
     return value_tables(BIT_VALUES)
-
-
-_VALUE_TABLES = _value_tables()
 
 
 def chunk_counts(flags, time_bin=None, chan_starts=None, ntbin=None):
@@ -110,7 +110,7 @@ def chunk_counts(flags, time_bin=None, chan_starts=None, ntbin=None):
     ch_any, pc_any, dump_any, prod_any = z(nc, np.int64), z((npr, nc), np.int64), z(nt, np.int64), z(npr, np.int64)
     hist_c, hist_t, hist_p = z((nc, 256), np.int64), z((nt, 256), np.int64), z((npr, 256), np.int64)
     count_block(flags, tbin, cbin, ch_any, pc_any, dump_any, prod_any, hist_c, hist_t, hist_p, img)
-    has_bit, primary = _VALUE_TABLES
+    has_bit, primary = _value_tables()
     out = {
         "channel_flagged": ch_any,
         "product_channel_flagged": pc_any,

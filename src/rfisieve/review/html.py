@@ -313,7 +313,7 @@ def _provenance_section(h, scans, ctx, sk_summaries):
 
 def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev, threshold, previous, ctx=None):
     """The review page as one HTML string (see :func:`build_review`)."""
-    from rfisieve.review.plots import CAUSE_COLOURS
+    from rfisieve.review.palette import CAUSE_COLOURS
 
     ctx = ctx or {"provs": {}, "settings": {}, "failed": None, "failed_note": "failed_scans.csv not read",
                   "prev_settings": None, "prev_where": None, "version": "?"}

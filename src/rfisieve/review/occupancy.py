@@ -14,13 +14,22 @@ from rfisieve.review.tables import *  # noqa: F401,F403
 from rfisieve.review.tables import scan_table, write_csv, write_scan_h5
 
 
-def occupancy_of_mask(mask_path, csv_path, h5_path, chunk_dumps=None, image_bins=IMAGE_BINS, counted=None):
+def occupancy_of_mask(mask_path, csv_path, h5_path, chunk_dumps=None, image_bins=IMAGE_BINS, counted=None,
+                      data_image=None):
     """Count mask file ``mask_path`` and write its per-scan CSV and HDF5; return the counts.
 
     ``counted``: a :class:`~rfisieve.review.counts.ScanOccupancy` that already holds the
     mask's counts (taken while the mask was in memory); the file's /flags is then not read.
+    ``data_image``: ``(image, note)`` of :class:`rfisieve.review.provenance.DataImage`
+    on the same image bins, stored as ``/image/data`` with the attribute
+    ``data_image_note`` (the review then reads no scan file).
     """
     counts = count_mask_file(mask_path, chunk_dumps=chunk_dumps, image_bins=image_bins, counted=counted)
+    if data_image is not None:
+        img, note = data_image
+        if img.shape == counts["image/flagged"].shape:
+            counts["image/data"] = img
+            counts["attrs"]["data_image_note"] = note
     for p in (csv_path, h5_path):
         if p:
             os.makedirs(os.path.dirname(os.path.abspath(p)), exist_ok=True)

@@ -4,8 +4,9 @@
 (:mod:`rfisieve.review.occupancy`) into ``<outdir>/occupancy/run.csv`` and ``run.h5``, draws
 the figures into ``<outdir>/report/`` and writes ``<outdir>/report/index.html``, one
 self-contained page (images embedded as base64 ``data:`` URIs) that opens from disk.
-It also reads, read-only, each scan's mask file (settings and version as used), the scan
-file itself (a downsampled dynamic spectrum) and ``<outdir>/failed_scans.csv``
+It also reads, read-only, each scan's mask file (settings and version as used), the data
+image the flag job stored in the occupancy file (a downsampled dynamic spectrum; the scan
+file itself only for an occupancy file without one) and ``<outdir>/failed_scans.csv``
 (:mod:`rfisieve.review.provenance`); each of these may be missing, and the page says so.
 
 Page, top to bottom: overview cards (the kurtosis card says "check" whenever its inputs
@@ -158,12 +159,21 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
 
     Besides the per-scan occupancy files it reads, read-only, each scan's mask file
     (settings and version, :func:`rfisieve.review.provenance.mask_provenance`), the
-    scan file itself for a downsampled dynamic spectrum (``data_preview``), and
-    ``<outdir>/failed_scans.csv``.  The per-scan figures are drawn in ``workers``
+    downsampled dynamic spectrum (``data_preview``: the occupancy file's ``/image/data``,
+    or the scan file itself for an occupancy file without it), and
+    ``<outdir>/failed_scans.csv``.  The figures are drawn in ``workers``
     processes.  Returns the path of ``index.html``.
     """
+    pool = _start_pool(workers)  # its processes import matplotlib while this one reads
+    try:
+        return _build_review(outdir, scan_files, previous, emitters_path, bands_dir, threshold, data_preview, pool)
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+
+def _build_review(outdir, scan_files, previous, emitters_path, bands_dir, threshold, data_preview, pool):
     from rfisieve import __version__
-    from rfisieve.review import plots as rp
     from rfisieve.review import provenance as pv
 
     scans = [occ.read_scan_h5(p) for p in scan_files]
@@ -191,30 +201,33 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
                             "band_settings_json": json.dumps(settings, sort_keys=True),
                             "rfisieve_version": __version__})
 
+    # Every figure is one job (the kurtosis figures one together, with the SK summaries
+    # the page needs), drawn in up to ``workers`` forked processes; the longest first.
     figs = {"band": {}, "scan": {}, "kurtosis": [], "change": {}, "night": None, "shown": {}, "data_note": {}}
-    if scans:
-        p = os.path.join(rep_dir, "night.png")
-        rp.night_fraction(p, night_series(scans))
-        figs["night"] = p
-    for band, agg in bands.items():
-        p = os.path.join(rep_dir, f"band_{band}.png")
-        figs["shown"][band] = rp.band_occupancy(p, band, agg, emitters)
-        figs["band"][band] = p
-        if prev is not None:
-            p = os.path.join(rep_dir, f"change_{band}.png")
-            before = previous_on_grid(prev, band, agg["freq"])
-            rp.change_plot(p, band, agg["freq"], fraction(agg["flagged"], agg["samples"]), before)
-            figs["change"][band] = (p, before)
-    jobs = []
+    jobs = [("kurtosis", ([{"attrs": s["attrs"], "sk": s.get("sk")} for s in scans], rep_dir))]
     for s in scans:
         name = str(s["attrs"]["scan"])
         ident = (provs[name].get("input") or {}) if data_preview else None
-        p = os.path.join(rep_dir, f"scan_{name}.png")
-        jobs.append((p, s, ident))
-        figs["scan"][name] = p
-    for name, note in zip((str(s["attrs"]["scan"]) for s in scans), _map(_scan_figure, jobs, workers)):
-        figs["data_note"][name] = note
-    sk_summaries, figs["kurtosis"] = kurtosis_figures(scans, rep_dir)
+        figs["scan"][name] = os.path.join(rep_dir, f"scan_{name}.png")
+        jobs.append(("scan", (figs["scan"][name], s, ident)))
+    for band, agg in bands.items():
+        figs["band"][band] = os.path.join(rep_dir, f"band_{band}.png")
+        jobs.append(("band", (figs["band"][band], band, agg, emitters)))
+        if prev is not None:
+            p = os.path.join(rep_dir, f"change_{band}.png")
+            before = previous_on_grid(prev, band, agg["freq"])
+            jobs.append(("change", (p, band, agg["freq"], fraction(agg["flagged"], agg["samples"]), before)))
+            figs["change"][band] = (p, before)
+    if scans:
+        figs["night"] = os.path.join(rep_dir, "night.png")
+        jobs.append(("night", (figs["night"], night_series(scans))))
+    for (kind, args), result in zip(jobs, _map(_figure, jobs, pool)):
+        if kind == "kurtosis":
+            sk_summaries, figs["kurtosis"] = result
+        elif kind == "scan":
+            figs["data_note"][str(args[1]["attrs"]["scan"])] = result
+        elif kind == "band":
+            figs["shown"][args[1]] = result
 
     ranges = annotated_ranges(bands, emitters, threshold)
     ctx = {"provs": provs, "settings": settings, "failed": failed, "failed_note": failed_note,
@@ -228,7 +241,18 @@ def build_review(outdir, scan_files, previous=None, emitters_path=None, bands_di
     return index
 
 
+def _figure(job):
+    """Draw one figure job of :func:`build_review`: ``(kind, args)``; returns what the page
+    needs of it (the data note of a scan figure, the emitters shown on a band figure,
+    the SK summaries and figure list of the kurtosis figures)."""
+    from rfisieve.review import plots as rp
 
+    kind, args = job
+    if kind == "scan":
+        return _scan_figure(args)
+    if kind == "kurtosis":
+        return kurtosis_figures(*args)
+    return {"band": rp.band_occupancy, "change": rp.change_plot, "night": rp.night_fraction}[kind](*args)
 
 
 def _scan_figure(job):
@@ -238,24 +262,38 @@ def _scan_figure(job):
 
     path, s, ident = job
     data, note = None, "not read (data_preview=False)"
-    if ident is not None:
+    if ident is not None and "image/data" in s:  # taken by the flag job while it read the scan
+        data, note = s["image/data"], str(s["attrs"].get("data_image_note", ""))
+    elif ident is not None:  # an occupancy file without it: read the scan file
         data, note = pv.data_preview(ident.get("path"), s["image/time_start"], s["image/chan_start"],
                                      expect_size=ident.get("size"))
     rp.scan_image(path, s, data=data, data_note=note if data is not None else "")
     return note
 
 
-def _map(fn, items, workers):
-    """``map(fn, items)`` in up to ``workers`` forked processes (in this one when 1)."""
-    items = list(items)
-    workers = max(1, min(int(workers or 1), len(items)))
-    if workers == 1:
-        return [fn(x) for x in items]
+def _load_plots():
+    from rfisieve.review import plots  # noqa: F401
+
+
+def _start_pool(workers):
+    """``workers`` forked processes for the figures, started now, each importing
+    matplotlib as it starts (None for one worker: the figures are then drawn here)."""
+    if int(workers or 1) <= 1:
+        return None
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
-    with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
-        return list(pool.map(fn, items))
+    pool = ProcessPoolExecutor(int(workers), mp_context=multiprocessing.get_context("fork"),
+                               initializer=_load_plots)
+    pool.submit(int)  # a fork-based pool starts all its processes at the first task
+    return pool
+
+
+def _map(fn, items, pool):
+    """``map(fn, items)`` in ``pool`` (in this process when None)."""
+    if pool is None:
+        return [fn(x) for x in items]
+    return list(pool.map(fn, items))
 
 
 def kurtosis_figures(scans, rep_dir):

@@ -17,22 +17,8 @@ from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 
 from rfisieve.review.occupancy import BIT_NAMES, fraction  # noqa: E402
 
-PAPER = "#fbf8f1"
-INK = "#23202b"
-GRID = "#d9d2c3"
-
-#: One colour per cause bit, in bit order.
-CAUSE_COLOURS = {
-    "upstream": "#8c8577",      # warm grey
-    "invalid": "#3b3355",       # aubergine
-    "known": "#c9a227",         # mustard
-    "sk": "#1f6f8b",            # petrol blue
-    "sumthreshold": "#d1495b",  # coral red
-    "grown": "#66a182",         # sage green
-    "cut": "#a05195",           # orchid
-}
-EMITTER_COLOUR = "#7d93ab"
-PROTECTED_COLOUR = "#4f7a3a"
+from rfisieve.review.palette import (CAUSE_COLOURS, EMITTER_COLOUR, GRID, INK, PAPER,  # noqa: E402,F401
+                                     PROTECTED_COLOUR)
 
 STYLE = {
     "figure.facecolor": PAPER, "axes.facecolor": PAPER, "savefig.facecolor": PAPER,
@@ -332,6 +318,69 @@ def night_fraction(path, series, title=None):
         _save(fig, path)
 
 
+class _Pearson3:
+    """Pearson type III law of positive skewness ``skew`` (> 1.6e-5), location ``loc`` and
+    scale ``scale``: ``pdf``, ``cdf`` and ``ppf`` computed as ``scipy.stats.pearson3``
+    computes them (the same scipy.special calls in the same order, so the same numbers:
+    tests/test_review.py compares them), without importing scipy.stats (half a second
+    of the review's start-up).  The law: a gamma law of shape alpha = 4 / skew^2 in
+    beta (x' - zeta), x' = (x - loc) / scale, beta = 2 / skew, zeta = -alpha / beta."""
+
+    def __init__(self, skew, loc, scale):
+        self.loc, self.scale = loc, scale
+        self.beta = 2.0 / (skew * 1.0)
+        self.alpha = (1.0 * self.beta) ** 2
+        self.zeta = 0.0 - self.alpha / self.beta
+
+    def _t(self, x):
+        return self.beta * (np.asarray((np.asarray(x) - self.loc) / self.scale, dtype=float) - self.zeta)
+
+    def pdf(self, x):
+        from scipy import special as sc
+
+        t = np.atleast_1d(self._t(x))
+        logp = np.full(t.shape, -np.inf)
+        inside = (t > 0) & (t < np.inf)
+        logp[inside] = sc.xlogy(self.alpha - 1.0, t[inside]) - t[inside] - sc.gammaln(self.alpha)
+        logp[np.isnan(t)] = np.nan
+        ans = np.exp(np.log(abs(self.beta)) + logp)
+        ans[np.isnan(ans)] = 0.0
+        ans = ans / self.scale
+        return ans.reshape(np.shape(x)) if np.ndim(x) else ans[0]
+
+    def cdf(self, x):
+        from scipy import special as sc
+
+        t = np.atleast_1d(self._t(x))
+        ans = np.where(t >= np.inf, 1.0, 0.0)
+        inside = (t > 0) & (t < np.inf)
+        ans[inside] = sc.gammainc(self.alpha, t[inside])
+        ans[np.isnan(t)] = np.nan
+        return ans.reshape(np.shape(x)) if np.ndim(x) else ans[0]
+
+    def ppf(self, q):
+        from scipy import special as sc
+
+        shape = np.shape(q)
+        q = np.atleast_1d(np.asarray(q, dtype=float))
+        ans = np.full(q.shape, np.nan)
+        ans[q == 0] = -np.inf
+        ans[q == 1] = np.inf
+        inside = (q > 0) & (q < 1)
+        ans[inside] = (sc.gammaincinv(self.alpha, q[inside]) / self.beta + self.zeta) * self.scale + self.loc
+        return ans.reshape(shape) if shape else ans[0]
+
+
+def pearson3(skew, loc, scale):
+    """The Pearson type III law (:class:`_Pearson3`; ``scipy.stats.pearson3`` itself when
+    the skewness is below scipy's switch to the normal law, or negative)."""
+    if skew >= 0.000016:
+        return _Pearson3(skew, loc, scale)
+    from scipy import stats
+
+    return stats.pearson3(skew, loc=loc, scale=scale)
+
+
 def expected_sk_pdf(x, m, n, d):
     """Expected SK density at ``x`` for Gaussian noise, and a note of how it was made.
 
@@ -340,15 +389,17 @@ def expected_sk_pdf(x, m, n, d):
     present; otherwise a gamma law matched to the mean 1 and the variance of the
     generalized estimator, computed from the gamma/Dirichlet moments of docs/design.md 4.
     """
-    from scipy import stats
-
     try:
-        from rfisieve.detect.kurtosis import sk_moments
+        # the moments' own module: rfisieve.detect.kurtosis re-exports the same function,
+        # but importing it compiles the detector's kernels too (a quarter of a second)
+        from rfisieve.detect.kurtosis_moments import sk_moments
 
         mean, var, skew, _ = sk_moments(int(m), int(n), float(d))
-        dist = stats.pearson3(skew, loc=mean, scale=np.sqrt(var))
+        dist = pearson3(skew, mean, np.sqrt(var))
         note = "Pearson III from exact moments (rfisieve.detect.kurtosis.sk_moments)"
     except Exception:  # module absent or failing: degrade to a two-moment gamma law
+        from scipy import stats
+
         k = float(n) * float(d)
         M = float(m)
         mk = M * k

@@ -8,8 +8,10 @@ The review reads files only (never the engine's internals):
   ``path`` and ``size``);
 * ``<outdir>/failed_scans.csv`` (columns ``scan,path,stage,reason``) names the scans
   that failed at any stage of the night;
-* the scan file itself, opened read-only, gives a downsampled dynamic spectrum on the
-  time and channel bins of the occupancy image.
+* the data image (a downsampled dynamic spectrum on the time and channel bins of the
+  occupancy image) is taken by the flag job while it reads the scan (:class:`DataImage`)
+  and stored in the occupancy file; for an occupancy file without one, the scan file
+  itself is opened read-only (:func:`data_preview`).
 
 Every reader here degrades to "not known" (``None`` plus a one-line reason) rather than
 failing the page: a missing or old mask file must not hide the rest of the night.
@@ -213,14 +215,106 @@ def flagged_inside(freq_hz, flagged, samples, bits_, start_mhz, stop_mhz):
     return n, float(np.sum(np.asarray(flagged)[sel])) / s, np.asarray(bits_)[:, sel].sum(axis=1) / s
 
 
-def data_preview(scan_path, time_start, chan_start, dumps_per_bin=4, expect_size=None):
+#: Dumps read (from the start of each time bin of the occupancy image) for the data image.
+DATA_DUMPS_PER_BIN = 4
+
+
+def _image_row(block, lo, hi, p, cs):
+    """One time bin of the data image from dumps ``lo:hi`` of ``block`` (a
+    :meth:`rfisieve.io.scan.Scan.read` dict): product ``p``'s power averaged over those
+    dumps (invalid or upstream-flagged samples left out), then within the channel bins."""
+    v = np.abs(block["data"][lo:hi, :, p]).astype(np.float64)
+    bad = ~np.isfinite(v) | (v <= 0)
+    if "flags" in block:
+        bad |= block["flags"][lo:hi, :, p]
+    v[bad] = np.nan
+    with np.errstate(all="ignore"), _quiet():
+        return _bin_mean(np.nanmean(v, axis=0), cs)
+
+
+def _image_db(img):
+    """The data image relative to the bandpass (each channel bin's median over time), dB."""
+    with np.errstate(all="ignore"), _quiet():
+        bandpass = np.nanmedian(img, axis=0)
+        return 10 * np.log10(img / bandpass[None, :])
+
+
+def _image_note(product, dumps_per_bin):
+    return f"product {product}, {dumps_per_bin} dumps read per time bin"
+
+
+class DataImage:
+    """The data image of one scan, taken from the blocks the flag job reads anyway.
+
+    The same picture as :func:`data_preview` (same dumps, product, bins and arithmetic;
+    ``tests/test_night.py`` checks they are equal), gathered while the data are in
+    memory so that the review need not read the scan file again.  Pass :meth:`add` as
+    the ``observe_data`` hook of :func:`rfisieve.engine.flag_scan`; blocks may overlap
+    and arrive in any order.
+
+    Parameters
+    ----------
+    time_start, chan_start : ndarray of int
+        The occupancy image's bins (:class:`rfisieve.review.counts.ScanOccupancy`).
+    product : int
+        Index of the product shown (:attr:`rfisieve.io.scan.Scan.first_auto`).
+    name : str
+        Its name, for the note.
+    """
+
+    def __init__(self, time_start, chan_start, product, name, dumps_per_bin=DATA_DUMPS_PER_BIN):
+        self.ts = np.asarray(time_start, np.int64)
+        self.cs = np.asarray(chan_start, np.int64)
+        self.p, self.name, self.k = int(product), str(name), int(dumps_per_bin)
+        self.stop = np.minimum(self.ts[1:], self.ts[:-1] + self.k)  # each bin's dumps: ts[i]:stop[i]
+        self.img = np.full((len(self.ts) - 1, len(self.cs) - 1), np.nan)
+        self.done = np.zeros(len(self.ts) - 1, bool)
+        self._part = {}  # bin -> {dump: that dump's rows} for bins split between blocks
+
+    def add(self, start, block):
+        """Take the image's dumps from ``block``, which holds dumps ``start:start + n``."""
+        n = int(block["data"].shape[0])
+        end = start + n
+        first = max(0, int(np.searchsorted(self.ts, start, side="right")) - 1)
+        for i in range(first, len(self.done)):
+            a, b = int(self.ts[i]), int(self.stop[i])
+            if a >= end:
+                break
+            if self.done[i] or b <= start:
+                continue
+            if a >= start and b <= end:
+                self.img[i] = _image_row(block, a - start, b - start, self.p, self.cs)
+                self.done[i] = True
+                continue
+            part = self._part.setdefault(i, {})  # the bin's dumps straddle blocks: keep its rows
+            lo, hi = max(a, start), min(b, end)
+            for key in ("data", "flags"):
+                if key in block:
+                    part.setdefault(key, {}).update(
+                        {t: block[key][t - start:t - start + 1, :, self.p:self.p + 1].copy() for t in range(lo, hi)})
+            if len(part["data"]) == b - a:
+                whole = {key: np.concatenate([rows[t] for t in range(a, b)]) for key, rows in part.items()}
+                self.img[i] = _image_row(whole, 0, b - a, 0, self.cs)
+                self.done[i] = True
+                del self._part[i]
+
+    def result(self):
+        """(dB image, note), or None when some dump of the image was never seen."""
+        if not self.done.all():
+            return None
+        return _image_db(self.img), _image_note(self.name, self.k)
+
+
+def data_preview(scan_path, time_start, chan_start, dumps_per_bin=DATA_DUMPS_PER_BIN, expect_size=None):
     """Downsampled dynamic spectrum of one auto product of a scan, normalised by its bandpass.
 
     The scan file is opened read-only (:func:`rfisieve.io.scan.open_scan`, default layout)
     and, for each time bin of the occupancy image (``time_start``), only its first
     ``dumps_per_bin`` dumps are read and averaged; channels are averaged within the
     image's channel bins (``chan_start``).  Each channel bin is then divided by its
-    median over time (the bandpass) and given in dB.
+    median over time (the bandpass) and given in dB.  The flag job takes the same image
+    while it reads the scan (:class:`DataImage`) and stores it in the occupancy file;
+    the review calls this only for occupancy files without one.
 
     Returns
     -------
@@ -240,27 +334,17 @@ def data_preview(scan_path, time_start, chan_start, dumps_per_bin=4, expect_size
         with open_scan(scan_path) as sc:
             if sc.nchan != int(cs[-1]) or sc.ntime != int(ts[-1]):
                 return None, f"scan file {scan_path} no longer matches the mask ({sc.ntime} x {sc.nchan})"
-            p = int(np.flatnonzero(sc.autos)[0]) if sc.autos.any() else 0
+            p = sc.first_auto
             img = np.full((len(ts) - 1, len(cs) - 1), np.nan)
             for i in range(len(ts) - 1):
                 a = int(ts[i])
                 b = min(int(ts[i + 1]), a + int(dumps_per_bin))
-                blk = sc.read(a, b, what=("data", "flags"), prod=p)
-                v = np.abs(blk["data"][..., 0]).astype(np.float64)
-                bad = ~np.isfinite(v) | (v <= 0)
-                if "flags" in blk:
-                    bad |= blk["flags"][..., 0]
-                v[bad] = np.nan
-                with np.errstate(all="ignore"), _quiet():
-                    spec = np.nanmean(v, axis=0)
-                    img[i] = _bin_mean(spec, cs)
+                img[i] = _image_row(sc.read(a, b, what=("data", "flags"), prod=p), 0, b - a, 0, cs)
             prod = sc.products[p]
     except RfisieveError as err:
         return None, str(err)
-    with np.errstate(all="ignore"), _quiet():
-        bandpass = np.nanmedian(img, axis=0)
-        db = 10 * np.log10(img / bandpass[None, :])
-    note = f"product {prod}, {dumps_per_bin} dumps read per time bin"
+    db = _image_db(img)
+    note = _image_note(prod, dumps_per_bin)
     if expect_size is not None and os.path.getsize(scan_path) != int(expect_size):
         note += "; the scan file's size changed since it was flagged"
     return db, note

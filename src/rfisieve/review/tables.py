@@ -61,13 +61,18 @@ dataset                   shape               meaning
 /image/flagged            (ntbin, ncbin)      flagged samples per bin
 /image/time_start         (ntbin + 1,)        first dump of each time bin (+ ntime)
 /image/chan_start         (ncbin + 1,)        first channel of each channel bin (+ nchan)
+/image/data               (ntbin, ncbin)      float64: the data image, dB relative to each
+                                              channel bin's median over time (written by
+                                              the flag job; absent from ``rfisieve
+                                              occupancy``'s files)
 /diagnostics/sk           group               copied from the mask file when present
 ========================  ==================  =========================================
 
 Root attributes: ``scan``, ``band``, ``mask`` (path of the mask read), ``ntime``,
 ``nchan``, ``nprod``, ``bit_names`` (JSON list), ``integration_time`` (s, from the mask
 attributes or the median dump spacing), ``hours`` (ntime x integration_time / 3600),
-``start_time`` and ``stop_time`` (s since 1970 UTC).
+``start_time`` and ``stop_time`` (s since 1970 UTC); with ``/image/data``,
+``data_image_note`` (the product shown and the dumps read per time bin).
 
 Per-run HDF5: ``<outdir>/occupancy/run.h5``
 -------------------------------------------
