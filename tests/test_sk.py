@@ -258,8 +258,10 @@ def test_block_histogram_equals_numpy():
     m, n, d, t0 = 8, 64, 1.0, 13
     power = rng.standard_gamma(n, size=(203, 17)).astype(np.float32) / n
     valid = rng.random(power.shape) > 0.01
-    edges = np.linspace(0.0, 3.0, 301)
-    for rows in [(0, 203), (10, 150), (37, 38), (200, 203)]:
+    uniform = np.linspace(0.0, 3.0, 301)
+    # uniform bins, and uniform bins followed by a geometric tail (the review's histogram)
+    for edges, rows in [(uniform, (0, 203)), (uniform, (10, 150)), (uniform, (37, 38)), (uniform, (200, 203)),
+                        (np.r_[np.linspace(0.0, 1.2, 121), 1.2 * 1.1 ** np.arange(1, 40)], (0, 203))]:
         sks = []
         for r in range(rows[0], rows[1]):
             if (t0 + r) % m or r + m > power.shape[0]:

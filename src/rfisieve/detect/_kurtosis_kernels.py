@@ -101,12 +101,12 @@ def _flag_blocks_kernel(power, valid, t0, m, step, k, lo, hi, min_valid, refine,
 
 
 @njit(cache=True, nogil=True)
-def _block_histogram_kernel(power, valid, first, nb, m, k, edges, counts):
+def _block_histogram_kernel(power, valid, first, nb, m, k, edges, nuni, counts):
     nc = power.shape[1]
     nbins = edges.shape[0] - 1
     e0 = edges[0]
-    e1 = edges[nbins]
-    top = e1 - 1e-9
+    e1 = edges[nuni]          # the end of the uniform bins; wider bins may follow
+    top = edges[nbins] - 1e-9
     s1 = np.zeros(nc)
     s2 = np.zeros(nc)
     ok = np.ones(nc, dtype=np.bool_)
@@ -130,9 +130,14 @@ def _block_histogram_kernel(power, valid, first, nb, m, k, edges, counts):
             if not np.isfinite(sk):
                 continue
             x = min(max(sk, e0), top)
+            if x >= e1:
+                # the tail of wider bins: the last edge at or below x
+                i = min(np.searchsorted(edges, x, side="right") - 1, nbins - 1)
+                counts[i] += 1
+                continue
             # bin index exactly as numpy.histogram computes it for uniform edges
-            i = int(((x - e0) / (e1 - e0)) * nbins)
-            if i == nbins:
+            i = int(((x - e0) / (e1 - e0)) * nuni)
+            if i == nuni:
                 i -= 1
             if x < edges[i]:
                 i -= 1

@@ -272,7 +272,8 @@ def sk_block_histogram(power, valid, m, n, d, edges, t0=0, rows=None):
 
     The review's kurtosis diagnostic: SK = (M N d + 1)/(M - 1) (M S2 / S1^2 - 1) per
     block (Nita & Gary 2010, MNRAS 406, L60), clipped into [edges[0], edges[-1]) and
-    counted as ``numpy.histogram(sk, edges)`` counts them (``edges`` uniform).  Each
+    counted as ``numpy.histogram(sk, edges)`` counts them (``edges`` uniform, or
+    uniform followed by a tail of wider bins, as :func:`uniform_bins` finds).  Each
     block is counted once over a scan cut into chunks, by the chunk whose ``rows`` hold
     its first dump.
 
@@ -285,7 +286,7 @@ def sk_block_histogram(power, valid, m, n, d, edges, t0=0, rows=None):
     m, n, d : int, int, float
         M (block length in dumps), N (raw powers per dump), shape factor d.
     edges : array_like
-        Uniform bin edges.
+        Bin edges: uniform, then optionally wider (a geometric tail).
     t0 : int
         Absolute dump index of the plane's first row.
     rows : (int, int), optional
@@ -304,8 +305,18 @@ def sk_block_histogram(power, valid, m, n, d, edges, t0=0, rows=None):
     nb = max(0, min((r1 - first + m - 1) // m, (power.shape[0] - first) // m))
     counts = np.zeros(edges.shape[0] - 1, dtype=np.int64)
     if nb > 0:
-        _block_histogram_kernel(power, valid, first, nb, m, float(n * d), edges, counts)
+        _block_histogram_kernel(power, valid, first, nb, m, float(n * d), edges, uniform_bins(edges), counts)
     return counts
+
+
+def uniform_bins(edges):
+    """Number of leading bins of ``edges`` as wide as the first (to 1e-9 of it): the
+    histogram kernel bins those by arithmetic and searches the rest."""
+    w = np.diff(np.asarray(edges, dtype=np.float64))
+    if w.size == 0:
+        return 0
+    wider = np.flatnonzero(np.abs(w - w[0]) > 1e-9 * max(abs(w[0]), 1e-300))
+    return int(wider[0]) if wider.size else int(w.size)
 
 
 def block_halo(m):

@@ -19,25 +19,35 @@ DETECTORS = ("sk", "sumthreshold")
 #: on, the edges follow the thresholds: :func:`sk_histogram_edges`).
 SK_EDGES = np.linspace(0.0, 3.0, 301)
 
-#: SK histogram: bins between the two thresholds, and most bins in all (uniform bins:
-#: the block-SK histogram kernel needs them).
+#: SK histogram: bins between the two thresholds, and most uniform bins; beyond them a
+#: geometric tail of bins SK_TAIL_RATIO times wider each up to SK's bound.
 SK_BINS_BETWEEN = 100
 SK_MAX_BINS = 8192
+SK_TAIL_RATIO = 1.1
 
 
 def sk_histogram_edges(lower, upper, m, n=1, d=1.0):
-    """Uniform edges of the SK histogram kept for the review, from 0 past both thresholds.
+    """Edges of the SK histogram kept for the review, from 0 past both thresholds to the
+    largest value SK can take.
 
-    SK lies in [0, M N d + 1] (S2 / S1^2 lies in [1/M, 1]; docs/design.md 4).  The bins are
-    (upper - lower) / 100 wide and reach that bound unless that takes more than
+    SK lies in [0, M N d + 1] (S2 / S1^2 lies in [1/M, 1]; docs/design.md 4).  Uniform
+    bins (upper - lower) / 100 wide reach that bound unless that takes more than
     :data:`SK_MAX_BINS` bins, and always reach a quarter of the thresholds' distance past
-    the upper one.  One more bin follows: larger values are clipped into it, so the
-    review knows how many values lie beyond the histogram's range.
+    the upper one; beyond them, when the bound is further, bins each
+    :data:`SK_TAIL_RATIO` times the last edge (10 % wide: a log-spaced tail) reach it,
+    so strong interference (SK in the hundreds) still falls in a bin of the histogram.
+    One more bin follows: a larger value (rounding only) is clipped into it, so the
+    review would know how many values lie beyond the histogram's range.
     """
     w = (float(upper) - float(lower)) / SK_BINS_BETWEEN
-    nb = int(min(np.ceil((m * n * d + 1.0) / w), SK_MAX_BINS))
+    bound = m * n * d + 1.0
+    nb = int(min(np.ceil(bound / w), SK_MAX_BINS))
     nb = max(nb, int(np.ceil(float(upper) / w)) + SK_BINS_BETWEEN // 4)
-    return np.linspace(0.0, (nb + 1) * w, nb + 2)
+    edges = np.linspace(0.0, nb * w, nb + 1)
+    if edges[-1] < bound:
+        ntail = int(np.ceil(np.log(bound / edges[-1]) / np.log(SK_TAIL_RATIO)))
+        edges = np.concatenate([edges, edges[-1] * SK_TAIL_RATIO ** np.arange(1, ntail + 1)])
+    return np.append(edges, edges[-1] + (edges[-1] - edges[-2]))
 
 
 def _sk_edges(meta):

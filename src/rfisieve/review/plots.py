@@ -534,7 +534,8 @@ def sk_diagnostic(path, sk, title=None):
         ax.stairs(np.where(out[main], yy, np.nan), edges[:-1], fill=True, color=sk_col, alpha=0.8,
                   label="measured, outside (flagged by sk)")
         # whole range: counts summed into at most WIDE_BINS coarser bins, so thin tails show
-        wide_edges, wide_in, wide_out = _coarse(edges[:-1], counts[main], out[main], whole[1])
+        log_x = lo is not None and whole[1] > WIDE_LOG_FROM * float(hi)
+        wide_edges, wide_in, wide_out = _coarse(edges[:-1], counts[main], out[main], whole[1], log=log_x)
         for part, colour, alpha in ((wide_in, TOTAL_COLOUR, 0.6), (wide_out, sk_col, 0.85)):
             wide.stairs(np.where(part > 0, part, np.nan), wide_edges, fill=True, color=colour, alpha=alpha)
         for a_ in (ax, wide):
@@ -549,10 +550,15 @@ def sk_diagnostic(path, sk, title=None):
         if pos.size:
             ax.set_ylim(max(pos.min() * 0.5, 1e-6 * pos.max()), pos.max() * 4)
         ax.set_xlim(*core)
-        wide.set_xlim(whole[0], whole[1] + 0.06 * (whole[1] - whole[0]))
+        if log_x:
+            wide.set_xscale("log")
+            wide.set_xlim(float(edges[edges > 0][0]), whole[1] * 1.3)
+        else:
+            wide.set_xlim(whole[0], whole[1] + 0.06 * (whole[1] - whole[0]))
         if summ["beyond"]:
-            w = 0.04 * (whole[1] - whole[0])
-            wide.bar(whole[1] + 0.03 * (whole[1] - whole[0]), summ["beyond"], width=w, color=sk_col, hatch="///",
+            x_b, w = ((whole[1] * 1.12, whole[1] * 0.1) if log_x else
+                      (whole[1] + 0.03 * (whole[1] - whole[0]), 0.04 * (whole[1] - whole[0])))
+            wide.bar(x_b, summ["beyond"], width=w, color=sk_col, hatch="///",
                      edgecolor=INK, lw=0.6, label=f"≥ {summ['top']:.3g} (beyond the histogram)")
         for key, txt in (("lower", "lower"), ("upper", "upper")):
             if summ.get(key) is not None:
@@ -592,13 +598,26 @@ def sk_diagnostic(path, sk, title=None):
 WIDE_BINS = 240
 
 
-def _coarse(edges, counts, outside, upto):
-    """Sum counts into at most WIDE_BINS bins up to ``upto``: (edges, inside counts, outside counts)."""
-    n = int(np.searchsorted(edges, upto, side="left"))
-    n = max(1, min(n, len(counts)))
-    step = max(1, int(np.ceil(n / WIDE_BINS)))
-    starts = np.arange(0, len(counts), step)
-    e = np.append(edges[starts], edges[-1])
+#: The whole-range SK panel's x axis is logarithmic when it reaches this many times past
+#: the upper threshold (strong interference puts SK in the hundreds).
+WIDE_LOG_FROM = 20.0
+
+
+def _coarse(edges, counts, outside, upto, log=False):
+    """Sum counts into at most about WIDE_BINS bins, evenly spaced up to ``upto`` on the
+    panel's axis (logarithmic with ``log``, from the first positive edge); a bin already
+    wider than that spacing is kept: (edges, inside counts, outside counts)."""
+    e_all = np.asarray(edges, float)
+    if log:
+        lo = e_all[e_all > 0][0]
+        u = np.log10(np.maximum(e_all[:-1], lo))
+        target = np.linspace(np.log10(lo), np.log10(max(upto, lo * 10)), WIDE_BINS + 1)
+    else:
+        u = e_all[:-1]
+        target = np.linspace(e_all[0], max(upto, e_all[1]), WIDE_BINS + 1)
+    starts = np.unique(np.r_[0, np.searchsorted(u, target, side="left")])
+    starts = starts[starts < len(counts)]
+    e = np.append(e_all[starts], e_all[-1])
     return (e, np.add.reduceat(np.where(outside, 0, counts), starts).astype(float),
             np.add.reduceat(np.where(outside, counts, 0), starts).astype(float))
 
