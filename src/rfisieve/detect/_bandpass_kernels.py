@@ -1,7 +1,7 @@
 """Compiled (numba) inner loops of :mod:`rfisieve.detect.bandpass`: the per-block
-bandpass (medians along time), the running median along frequency, the block means
-of the persistence test and the compact-box sums.  They check nothing; the public
-entry points are in :mod:`rfisieve.detect.bandpass`."""
+bandpass (quantiles along time), the running median along frequency, the block means
+of the persistence test and its run ends, the compact-box sums and the edge test.
+They check nothing; the public entry points are in :mod:`rfisieve.detect.bandpass`."""
 
 import numpy as np
 

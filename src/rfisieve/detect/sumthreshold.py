@@ -300,6 +300,21 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
         Absolute dump number of the plane's first row (the chunk start less the
         halo): aligns the background's time cells to the scan, so a chunk gives
         the whole scan's result whatever dump it starts at.
+    bandpass_dumps : int
+        T: with T > 0 the receiver's bandpass, each channel's lower quartile along
+        time per aligned block of T dumps (:func:`rfisieve.detect.bandpass.block_bandpass`),
+        is divided out before the background fit; 0 = off.
+    persist_dumps, persist_sigma, baseline_channels : int, float, int
+        The persistence test on block means (longest block, threshold z, half-width
+        h of the running median over channels;
+        :func:`rfisieve.detect.bandpass.persistent_flags`); needs ``bandpass_dumps``;
+        ``persist_dumps`` 0 = off.
+    compact_sigma : float
+        Threshold of the compact boxes (:func:`rfisieve.detect.bandpass.compact_flags`)
+        on the last residual, followed by the edge test
+        (:func:`rfisieve.detect.bandpass.edge_flags`); 0 = both off.
+    protect : array_like of bool (nchan,), optional
+        Channels where the persistence test is off (protected sky lines).
     combine_feeds : bool
         The band key that makes the engine give a feed pair to
         :func:`combined_flagger`; without effect on one plane.
@@ -334,7 +349,8 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     chi_1 sigma, so the two grids share one scale); SumThreshold (along time, then
     along frequency with the time pass's detections as flagged, thresholds chi_1 =
     ``chi1``, as in the flagger) and, with ``compact_sigma``, the compact boxes
-    (:func:`rfisieve.detect.bandpass.compact_flags`) run on z with both products'
+    (:func:`rfisieve.detect.bandpass.compact_flags`) and the edge test
+    (:func:`rfisieve.detect.bandpass.edge_flags`) run on z with both products'
     detections and input flags as flagged; with the persistence test on, it runs on
     the pair's block means together (:func:`rfisieve.detect.bandpass.persistence_test`:
     each z of the test summed over the products, over sqrt(2)).  A sample found
