@@ -71,6 +71,13 @@ EDGE_SIGMA = 3.0
 RIPPLE_FACTOR = 3.0
 
 
+#: Passes of the persistence test's running median over channels: each later one
+#: replaces the runs of 3 or more channels standing above the previous one by more than
+#: BASELINE_CUT robust sigma by the interpolation of their neighbours (:func:`_baselines`).
+BASELINE_PASSES = 3
+BASELINE_CUT = 3.0
+
+
 #: Dumps averaged before the bandpass quantile (aligned to absolute dump numbers).
 GROUP_DUMPS = 8
 
@@ -482,13 +489,39 @@ def _baselines(bp, half_width):
     quadratic is fitted once: near a sharp knee it is poor, and the scatter of its
     residual there would make a second pass reject the clean channels instead.
     Where its mean absolute misfit over the window exceeds the running median's
-    (steps, knees) the second baseline is the running median too."""
+    (steps, knees) the second baseline is the running median too.
+
+    Emitters held by the bandpass (on in most of its window) lift the running median
+    where they crowd its window (a 40-channel and a 30-channel emitter 10 channels
+    apart fill 70 of 129 channels; a median ignores only under half of its window).
+    So the runs of at least 3 channels standing above the running median by more
+    than ``BASELINE_CUT`` robust sigma are replaced by the linear interpolation (in
+    log power) of their neighbours and the median is taken again,
+    ``BASELINE_PASSES`` times in all (the usual robust iteration; Hampel 1974, JASA
+    69, 383).  Replacing rather than leaving them out keeps the window centred, so a
+    steep edge is still followed (leaving a carrier on a knee out shifted the median
+    by a channel's step); runs, because a single channel (noise at a knee, or a
+    carrier, which the fine test finds) replaced at a sharp knee would pull the
+    median there off the knee."""
     med = np.empty(bp.shape, np.float64)
     quad = np.empty(bp.shape, np.float64)
     for i in range(bp.shape[0]):
         row = bp[i].astype(np.float64)
         kernels.running_median(row, half_width, med[i])
         lb = np.log(np.maximum(row, 1e-30))
+        up = np.zeros(row.shape, np.bool_)
+        sc0 = None
+        for _ in range(BASELINE_PASSES - 1):
+            d = lb - np.log(np.maximum(med[i], 1e-30))
+            if sc0 is None:
+                sc0 = MAD_TO_SIGMA * np.median(np.abs(d - np.median(d)))
+            now = up | _runs(d > BASELINE_CUT * sc0, 3)
+            if not sc0 > 0 or np.array_equal(now, up):
+                break
+            up = now
+            filled = np.where(up, np.nan, lb)
+            kernels.fill_nan_1d(filled)
+            kernels.running_median(np.exp(filled), half_width, med[i])
         lm = np.log(np.maximum(med[i], 1e-30))
         d = lb - lm
         sc = MAD_TO_SIGMA * np.median(np.abs(d - np.median(d)))
@@ -502,6 +535,17 @@ def _baselines(bp, half_width):
         s_quad = _running_mean(np.abs(lb - fit), half_width)
         quad[i] = np.where(s_quad < s_med, np.exp(fit), med[i])
     return med, quad
+
+
+def _runs(mask, k):
+    """The True entries of ``mask`` that lie in runs of at least ``k`` (k odd)."""
+    core = np.convolve(mask.astype(np.int64), np.ones(k, np.int64), mode="same") == k
+    h = k // 2
+    out = core.copy()
+    for j in range(1, h + 1):
+        out[j:] |= core[:-j]
+        out[:-j] |= core[j:]
+    return out & mask
 
 
 def _loo_quadratic(lb, nb=None):
