@@ -514,7 +514,13 @@ def _baselines(bp, half_width):
         for _ in range(BASELINE_PASSES - 1):
             d = lb - np.log(np.maximum(med[i], 1e-30))
             if sc0 is None:
-                sc0 = MAD_TO_SIGMA * np.median(np.abs(d - np.median(d)))
+                # over the channels the median does not return exactly (on a monotone
+                # run it returns the centre value itself, and those zeros would shrink
+                # the scatter to nothing)
+                nz = d[d != 0]
+                if nz.size < 8:
+                    break
+                sc0 = MAD_TO_SIGMA * np.median(np.abs(nz - np.median(nz)))
             now = up | _runs(d > BASELINE_CUT * sc0, 3)
             if not sc0 > 0 or np.array_equal(now, up):
                 break
