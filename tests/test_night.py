@@ -33,6 +33,24 @@ def test_jobs_group_scans_of_a_band_up_to_the_sample_budget():
     assert all(len(v) == 1 for v in night.batches(e, samples_per_job=0).values())
 
 
+def test_small_scans_go_into_one_core_jobs_of_even_counts_apart_from_large_ones():
+    # 30 scans of one chunk: ceil(30 / 12) = 3 jobs of 10, each on one core; the long scan
+    # (more dumps than a chunk) and the wide one (more samples than a small scan) keep
+    # jobs of `workers` cores; the sample budget still bounds the small jobs
+    e = {f"s{i:02d}": {"band": "L", "shape": [64, 16, 2]} for i in range(30)}
+    e["long"] = {"band": "L", "shape": [65, 16, 2]}
+    e["wide"] = {"band": "L", "shape": [64, 1 << 18, 2]}
+    jobs = night.batches(e, samples_per_job=1 << 30, small_dumps=64)
+    small = [v for v in jobs.values() if v[0].startswith("s")]
+    assert [len(v) for v in small] == [10, 10, 10]
+    assert sorted(s for v in small for s in v) == sorted(s for s in e if s.startswith("s"))
+    assert jobs["long"] == ["long", "wide"]
+    assert all(night.batch_threads(e, v, 2, 64) == 1 for v in small)
+    assert night.batch_threads(e, jobs["long"], 2, 64) == 2
+    assert [len(v) for v in night.batches(e, samples_per_job=64 * 16 * 2 * 5, small_dumps=64).values()][:6] == [5] * 6
+    assert all(len(v) == 1 for v in night.batches(e, samples_per_job=0, small_dumps=64).values())
+
+
 def test_check_quarantines_each_bad_scan_with_a_one_line_reason(tmp_path):
     good, noband = tmp_path / "good.h5", tmp_path / "odd.h5"
     make_scan(good, ntime=64, nchan=16, nprod=1)

@@ -47,7 +47,14 @@ if workflow.is_main_process:
 
 # The flag jobs: scans of one band share a job (one process start-up) up to
 # batch_samples samples; each job flags its scans one after the other.
-BATCHES = rfnight.batches(NIGHT, int(RUN["batch_samples"]))
+# Small scans (one chunk each) go into jobs of a dozen, one core each, flagged side by
+# side (rfnight.batches).
+BATCHES = rfnight.batches(NIGHT, int(RUN["batch_samples"]), small_dumps=int(RUN["chunk_dumps"]))
+
+
+def batch_threads(scans):
+    """Cores a flag job reserves: its dask workers, or one for a job of small scans."""
+    return rfnight.batch_threads(NIGHT, scans, DASK_THREADS, int(RUN["chunk_dumps"]))
 
 # Run settings that change results go into params (a change re-runs the jobs);
 # workers and scheduler only change the speed: the flag rule reads them from RUN

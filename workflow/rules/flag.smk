@@ -4,7 +4,8 @@
 # Outputs beside the record: flags/<scan>.h5, occupancy/<scan>.csv, occupancy/<scan>.h5
 # (and partial/<scan>.<detector>.h5 with keep_partial).  A job reserves `workers`
 # cores for its dask workers (one core when the chunks run on a dask.distributed
-# cluster) and flags its scans one after the other (BATCHES in common.smk).
+# cluster, or when its scans are small: one chunk each) and flags its scans one after
+# the other (BATCHES in common.smk).
 
 for _i, (_first, _scans) in enumerate(BATCHES.items()):
 
@@ -24,7 +25,7 @@ for _i, (_first, _scans) in enumerate(BATCHES.items()):
             log("flag", batch_name(_scans)),
         benchmark:
             bench("flag", batch_name(_scans))
-        threads: DASK_THREADS
+        threads: batch_threads(_scans)
         shell:
             "{RFISIEVE} flag {input.scans:q} --outdir {OUTDIR:q} --expect {params.expect:q}"
             " {params.run} {params.options} --workers {threads} --scheduler {RUN[scheduler]:q}"

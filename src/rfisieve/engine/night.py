@@ -144,7 +144,28 @@ def scan_outputs(outdir, scan):
             "progress": os.path.join(o, "logs", "flag", f"{scan}.progress")}
 
 
-def batches(entries, samples_per_job, max_scans=64):
+#: Samples of a small scan at most (:func:`is_small`): 4096 x 1024 x 4, about 0.5 GB
+#: of work arrays, so that several small-scan jobs side by side stay light.
+SMALL_SCAN_SAMPLES = 1 << 24
+
+
+def is_small(entry, small_dumps):
+    """True for a scan of at most ``small_dumps`` dumps (one chunk: one dask task per
+    product group) and :data:`SMALL_SCAN_SAMPLES` samples, or one that could not be
+    read (its job only records the problem)."""
+    shape = entry["shape"]
+    return shape is None or (int(shape[0]) <= int(small_dumps)
+                             and int(shape[0]) * int(shape[1]) * int(shape[2]) <= SMALL_SCAN_SAMPLES)
+
+
+#: Small scans per flag job at most (:func:`batches`): a night of many small scans runs
+#: as several one-core jobs side by side.  A fixed number, not the cores: a job's scans
+#: are part of its plan, so a grouping that followed ``--cores`` would re-flag them
+#: whenever the cores changed.
+SMALL_SCANS_PER_JOB = 12
+
+
+def batches(entries, samples_per_job, max_scans=64, small_dumps=0):
     """The night's scans in jobs: {name: [scan, ...]}.
 
     Scans of one band, in name order, share a job (one process, one start-up) up to
@@ -152,24 +173,51 @@ def batches(entries, samples_per_job, max_scans=64):
     own, and ``samples_per_job`` = 0 gives every scan its own job.  Jobs never mix
     bands, so editing one band's config re-runs only that band's jobs.  A scan whose
     band is unknown has a job of its own (it only records its problem).
+
+    Small scans (:func:`is_small`) are batched apart from the band's larger ones, in
+    jobs of at most :data:`SMALL_SCANS_PER_JOB` scans of even counts: a small scan is
+    one task or two, so a job flagging them one after the other keeps one core busy,
+    mostly in Python between scans.  Such jobs take one core each
+    (:func:`batch_threads`), and Snakemake runs as many at once as it has cores.
     """
     out = {}
     by_band = {}
     for scan in sorted(entries):
         by_band.setdefault(entries[scan]["band"] or "", []).append(scan)
+
+    def size(scan):
+        shape = entries[scan]["shape"]
+        return 0 if shape is None else int(shape[0]) * int(shape[1]) * int(shape[2])
+
     for band in sorted(by_band):
-        size, current = 0, []
+        small = [s for s in by_band[band] if band and is_small(entries[s], small_dumps)]
+        if small and samples_per_job > 0:
+            k = max(-(-len(small) // SMALL_SCANS_PER_JOB), -(-sum(size(s) for s in small) // samples_per_job))
+            for i in range(k):
+                part = small[i * len(small) // k:(i + 1) * len(small) // k]
+                if part:
+                    out[part[0]] = part
+        else:
+            small = []
+        total, current = 0, []
         for scan in by_band[band]:
-            e = entries[scan]
-            n = 0 if e["shape"] is None else int(e["shape"][0]) * int(e["shape"][1]) * int(e["shape"][2])
-            if current and (size + n > samples_per_job or len(current) >= max_scans):
+            if scan in small:
+                continue
+            n = size(scan)
+            if current and (total + n > samples_per_job or len(current) >= max_scans):
                 out[current[0]] = current
-                size, current = 0, []
+                total, current = 0, []
             current.append(scan)
-            size += n
+            total += n
         if current:
             out[current[0]] = current
     return out
+
+
+def batch_threads(entries, scans, threads, small_dumps):
+    """Cores a flag job reserves: one for a job of small scans (:func:`batches`), else
+    ``threads`` (the dask workers)."""
+    return 1 if all(is_small(entries[s], small_dumps) for s in scans) else int(threads)
 
 
 def read_record(path):
@@ -274,5 +322,5 @@ def failed_rows(records):
     return sorted(rows, key=lambda r: r["scan"])
 
 
-__all__ = ["check_scan", "scan_outputs", "batches", "outputs_stand", "check_night", "stale_reason", "expire_stale", "record_path", "read_record",
+__all__ = ["check_scan", "scan_outputs", "batches", "batch_threads", "is_small", "SMALL_SCANS_PER_JOB", "outputs_stand", "check_night", "stale_reason", "expire_stale", "record_path", "read_record",
            "write_record", "failed_rows", "identity", "settings_digest", "FAILED_COLUMNS", "STAGES"]
