@@ -144,8 +144,9 @@ def scan_outputs(outdir, scan):
             "progress": os.path.join(o, "logs", "flag", f"{scan}.progress")}
 
 
-#: Samples of a small scan at most (:func:`is_small`): 4096 x 1024 x 4, about 0.5 GB
-#: of work arrays, so that several small-scan jobs side by side stay light.
+#: Samples of a small scan at most (:func:`is_small`): 4096 x 1024 x 4, so that several
+#: small-scan jobs side by side stay light (bench/throughput.py: a flag job of one
+#: 12.6 M-sample scan peaks at about 410 MiB).
 SMALL_SCAN_SAMPLES = 1 << 24
 
 
@@ -175,7 +176,8 @@ def batches(entries, samples_per_job, max_scans=64, small_dumps=0):
     band is unknown has a job of its own (it only records its problem).
 
     Small scans (:func:`is_small`) are batched apart from the band's larger ones, in
-    jobs of at most :data:`SMALL_SCANS_PER_JOB` scans of even counts: a small scan is
+    jobs of at most :data:`SMALL_SCANS_PER_JOB` scans, in even counts (so a budget of
+    ``samples_per_job`` holds on average): a small scan is
     one task or two, so a job flagging them one after the other keeps one core busy,
     mostly in Python between scans.  Such jobs take one core each
     (:func:`batch_threads`), and Snakemake runs as many at once as it has cores.
@@ -191,6 +193,7 @@ def batches(entries, samples_per_job, max_scans=64, small_dumps=0):
 
     for band in sorted(by_band):
         small = [s for s in by_band[band] if band and is_small(entries[s], small_dumps)]
+        # jobs of even counts, as many as the scan limit or the sample budget asks for
         if small and samples_per_job > 0:
             k = max(-(-len(small) // SMALL_SCANS_PER_JOB), -(-sum(size(s) for s in small) // samples_per_job))
             for i in range(k):
@@ -199,9 +202,10 @@ def batches(entries, samples_per_job, max_scans=64, small_dumps=0):
                     out[part[0]] = part
         else:
             small = []
+        taken = set(small)
         total, current = 0, []
         for scan in by_band[band]:
-            if scan in small:
+            if scan in taken:
                 continue
             n = size(scan)
             if current and (total + n > samples_per_job or len(current) >= max_scans):
