@@ -161,8 +161,9 @@ def is_small(entry, small_dumps):
 
 #: Small scans per flag job at most (:func:`batches`): a night of many small scans runs
 #: as several one-core jobs side by side.  A fixed number, not the cores: a job's scans
-#: are part of its plan, so a grouping that followed ``--cores`` would re-flag them
-#: whenever the cores changed.
+#: are part of its params, so a grouping that followed ``--cores`` would start every
+#: job again whenever the cores changed (each would keep its finished scans, but pay
+#: its start-up).
 SMALL_SCANS_PER_JOB = 12
 
 
