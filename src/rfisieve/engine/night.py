@@ -150,13 +150,18 @@ def scan_outputs(outdir, scan):
 SMALL_SCAN_SAMPLES = 1 << 24
 
 
+def _samples(entry):
+    """Samples of a night entry's scan (0 when it could not be read)."""
+    shape = entry["shape"]
+    return 0 if shape is None else int(shape[0]) * int(shape[1]) * int(shape[2])
+
+
 def is_small(entry, small_dumps):
     """True for a scan of at most ``small_dumps`` dumps (one chunk: one dask task per
     product group) and :data:`SMALL_SCAN_SAMPLES` samples, or one that could not be
     read (its job only records the problem)."""
-    shape = entry["shape"]
-    return shape is None or (int(shape[0]) <= int(small_dumps)
-                             and int(shape[0]) * int(shape[1]) * int(shape[2]) <= SMALL_SCAN_SAMPLES)
+    return entry["shape"] is None or (int(entry["shape"][0]) <= int(small_dumps)
+                                      and _samples(entry) <= SMALL_SCAN_SAMPLES)
 
 
 #: Small scans per flag job at most (:func:`batches`): a night of many small scans runs
@@ -188,15 +193,12 @@ def batches(entries, samples_per_job, max_scans=64, small_dumps=0):
     for scan in sorted(entries):
         by_band.setdefault(entries[scan]["band"] or "", []).append(scan)
 
-    def size(scan):
-        shape = entries[scan]["shape"]
-        return 0 if shape is None else int(shape[0]) * int(shape[1]) * int(shape[2])
-
     for band in sorted(by_band):
         small = [s for s in by_band[band] if band and is_small(entries[s], small_dumps)]
         # jobs of even counts, as many as the scan limit or the sample budget asks for
         if small and samples_per_job > 0:
-            k = max(-(-len(small) // SMALL_SCANS_PER_JOB), -(-sum(size(s) for s in small) // samples_per_job))
+            total = sum(_samples(entries[s]) for s in small)
+            k = max(-(-len(small) // SMALL_SCANS_PER_JOB), -(-total // samples_per_job))
             for i in range(k):
                 part = small[i * len(small) // k:(i + 1) * len(small) // k]
                 if part:
@@ -208,7 +210,7 @@ def batches(entries, samples_per_job, max_scans=64, small_dumps=0):
         for scan in by_band[band]:
             if scan in taken:
                 continue
-            n = size(scan)
+            n = _samples(entries[scan])
             if current and (total + n > samples_per_job or len(current) >= max_scans):
                 out[current[0]] = current
                 total, current = 0, []
