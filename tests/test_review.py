@@ -349,6 +349,36 @@ def test_time_axis_is_utc_clock_time_across_midnight(tmp_path):
     assert any("2026-12-01 23:40 to 2026-12-02 00:40 UTC" in lab for lab in seen["xlabel"])
 
 
+def test_a_reused_scan_figure_keeps_nothing_of_the_scan_before(tmp_path):
+    # scan_image builds its figure once per process and draws each scan into it: the
+    # second scan's PNG must equal the one a freshly built figure gives (pixel for pixel),
+    # whatever the first scan's size, data range and time span were
+    import matplotlib.image as mimg
+
+    from rfisieve.review import plots as rp
+
+    def counts_of(nt, nc, t0, seed):
+        rng = np.random.default_rng(seed)
+        m = (rng.random((nt, nc, 2)) < rng.uniform(0.01, 0.3)).astype(np.uint8) * bits.SUMTHRESHOLD
+        c = occ.mask_counts(m, image_bins=(min(nt, 64), min(nc, 32)))
+        c.update(time=t0 + 1.5 * np.arange(nt), freq=1.2e9 + 0.5e6 * np.arange(nc), products=["a-a", "b-b"],
+                 attrs={"scan": f"s{seed}", "band": "L", "ntime": nt})
+        data = rng.normal(seed, 1 + seed, c["image/flagged"].shape)
+        data[0, 0] = np.nan
+        return c, data
+
+    first, d1 = counts_of(900, 48, 1.8e9, 1)
+    second, d2 = counts_of(300, 20, 1.8e9 + 5e4, 2)
+    for with_data in (True, False):
+        rp._SCAN_LAYOUTS.clear()
+        rp.scan_image(tmp_path / "fresh.png", second, data=d2 if with_data else None)
+        rp._SCAN_LAYOUTS.clear()
+        rp.scan_image(tmp_path / "a.png", first, data=d1 if with_data else None)
+        rp.scan_image(tmp_path / "b.png", second, data=d2 if with_data else None)
+        assert np.array_equal(mimg.imread(tmp_path / "b.png"), mimg.imread(tmp_path / "fresh.png"))
+        assert not np.array_equal(mimg.imread(tmp_path / "a.png"), mimg.imread(tmp_path / "fresh.png"))
+
+
 def test_page_names_failed_scans_and_the_settings_diff(run, tmp_path):
     out, *_ = run
     scans = sorted(str(p) for p in (out / "occupancy").glob("night_*.h5"))

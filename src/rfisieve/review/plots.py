@@ -14,6 +14,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
+from matplotlib.transforms import Bbox  # noqa: E402
 
 from rfisieve.review.occupancy import BIT_NAMES, fraction  # noqa: E402
 
@@ -30,8 +31,9 @@ STYLE = {
 }
 
 
-def _save(fig, path):
-    """Save ``fig`` to ``path`` (PNG) via temp name + rename."""
+def _save(fig, path, close=True):
+    """Save ``fig`` to ``path`` (PNG) via temp name + rename; then close it (unless
+    ``close`` is false: a figure kept to be drawn again)."""
     import os
 
     tmp = os.path.join(os.path.dirname(os.path.abspath(path)), f".{os.path.basename(path)}.tmp.png")
@@ -39,7 +41,8 @@ def _save(fig, path):
         fig.savefig(tmp, dpi=110, format="png")
         os.replace(tmp, path)
     finally:
-        plt.close(fig)
+        if close:
+            plt.close(fig)
         if os.path.exists(tmp):
             os.remove(tmp)
 
@@ -221,6 +224,10 @@ def scan_image(path, counts, title=None, data=None, data_note=""):
     the downsampled dynamic spectrum relative to the bandpass (dB); below it the
     flagged fraction of each bin, with the flagged fraction per dump beside it.
     Time runs down the page in UTC clock time.
+
+    A night draws hundreds of these, all with the same layout, so the figure, its axes
+    and colour bars are built once per process and layout (:func:`_scan_layout`) and
+    only the scan's own artists, limits and texts are drawn anew for each scan.
     """
     a = counts["attrs"]
     ts, cs = np.asarray(counts["image/time_start"]), np.asarray(counts["image/chan_start"])
@@ -229,55 +236,90 @@ def scan_image(path, counts, title=None, data=None, data_note=""):
     freq = np.asarray(counts["freq"], float) / 1e6
     th = _image_time_edges(time, ts)
     fe = channel_edges(freq)[cs]
-    rows = [("mask", 4.0)] if data is None else [("data", 4.0), ("mask", 4.0)]
+    lay = _scan_layout(data is not None)
+    fig, top, ax, side = lay["fig"], lay["top"], lay["mask"], lay["side"]
     with plt.rc_context(STYLE):
-        fig = plt.figure(figsize=(12.5, 1.6 + sum(r[1] for r in rows) * 0.95 + 0.8))
-        gs = fig.add_gridspec(1 + len(rows), 3, width_ratios=[5, 1.0, 0.16],
-                              height_ratios=[1.0] + [r[1] for r in rows], hspace=0.12, wspace=0.12)
-        top = fig.add_subplot(gs[0, 0])
-        axes = {}
-        for i, (kind, _) in enumerate(rows):
-            axes[kind] = fig.add_subplot(gs[1 + i, 0], sharex=top, sharey=axes.get("data"))
-        ax = axes["mask"]
-        mesh = ax.pcolorfast(fe, th, img, cmap=TOTAL_MAP, vmin=0, vmax=100)
-        cb = fig.colorbar(mesh, cax=fig.add_subplot(gs[len(rows), 2]))
-        cb.set_label("Flagged (% of bin)")
+        for artist in lay.pop("drawn", ()):
+            artist.remove()
+        for axk in lay["shared"]:  # autoscale afresh, as on a new figure
+            axk.dataLim.set_points(Bbox.null().get_points())
+            axk.ignore_existing_data_limits = True
+            axk.set_autoscale_on(True)
+        drawn = [ax.pcolorfast(fe, th, img, cmap=TOTAL_MAP, vmin=0, vmax=100)]
         if data is not None:
-            dax = axes["data"]
+            dax = lay["data"]
             finite = np.asarray(data)[np.isfinite(data)]
             lo, hi = (np.percentile(finite, [1, 99]) if finite.size else (-1.0, 1.0))
             dm = dax.pcolorfast(fe, th, np.ma.masked_invalid(data), cmap=DATA_MAP, vmin=lo, vmax=max(hi, lo + 1e-3))
-            dcb = fig.colorbar(dm, cax=fig.add_subplot(gs[1, 2]))
-            dcb.set_label("Power / bandpass (dB)")
+            dcb = lay["data_bar"]
+            dcb.mappable, dm.colorbar = dm, dcb
+            dcb.update_normal(dm)
+            drawn.append(dm)
             dax.set_title("Data: power relative to each channel's median over time" +
                           (f" ({data_note})" if data_note else ""), fontsize=10, fontweight="normal")
-            plt.setp(dax.get_xticklabels(), visible=False)
-        ax.set_title("Mask: flagged samples (any cause, all products)", fontsize=10, fontweight="normal")
-        for kind, axk in axes.items():
-            axk.grid(False)
+        for kind in lay["rows"]:
+            axk = lay[kind]
             if th[-1] > th[0]:
                 axk.set_ylim(th[-1], th[0])   # time runs down the page
             set_time_axis(axk, "y", th[0], th[-1], max_ticks=6, label=False)
-        ax.set_ylabel("Time, UTC (HH:MM)")
-        if data is not None:
-            axes["data"].set_ylabel("Time, UTC (HH:MM)")
         ax.set_xlabel(f"Frequency (MHz) · time: {utc_span(time[0], time[-1])}" if len(time) else "Frequency (MHz)")
         chan = np.nan_to_num(fraction(counts["channel/flagged"], counts["channel/samples"]) * 100)
-        top.stairs(chan, channel_edges(freq), fill=True, color=TOTAL_COLOUR)
+        drawn.append(top.stairs(chan, channel_edges(freq), fill=True, color=TOTAL_COLOUR))
         top.set_ylim(0, 100)
+        dump = np.nan_to_num(fraction(counts["dump/flagged"], counts["dump/samples"]) * 100)
+        drawn.append(side.fill_betweenx(time, 0, dump, color=TOTAL_COLOUR, lw=0, step="mid"))
+        side.set_xlim(0, 100)
+        top.set_title(title or f"Scan {a['scan']} (band {a['band']})")
+        lay["drawn"] = drawn
+        _save(fig, path, close=False)
+
+
+#: Per process: the scan figure's layout with and without the data row (:func:`_scan_layout`).
+_SCAN_LAYOUTS = {}
+
+
+def _scan_layout(with_data):
+    """The figure of :func:`scan_image` without any scan's artists: its axes, their fixed
+    labels and ticks, the colour bars; built on first use in this process, then reused."""
+    if with_data in _SCAN_LAYOUTS:
+        return _SCAN_LAYOUTS[with_data]
+    from matplotlib.cm import ScalarMappable
+    from matplotlib.colors import Normalize
+    from matplotlib.figure import Figure
+
+    rows = [("mask", 4.0)] if not with_data else [("data", 4.0), ("mask", 4.0)]
+    with plt.rc_context(STYLE):
+        fig = Figure(figsize=(12.5, 1.6 + sum(r[1] for r in rows) * 0.95 + 0.8))
+        gs = fig.add_gridspec(1 + len(rows), 3, width_ratios=[5, 1.0, 0.16],
+                              height_ratios=[1.0] + [r[1] for r in rows], hspace=0.12, wspace=0.12)
+        top = fig.add_subplot(gs[0, 0])
+        lay = {"fig": fig, "top": top, "rows": [r[0] for r in rows]}
+        for i, (kind, _) in enumerate(rows):
+            lay[kind] = fig.add_subplot(gs[1 + i, 0], sharex=top, sharey=lay.get("data"))
+        ax = lay["mask"]
+        cb = fig.colorbar(ScalarMappable(Normalize(0, 100), TOTAL_MAP), cax=fig.add_subplot(gs[len(rows), 2]))
+        cb.set_label("Flagged (% of bin)")
+        if with_data:
+            dax = lay["data"]
+            lay["data_bar"] = fig.colorbar(ScalarMappable(Normalize(-1, 1), DATA_MAP), cax=fig.add_subplot(gs[1, 2]))
+            lay["data_bar"].set_label("Power / bandpass (dB)")
+            plt.setp(dax.get_xticklabels(), visible=False)
+            dax.set_ylabel("Time, UTC (HH:MM)")
+        ax.set_title("Mask: flagged samples (any cause, all products)", fontsize=10, fontweight="normal")
+        for kind in lay["rows"]:
+            lay[kind].grid(False)
+        ax.set_ylabel("Time, UTC (HH:MM)")
         top.set_yticks([0, 50, 100])
         top.set_ylabel("per channel\n(% flagged)")
         plt.setp(top.get_xticklabels(), visible=False)
-        side = fig.add_subplot(gs[len(rows), 1], sharey=ax)
-        dump = np.nan_to_num(fraction(counts["dump/flagged"], counts["dump/samples"]) * 100)
-        side.fill_betweenx(time, 0, dump, color=TOTAL_COLOUR, lw=0, step="mid")
-        side.set_xlim(0, 100)
+        side = lay["side"] = fig.add_subplot(gs[len(rows), 1], sharey=ax)
         side.set_xticks([0, 50, 100])
         side.set_xlabel("per dump (% flagged)")
         plt.setp(side.get_yticklabels(), visible=False)
-        top.set_title(title or f"Scan {a['scan']} (band {a['band']})")
+        lay["shared"] = [top, *(lay[k] for k in lay["rows"]), side]
         fig.subplots_adjust(left=0.08, right=0.93, top=0.95, bottom=0.07)
-        _save(fig, path)
+    _SCAN_LAYOUTS[with_data] = lay
+    return lay
 
 
 def night_fraction(path, series, title=None):
