@@ -89,6 +89,26 @@ def test_persistence_test_finds_a_wide_block_absorbed_by_the_median():
     assert hit[:, :100].mean() < 0.003
 
 
+def test_persistence_test_finds_an_emitter_across_an_aligned_block_boundary():
+    # Check value: an n-dump mean of an e-sigma excess is e sqrt(n) sigma (radiometer
+    # equation).  A 1.2-sigma emitter on for 64 dumps from dump 1120 puts 32 dumps in
+    # each of the aligned 64-dump blocks (0.6 x 8 = 4.8 sigma each, under z = 6), and
+    # all 64 in the block half a block later (9.6 sigma, over z plus the roughness
+    # term, 1 to 2 here): the shifted blocks must find it, and nothing else.  Most of
+    # it, not all: the run's end parts are cut at the change point of a 1.2-sigma step
+    # in each channel on its own, which falls a few dumps inside (Hinkley 1970,
+    # Biometrika 57, 1), and channels at the noise's low end stay under the threshold.
+    rng = np.random.default_rng(13)
+    mu, x = _plane(rng, n=2048, m=512)
+    on = slice(1120, 1184)
+    x[on, 100:120] += (mu[on, 100:120] * 1.2 * SIGMA).astype(np.float32)
+    ex = np.zeros(x.shape, bool)
+    bp, rows = block_bandpass(x, ex, 0, 256)
+    hit = persistent_flags(x, ex, ex, bp, rows, 0, SIGMA, (64,), 64, 6.0)
+    assert hit[on, 100:120].mean() > 0.7
+    assert hit[:, :95].mean() < 0.003 and hit[:1100].mean() < 0.003
+
+
 def test_chunks_anywhere_exact_with_the_new_stages():
     # With the halo of sumthreshold_halo, one sigma and t0, a chunk gives the whole
     # plane's result (the chunk-invariance contract of the engine).
