@@ -27,12 +27,13 @@ def repo_root():
     return root if (root / "Snakefile").is_file() else None
 
 
-class UniqueKeyLoader(yaml.SafeLoader):
+class UniqueKeyLoader(settings.SAFE_LOADER):
     """A YAML SafeLoader that refuses a key given twice in one mapping.
 
     Plain ``yaml.safe_load`` keeps the last of two equal keys without a word, so a
     band file with ``rho: 1.5`` and, further down, ``rho: 2.0`` would run with 2.0.
-    Merge keys (``<<: *anchor``) may still be overridden, as YAML intends.
+    Merge keys (``<<: *anchor``) may still be overridden, as YAML intends.  Built on
+    libyaml's parser where PyYAML has it (:data:`rfisieve.config.defaults.SAFE_LOADER`).
     """
 
     def construct_mapping(self, node, deep=False):
