@@ -109,6 +109,31 @@ def test_persistence_test_finds_an_emitter_across_an_aligned_block_boundary():
     assert hit[:, :95].mean() < 0.003 and hit[:1100].mean() < 0.003
 
 
+def test_an_off_part_flagged_alone_must_stand_out_by_two_sigma():
+    # Check value: a part of 16 dumps of pure noise has a unit-variance z, so it passes
+    # PART_SIGMA = 1 with probability norm.sf(1) = 0.159 and ISOLATED_PART_SIGMA = 2
+    # with norm.sf(2) = 0.023 (scipy.stats).  An emitter at 2 sigma on for the first
+    # 32 dumps of eight 64-dump sub-blocks (20 channels each) makes those sub-blocks
+    # stand out (2 x 32 / 64 x 8 = 8 sigma); their last part is off.  Flagged alone
+    # it must pass 2 sigma; flagged with the off part before it (both pass 1 sigma:
+    # 0.159**2 = 0.025) the run's end is cut at the change point.  So at most about
+    # 0.023 + 0.025 of those parts stay flagged; without the rule 0.12-0.20 were (three
+    # seeds), and the on-dumps are found as before.
+    rng = np.random.default_rng(21)
+    mu, x = _plane(rng, n=2048, m=512)
+    on = np.zeros(2048, bool)
+    last = np.zeros(2048, bool)
+    for j in range(8):
+        on[64 * (4 * j + 1):64 * (4 * j + 1) + 32] = True
+        last[64 * (4 * j + 1) + 48:64 * (4 * j + 2)] = True
+    x[on, 100:120] += (mu[on, 100:120] * 2.0 * SIGMA).astype(np.float32)
+    ex = np.zeros(x.shape, bool)
+    bp, rows = block_bandpass(x, ex, 0, 256)
+    hit = persistent_flags(x, ex, ex, bp, rows, 0, SIGMA, (256, 128, 64), 64, 5.0)
+    assert hit[on, 100:120].mean() > 0.9
+    assert hit[last, 100:120].mean() < 0.07
+
+
 def test_chunks_anywhere_exact_with_the_new_stages():
     # With the halo of sumthreshold_halo, one sigma and t0, a chunk gives the whole
     # plane's result (the chunk-invariance contract of the engine).

@@ -44,6 +44,12 @@ REFINE_SIGMA = 2.5
 #: carrier (2 sigma in 16 dumps) keeps about 93 % of its parts.
 PART_DUMPS = 16
 PART_SIGMA = 1.0
+#: A part flagged alone (neither neighbour flagged) must show ISOLATED_PART_SIGMA: noise
+#: passes PART_SIGMA in norm.sf(1) = 16 % of the parts (scipy.stats), so the off parts
+#: of a sub-block that an emitter fills in part were flagged a whole part at a time;
+#: norm.sf(2) = 2.3 %.  An emitter on for a part or more at 1 sigma shows 4 sigma
+#: there, and a steady carrier's parts lie in runs.
+ISOLATED_PART_SIGMA = 2.0
 
 #: A box must pass also without its largest sample, at COMPACT_REST z sqrt(n - 1): a
 #: bright sample that SumThreshold left (a carrier just under chi_1, or its neighbour
@@ -228,7 +234,9 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     follows smooth curvature but not a sharp knee.  Interference must stand out
     of both.  A spectrally smooth sky line is *not* told apart from interference:
     protect its range (``protect``).  Each channel found in a block is flagged in
-    the sub-blocks of ``SUB_DUMPS`` where its own excess passes ``REFINE_SIGMA``.
+    the sub-blocks of ``SUB_DUMPS`` where its own excess passes ``REFINE_SIGMA``,
+    and there in the parts of ``PART_DUMPS`` where it passes ``PART_SIGMA``
+    (``ISOLATED_PART_SIGMA`` for a part whose neighbours are not flagged).
 
     The blocks are the aligned ones (dumps j L .. j L + L - 1, absolute numbers) and
     those half a block later (j L + L / 2 ..): an emitter on for about L dumps across
@@ -418,6 +426,7 @@ def persistence_test(products, z, protect=None):
             hit = ok & (zs > thr[:, None])
             cand |= hit[grp]
     flags = np.zeros((P, m), np.bool_)
+    strong = np.zeros((P, m), np.bool_)   # parts that would pass ISOLATED_PART_SIGMA too
     cols = np.flatnonzero(cand.any(axis=0))
     if cols.size:
         # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
@@ -425,6 +434,7 @@ def persistence_test(products, z, protect=None):
         okp, zp, _, _ = _joint([b.excess(1, cols) for b in products])
         oks, zsub, _, gsub = _joint([b.excess(per_sub, cols) for b in products])
         flags[:, cols] = cand[:, cols] & (oks & (zsub > REFINE_SIGMA))[gsub] & okp & (zp > PART_SIGMA)
+        strong[:, cols] = zp > ISOLATED_PART_SIGMA
     # narrow emitters on steep slopes: the bandpass block's fine test, placed in time
     # by the symmetric leave-one-out excess of the sub-block and part means
     nb = b0.bp.shape[0]
@@ -436,8 +446,14 @@ def persistence_test(products, z, protect=None):
     if cols.size:
         fs_ok, fs_z, fs_g = _joint([b.fine_z(per_sub, cols) for b in products])
         fp_ok, fp_z, _ = _joint([b.fine_z(1, cols) for b in products])
-        flags[:, cols] |= (fine[b0.pblock][:, cols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g]
-                           & fp_ok & (fp_z > PART_SIGMA))
+        fhit = fine[b0.pblock][:, cols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g] & fp_ok & (fp_z > PART_SIGMA)
+        flags[:, cols] |= fhit
+        strong[:, cols] |= fhit & (fp_z > ISOLATED_PART_SIGMA)
+    # a part flagged alone must pass ISOLATED_PART_SIGMA
+    alone = flags.copy()
+    alone[1:] &= ~flags[:-1]
+    alone[:-1] &= ~flags[1:]
+    flags &= ~alone | strong
     outs = []
     prow_of = np.repeat(np.arange(P), b0.plen) if flags.any() else None
     rows = np.zeros((n, m), np.bool_)
