@@ -59,6 +59,46 @@ def test_one_sigma_carrier_on_the_knee_is_found():
     assert hit[:, others].mean() < 0.003
 
 
+def rounded_knee_bandpass(m, knee=24, drop=50.0, over=20.0, h=1.0):
+    """knee_bandpass with the knee rounded over about h channels: u replaced by the
+    softened ramp h log(1 + exp(u / h)) (written from its definition)."""
+    c = np.arange(m, dtype=np.float64)
+    u = h * (np.logaddexp(0.0, (knee - c) / h) + np.logaddexp(0.0, (c - (m - 1 - knee)) / h))
+    return np.exp(-math.log(drop) * u / over)
+
+
+def test_one_sigma_carrier_on_a_rounded_knee_is_found():
+    # Check values: a carrier of 1 sigma per dump is 16 sigma in a 256-dump mean
+    # (radiometer equation).  On a knee rounded over a channel (h = 1) straight lines
+    # through three channels on either side miss the knee channel by 1.2 sigma and its
+    # neighbour by 0.6 (the log of the ramp, computed from its definition), which hid
+    # such a carrier (found in none of its dumps); the quadratics with a kink follow it
+    # within 0.4 and 0.25 sigma.  A carrier on the knee channel (low edge) and one
+    # channel outside the knee (high edge) must be found in most dumps (one product on
+    # its own; 0.48-1.0 over seeds 7-12 on the rounded knee, the end blocks with half a
+    # window the noisiest), and no other channel flagged, on this knee
+    # and on a sharp one (knee_bandpass), with one product at the shipped L-band
+    # persist_sigma of 5 (config/bands/L.yaml).
+    band = dict(L_BAND, persist_sigma=5.0)
+    for shape in (rounded_knee_bandpass, knee_bandpass):
+        rng = np.random.default_rng(7)
+        n, m = 2048, 256
+        gain = 1 + 0.03 * np.sin(np.arange(n) / 300.0)
+        mu = gain[:, None] * shape(m)[None, :]
+        x = (rng.gamma(N_ACC, 1.0 / N_ACC, (n, m)) * mu).astype(np.float32)
+        clean = sumthreshold_flagger(x, sigma=SIGMA, **band)
+        assert clean.mean() < 0.003
+        cs = [24, m - 1 - 24 + 1]
+        for c in cs:
+            x[:, c] += (mu[:, c] * SIGMA).astype(np.float32)
+        hit = sumthreshold_flagger(x, sigma=SIGMA, **band)
+        for c in cs:
+            assert hit[:, c].mean() > 0.6, (shape.__name__, c)
+        others = np.ones(m, bool)
+        others[cs] = False
+        assert hit[:, others].mean() < 0.003
+
+
 def test_protected_range_is_honoured():
     # A smooth steady line (Gaussian, FWHM 14 channels, 1.2 sigma: the 21-cm line of the
     # issue) is flagged by the persistence test unless its channels are protected.

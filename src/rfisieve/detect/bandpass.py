@@ -609,16 +609,41 @@ def _loo_quadratic(lb, nb=None):
     return e
 
 
+def _kink_weights():
+    """Weights w[i, j] of the leave-one-out predictions of :func:`_loo_excess`: the
+    value at offset 0 of the least-squares fit of a + b j + q j**2 + d max(0, j - j0)
+    (a quadratic with a kink at j0) to the six channels j = -3 .. 3, j != 0, for
+    j0 = -1, 0, 1 (rows)."""
+    J = np.array([-3, -2, -1, 1, 2, 3], np.float64)
+    out = []
+    for j0 in (-1, 0, 1):
+        A = np.stack([np.ones(6), J, J * J, np.maximum(0.0, J - j0)], axis=1)
+        out.append(np.array([1.0, 0.0, 0.0, max(0.0, -j0)]) @ np.linalg.pinv(A))
+    return np.array(out)
+
+
+#: (3, 6) weights of the kinked quadratics, neighbours at offsets -3 .. 3 without 0.
+KINK_WEIGHTS = _kink_weights()
+KINK_OFFSETS = (-3, -2, -1, 1, 2, 3)
+
+
 def _loo_excess(lb, nb=None):
     """lb's excess over leave-one-out predictions: the smaller of the excess over
-    the symmetric quadratic of :func:`_loo_quadratic` and the larger of the excesses
-    over the straight lines through the three channels on either side,
+    the symmetric quadratic of :func:`_loo_quadratic` and a knee's excess, the larger
+    of two: over the straight lines through the three channels on either side,
     (4 l(c -+ 1) + l(c -+ 2) - 2 l(c -+ 3)) / 3 (least squares through j = 1, 2, 3,
-    at j = 0).  At a sharp knee (a kink of the log bandpass) the channel lies on
-    both sides' lines, so a knee is not taken for a carrier; a carrier stands out
-    of the symmetric prediction and of at least one side's (a side whose three
-    channels straddle a rounded knee may miss it).  Returns
-    (min excess, symmetric excess); 0 on the three outer channels at each end."""
+    at j = 0), the larger of the two sides; and over quadratics with a kink (a slope
+    change) at the channel or at either neighbour, fitted by least squares to the
+    three channels on either side (``KINK_WEIGHTS``), the smallest of the three.  A
+    sharp knee (a kink of the log bandpass, at a channel or between two) lies on
+    both kinds of fit, so a knee is not taken for a carrier; a carrier stands out of
+    the symmetric prediction and of the knee's.  The lines alone missed a knee
+    rounded over a channel (a softened ramp log(1 + exp(u)) falling 50x over 20
+    channels) by up to 1.2 sigma of a dump and hid a 1-sigma carrier on it; the
+    kinked quadratics follow it within 0.4 sigma, and the lines the channels next to
+    a sharp knee, where a quadratic kinked at the wrong channel misses (computed
+    from the definitions; docs/design.md 4.2a).  Returns (min excess, symmetric
+    excess); 0 on the three outer channels at each end."""
     m = lb.shape[0]
     nb = lb if nb is None else nb
     sym = _loo_quadratic(lb, nb)
@@ -627,8 +652,10 @@ def _loo_excess(lb, nb=None):
     c = np.arange(3, m - 3)
     left = lb[c] - (4 * nb[c - 1] + nb[c - 2] - 2 * nb[c - 3]) / 3.0
     right = lb[c] - (4 * nb[c + 1] + nb[c + 2] - 2 * nb[c + 3]) / 3.0
+    near = np.stack([nb[c + j] for j in KINK_OFFSETS])          # (6, m - 6)
+    kinked = (lb[c] - KINK_WEIGHTS @ near).min(axis=0)
     e = np.zeros(m)
-    e[c] = np.minimum(sym[c], np.maximum(left, right))
+    e[c] = np.minimum(sym[c], np.maximum(np.maximum(left, right), kinked))
     return e, sym
 
 
@@ -641,8 +668,9 @@ def fine_excess(bp_row, z, protect=None):
     bandpass l(c) is predicted from its neighbours by the least-squares quadratic
     through the pairs' means s_j = (l(c - j) + l(c + j)) / 2, j = 1, 2, 3 (exact for
     cubics; the channel itself left out): p(c) = (6 s_1 + 3 s_2 - 2 s_3) / 7, and
-    by the straight lines through the three channels on either side
-    (:func:`_loo_excess`: a sharp knee lies on both sides' lines).  It
+    by the straight lines through the three channels on either side and by
+    quadratics with a kink at the channel or a neighbour (:func:`_loo_excess`: a
+    sharp knee lies on both, a rounded one on the latter).  It
     is divided by the robust scatter over the band of the symmetric excess (1.4826
     MAD: the bandpass quartile's noise, about 1.36 / sqrt(2 T) of a dump's, times
     sqrt(3/2) for the prediction); channels above ``z`` are flagged.  The three
