@@ -99,6 +99,28 @@ def test_one_sigma_carrier_on_a_rounded_knee_is_found():
         assert hit[:, others].mean() < 0.003
 
 
+def test_an_emitter_beside_an_excluded_range_stands_out_of_the_baseline():
+    # Check value: a 1.5-sigma emitter in every dump is 24 sigma in a 256-dump block mean
+    # (radiometer equation); the bandpass quartile holds it, so the persistence test
+    # must find it against the running median over channels.  Beside it lie 80
+    # channels excluded in every dump (a known-bad range) and, beyond them, a 5 %
+    # shoulder.  The excluded channels' bandpass is the interpolation between the
+    # shoulder and the emitter, both lifted, so when the median ran over them it was
+    # lifted to the emitter and found 0.04 of it (seeds 31, 32); the median over the
+    # channels that hold data finds most of it (0.72-0.77).
+    rng = np.random.default_rng(31)
+    mu, x = _plane(rng, n=2048, m=512)
+    ex = np.zeros(x.shape, bool)
+    ex[:, 150:230] = True
+    x[:, 230:256] += (mu[:, 230:256] * 1.5 * SIGMA).astype(np.float32)
+    x[:, 70:150] *= np.float32(1.05)
+    bp, rows = block_bandpass(x, ex, 0, 256)
+    hit = persistent_flags(x, ex, ex, bp, rows, 0, SIGMA, (256, 128, 64), 64, 5.0)
+    assert hit[:, 230:256].mean() > 0.6
+    assert not hit[:, 150:230].any()
+    assert hit[:, 300:].mean() < 0.003
+
+
 def test_protected_range_is_honoured():
     # A smooth steady line (Gaussian, FWHM 14 channels, 1.2 sigma: the 21-cm line of the
     # issue) is flagged by the persistence test unless its channels are protected.
