@@ -138,6 +138,34 @@ def test_protected_range_is_honoured():
     assert hit[:, on].mean() < 0.005
 
 
+def test_a_shoulder_of_the_band_is_not_taken_for_an_emitter_at_low_noise():
+    # Check values: the false-alarm budget, 0.3 % of clean samples; a
+    # 1-sigma emitter is 16 sigma in a 256-dump mean (radiometer equation).  With
+    # N = 8192 accumulations a dump's noise is 1.1 %, a 256-dump mean's 0.07 %.  A
+    # 30 % shoulder (a logistic step over about 3 channels) on a 10 % slope pulled the
+    # running median over 129 channels by up to 1 % on its upper side (the window
+    # reaches the lower level), so the channels before it stood many sigma out: 7.6 %
+    # of this plane was flagged.  Parted at the step, the median follows each side,
+    # and an emitter 20 channels wide beside the step is still found.
+    n_acc = 8192
+    sig = 1 / math.sqrt(n_acc)
+    rng = np.random.default_rng(41)
+    n, m = 2048, 512
+    c = np.arange(m)
+    bp = (1 + 0.1 * c / m) * (1 - 0.3 / (1 + np.exp(-(c - 300) / 1.5)))
+    mu = np.broadcast_to(bp[None, :], (n, m))
+    x = (rng.gamma(n_acc, 1.0 / n_acc, (n, m)) * mu).astype(np.float32)
+    ex = np.zeros(x.shape, bool)
+    bpe, rows = block_bandpass(x, ex, 0, 256)
+    hit = persistent_flags(x, ex, ex, bpe, rows, 0, sig, (256, 128, 64), 64, 5.0)
+    assert hit.mean() < 0.003
+    x[:, 240:260] += (mu[:, 240:260] * 1.0 * sig).astype(np.float32)
+    bpe, rows = block_bandpass(x, ex, 0, 256)
+    hit = persistent_flags(x, ex, ex, bpe, rows, 0, sig, (256, 128, 64), 64, 5.0)
+    assert hit[:, 240:260].mean() > 0.9
+    assert hit[:, 262:].mean() < 0.003
+
+
 def test_persistence_test_finds_a_wide_block_absorbed_by_the_median():
     # An emitter 30 channels wide in every dump is held by the bandpass quartile (so
     # SumThreshold alone cannot see it) and must be found by the persistence test.

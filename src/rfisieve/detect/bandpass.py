@@ -84,6 +84,11 @@ BASELINE_PASSES = 3
 BASELINE_CUT = 3.0
 
 
+#: A jump of a bandpass by more than STEP_SIGMA channel sigmas whose level holds (an
+#: in-band shoulder) parts the running median (:func:`_steps`).
+STEP_SIGMA = 10.0
+
+
 #: Dumps averaged before the bandpass quantile (aligned to absolute dump numbers).
 GROUP_DUMPS = 8
 
@@ -553,7 +558,16 @@ def _baselines(bp, half_width, empty=None):
     of the channels at the range's ends, so an emitter held by the bandpass next to a
     known-bad range of 80 channels lifted the whole range with it, and with it the
     median of the emitter's channels (field scene, P band: a 1.4-sigma switching
-    emitter beside the 390-395 MHz range was missed in a bandpass block)."""
+    emitter beside the 390-395 MHz range was missed in a bandpass block).
+
+    The running medians are parted at steps of the bandpass (:func:`_steps`: an
+    in-band shoulder) and run on each side, shrinking towards the step as at the
+    band's ends.  A window reaching across a step returns a value from its own side
+    far from the channel: on a slope beside a 30 % shoulder, up to 1 % off, many
+    sigma of a block mean where the radiometer noise is small (clean field scenes at
+    N = 2048, 4096, 8192 lost 0.78, 2.2 and 3.6 % of their samples to it; 0.08 %
+    now), and at N = 512 still a fifth of a dump's sigma (extended field scenes,
+    tuning seeds: false alarms 0.173 -> 0.159 %)."""
     med = np.full(bp.shape, np.nan)
     quad = np.full(bp.shape, np.nan)
     for i in range(bp.shape[0]):
@@ -573,8 +587,9 @@ def _baseline_row(row, half_width):
     """:func:`_baselines` of one bandpass row (the channels that hold data only):
     returns (running median, the second baseline)."""
     med = np.empty(row.shape[0])
-    kernels.running_median(row, half_width, med)
     lb = np.log(np.maximum(row, 1e-30))
+    cuts = _steps(lb, int(half_width))
+    _segmented_median(row, half_width, cuts, med)
     up = np.zeros(row.shape, np.bool_)
     sc0 = None
     for _ in range(BASELINE_PASSES - 1):
@@ -593,7 +608,7 @@ def _baseline_row(row, half_width):
         up = now
         filled = np.where(up, np.nan, lb)
         kernels.fill_nan_1d(filled)
-        kernels.running_median(np.exp(filled), half_width, med)
+        _segmented_median(np.exp(filled), half_width, cuts, med)
     lm = np.log(np.maximum(med, 1e-30))
     d = lb - lm
     sc = MAD_TO_SIGMA * np.median(np.abs(d - np.median(d)))
@@ -606,6 +621,48 @@ def _baseline_row(row, half_width):
     s_med = _running_mean(np.abs(d), half_width)
     s_quad = _running_mean(np.abs(lb - fit), half_width)
     return med, np.where(s_quad < s_med, np.exp(fit), med)
+
+
+def _segmented_median(v, half_width, cuts, out):
+    """The running median of ``kernels.running_median`` (centred, shrinking at the
+    ends) run on each segment of v between the cuts (a cut at c parts c and c + 1)."""
+    edges = [0] + [int(c) + 1 for c in cuts] + [v.shape[0]]
+    for a, b in zip(edges[:-1], edges[1:]):
+        if b > a:
+            kernels.running_median(np.ascontiguousarray(v[a:b]), int(half_width), out[a:b])
+
+
+def _steps(lb, h):
+    """Steps of a log bandpass lb (an in-band shoulder): the cuts c (between c and
+    c + 1) where lb jumps by more than ``STEP_SIGMA`` times the channel noise (the
+    median of the 4 channels after c less the median of the 4 up to c; one cut per
+    run of such channels, at its largest jump), at least h channels from either
+    end, with no jump of the other sign and at least half the size (of any
+    significance) within 2 h channels: an emitter held by the bandpass rises and falls again within its
+    width (up to about 2 h channels), a step of the bandpass does not."""
+    m = lb.shape[0]
+    if m < 2 * h + 8:
+        return []
+    dif = np.diff(lb)
+    noise = MAD_TO_SIGMA * np.median(np.abs(dif - np.median(dif))) / math.sqrt(2.0)
+    if not noise > 0:
+        return []
+    c = np.arange(3, m - 4)
+    win = np.lib.stride_tricks.sliding_window_view(lb, 4)          # win[i] = lb[i:i + 4]
+    jump = np.median(win[c + 1], axis=1) - np.median(win[c - 3], axis=1)
+    cand = np.flatnonzero(np.abs(jump) > STEP_SIGMA * noise)
+    if cand.size == 0:
+        return []
+    cuts = []
+    for run in np.split(cand, np.flatnonzero(np.diff(cand) > 1) + 1):
+        k = run[np.argmax(np.abs(jump[run]))]     # the run's largest jump
+        cc, j = int(c[k]), float(jump[k])
+        if cc + 1 < h or m - cc - 1 < h:
+            continue
+        near = jump[max(0, k - 2 * h):k + 2 * h + 1] * np.sign(j)
+        if -near.min() < 0.5 * abs(j):            # no jump back within 2 h channels
+            cuts.append(cc)
+    return cuts
 
 
 def _runs(mask, k):
