@@ -639,8 +639,12 @@ def _steps(lb, h):
     median of the 4 channels after c less the median of the 4 up to c; one cut per
     run of such channels, at its largest jump), at least h channels from either
     end, with no jump of the other sign and at least half the size (of any
-    significance) within 2 h channels: an emitter held by the bandpass rises and falls again within its
-    width (up to about 2 h channels), a step of the bandpass does not."""
+    significance) within 2 h channels: an emitter held by the bandpass rises and
+    falls again within its width (up to about 2 h channels), a step of the bandpass
+    does not.  Emitters beside a step lose some of their window: the medians shrink
+    towards the cut (extended field scene, seed 601, both polarizations at strength 1:
+    satellites 0.989 -> 0.982, switching emitters 0.977 -> 0.969 at INR >= 1; its
+    false alarms 0.169 -> 0.158 %)."""
     m = lb.shape[0]
     if m < 2 * h + 8:
         return []
