@@ -224,6 +224,25 @@ def test_an_off_part_flagged_alone_must_stand_out_by_two_sigma():
     assert hit[last, 100:120].mean() < 0.07
 
 
+def test_an_emitter_coming_on_just_before_a_bandpass_block_boundary_is_found_from_its_start():
+    # Check value: an n-dump mean of an e-sigma excess is e sqrt(n) sigma (radiometer
+    # equation).  A 1.3-sigma emitter comes on 35 dumps before the bandpass-block
+    # boundary at dump 1280 (T = 256).  The aligned 64-dump block before it holds 35 of
+    # its dumps (1.3 x 35 / 64 x 8 = 5.7 sigma, under z = 5 plus the roughness term);
+    # the block half a block later spans the boundary, and tested as its two aligned
+    # halves, each against its own bandpass block, holds 64 (10.4 sigma).  Its first
+    # dumps before the boundary must be found: 0.96-1.00 over seeds 23-25, where the
+    # shifted blocks that span a boundary were left untested before (0.35 at seed 23).
+    rng = np.random.default_rng(23)
+    mu, x = _plane(rng, n=2048, m=512)
+    x[1245:1500, 100:120] += (mu[1245:1500, 100:120] * 1.3 * SIGMA).astype(np.float32)
+    ex = np.zeros(x.shape, bool)
+    bp, rows = block_bandpass(x, ex, 0, 256)
+    hit = persistent_flags(x, ex, ex, bp, rows, 0, SIGMA, (256, 128, 64), 64, 5.0)
+    assert hit[1248:1280, 100:120].mean() > 0.7
+    assert hit[:1200].mean() < 0.003
+
+
 def test_chunks_anywhere_exact_with_the_new_stages():
     # With the halo of sumthreshold_halo, one sigma and t0, a chunk gives the whole
     # plane's result (the chunk-invariance contract of the engine).

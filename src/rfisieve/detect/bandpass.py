@@ -247,8 +247,11 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     those half a block later (j L + L / 2 ..): an emitter on for about L dumps across
     an aligned boundary puts half its dumps in each aligned block, e sqrt(L) / 2 in
     each, and all of them in the shifted one (overlapping windows; common practice).
-    A shifted block that would span two bandpass blocks is not tested, so every
-    block still nests in one bandpass block (the halo rule is unchanged).  Field
+    A shifted block that spans two bandpass blocks is tested as its two aligned
+    halves together (:func:`_straddling`), so every mean still nests in one bandpass
+    block (the halo grows by L / 2 for the longest L < T,
+    :func:`rfisieve.detect.sumthreshold.sumthreshold_halo`); at L = T, where every
+    shifted block spans two, they are left out.  Field
     scenes of switching emitters and TDMA, L band at z = 6, pooled over seeds 11, 21,
     ..., 81 (tuning scenes): recall 0.973 -> 0.976 and 0.919 -> 0.921, false alarms
     unchanged (bench/quality.py --field --seed S).
@@ -298,7 +301,7 @@ class BlockMeans:
         self.n, self.m = n, m = x.shape
         self.sigma, self.bp, self.lengths = sigma, bp, tuple(lengths)
         self.usable = bool(sigma > 0) and n > 0 and m >= 16
-        self.memo, self.zmemo = {}, {}
+        self.memo, self.zmemo, self.bounds = {}, {}, {}
         if not self.usable:
             return
         # sums over aligned parts of S dumps of the samples neither excluded nor in
@@ -343,6 +346,7 @@ class BlockMeans:
             new_group = np.r_[True, gid[1:] != gid[:-1]]
             starts = np.flatnonzero(new_group)
             ends = np.r_[starts[1:], self.P]
+            self.bounds[k, shift] = (starts, ends)
             self.memo[k, shift] = (self.csum[ends] - self.csum[starts], self.ccnt[ends] - self.ccnt[starts],
                                    self.crow[ends] - self.crow[starts], self.pblock[starts],
                                    np.cumsum(new_group) - 1, self.pblock[starts] == self.pblock[ends - 1])
@@ -426,10 +430,13 @@ def persistence_test(products, z, protect=None):
         k = int(L) // S
         # the aligned blocks, and the blocks half a block later (an emitter on for
         # about L dumps across an aligned boundary would show half its excess in each)
-        for shift in (0, k // 2) if k > 1 else (0,):
-            if shift and not b0.grouped(k, shift)[5].any():
-                continue  # every shifted block spans two bandpass blocks (L = T): none is tested
+        for shift in (0, k // 2) if k > 1 and k % 2 == 0 else (0,):
             ok, zs, zm, grp = _joint([b.excess(k, shift=shift) for b in products])
+            if shift:
+                if not b0.grouped(k, shift)[5].any():
+                    continue  # L = T: every shifted block spans two bandpass blocks, left out
+                    # (tested as halves, they changed no score on the tuning scenes)
+                ok, zs, zm = _straddling(b0, products, k, shift, ok, zs, zm)
             with np.errstate(all="ignore"):
                 med = _row_medians(zm, ok)
                 sc = MAD_TO_SIGMA * _row_medians(np.abs(zm - med[:, None]), ok)
@@ -474,6 +481,33 @@ def persistence_test(products, z, protect=None):
     for b in products:
         outs.append(rows & ~b.ex)
     return outs
+
+
+def _straddling(b0, products, k, shift, ok, zs, zm):
+    """The shifted blocks of k parts that span two bandpass blocks, tested as their two
+    aligned halves together: z = (z_1 + z_2) / sqrt(2), each half's excess over its own
+    bandpass block's baselines and gain (equal halves of independent noise: unit
+    variance again; common practice), usable when both halves are.  So every mean
+    still nests in one bandpass block (a dump now depends on the next bandpass
+    block's window up to L / 2 away: the halo grows by that), and an emitter
+    that switches on shortly before a bandpass-block boundary is tested over the
+    block across it (field scenes, tuning seeds: a 1.1-sigma switching emitter that
+    came on 35 dumps before a boundary lost those dumps).  Returns (ok, zs, zm) with
+    those rows replaced."""
+    inside = b0.grouped(k, shift)[5]
+    if inside.all():
+        return ok, zs, zm
+    hok, hzs, hzm, hgrp = _joint([b.excess(k // 2) for b in products])
+    starts, ends = b0.bounds[k, shift]
+    rows = np.flatnonzero(~inside)
+    h1, h2 = hgrp[starts[rows]], hgrp[ends[rows] - 1]
+    two = h2 == h1 + 1                      # a whole group of each half (not at a plane's end)
+    rows, h1, h2 = rows[two], h1[two], h2[two]
+    ok, zs, zm = ok.copy(), zs.copy(), zm.copy()
+    ok[rows] = hok[h1] & hok[h2]
+    zs[rows] = (hzs[h1] + hzs[h2]) / math.sqrt(2.0)
+    zm[rows] = (hzm[h1] + hzm[h2]) / math.sqrt(2.0)
+    return ok, zs, zm
 
 
 def _trim_run_ends(products, flags, rows):

@@ -589,15 +589,17 @@ def sumthreshold_halo(settings):
     dump depends on its block's bandpass, a quantile over the block and half a block
     on each side (reach 3 T / 2, :func:`rfisieve.detect.bandpass.bandpass_reach`),
     so the detections reach that much further; the persistence test's blocks nest
-    in the bandpass blocks (its result at a dump depends on that block's window
-    only), and the trimming of its runs' ends looks one part (``PART_DUMPS`` = 16)
+    in the bandpass blocks, but a shifted block across a bandpass boundary is tested
+    as its two aligned halves, so a dump up to L / 2 from the boundary (L the longest
+    block length under T) depends on the next bandpass block's window too (L / 2
+    more), and the trimming of its runs' ends looks one part (``PART_DUMPS`` = 16)
     beyond; the compact boxes add their height less one (2 dumps) and the edge test
-    (:func:`rfisieve.detect.bandpass.edge_flags`) one more.  For the L band
-    (T = 256, boxes of up to 3 dumps): 303 + 384 + 16 + 3 = 706, rounded up to 712.
-    With ``combine_feeds`` (the engine gives a feed pair's two auto products to
-    :func:`combined_flagger`) the pass on the summed residuals, which takes each
-    product's detections as flagged, adds R_st once more: L band 706 + 57 = 763,
-    rounded up to 768.
+    (:func:`rfisieve.detect.bandpass.edge_flags`) one more.  For the L band (T = 256,
+    blocks of 256, 128 and 64, boxes of up to 3 dumps): 303 + 384 + 64 + 16 + 3 = 770,
+    rounded up to 776.  With ``combine_feeds`` (the engine gives a feed pair's two
+    auto products to :func:`combined_flagger`) the pass on the summed residuals, which
+    takes each product's detections as flagged, adds R_st once more: L band
+    770 + 57 = 827, rounded up to 832.
 
     Parameters
     ----------
@@ -623,11 +625,14 @@ def sumthreshold_halo(settings):
     if tb:
         # the residual at a dump depends on its block's bandpass: reach 3 T / 2
         halo += bandpass_reach(tb)
-        # the persistence test's blocks nest in the bandpass blocks: its result at a
-        # dump depends on that block's window only (3 T / 2), already inside, and
-        # the run ends' trimming looks one part beyond
+        # the persistence test's blocks nest in the bandpass blocks, except the shifted
+        # blocks across a bandpass boundary, tested as their two aligned halves: a dump
+        # depends on the next block's window up to L / 2 away (L the longest block
+        # length under T; at L = T they are left out), and the run ends' trimming looks
+        # one part beyond
         if s.get("persist_dumps", 0):
-            halo += PART_DUMPS
+            shorter = [L for L in block_lengths(int(s["persist_dumps"]), tb) if L < tb]
+            halo += (max(shorter) // 2 if shorter else 0) + PART_DUMPS
     if s.get("compact_sigma", 0.0):
         # the boxes reach their height less one; the edge test one dump further
         halo += max(dt for dt, _ in COMPACT_SHAPES) - 1 + 1
