@@ -431,11 +431,11 @@ def persistence_test(products, z, protect=None):
         # the aligned blocks, and the blocks half a block later (an emitter on for
         # about L dumps across an aligned boundary would show half its excess in each)
         for shift in (0, k // 2) if k > 1 and k % 2 == 0 else (0,):
+            if shift and not b0.grouped(k, shift)[5].any():
+                continue  # L = T: every shifted block spans two bandpass blocks, left out
+                # (tested as halves, they changed no score on the tuning scenes)
             ok, zs, zm, grp = _joint([b.excess(k, shift=shift) for b in products])
             if shift:
-                if not b0.grouped(k, shift)[5].any():
-                    continue  # L = T: every shifted block spans two bandpass blocks, left out
-                    # (tested as halves, they changed no score on the tuning scenes)
                 ok, zs, zm = _straddling(b0, products, k, shift, ok, zs, zm)
             with np.errstate(all="ignore"):
                 med = _row_medians(zm, ok)
