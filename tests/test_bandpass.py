@@ -250,6 +250,10 @@ def test_chunks_anywhere_exact_with_the_new_stages():
         lo, hi = max(0, a - h), min(len(x), b + h)
         part = sumthreshold_flagger(x[lo:hi], sigma=SIGMA, t0=lo, **s)[a - lo:b - lo]
         assert np.array_equal(part, whole[a:b])
+        # told which rows are wanted, the flagger runs all but the bandpass on fewer rows
+        # (those within the rule's reach less the bandpass's), with the same result there
+        part = sumthreshold_flagger(x[lo:hi], sigma=SIGMA, t0=lo, wanted=(a - lo, b - lo), **s)
+        assert np.array_equal(part[a - lo:b - lo], whole[a:b])
 
 
 def test_combining_two_polarizations_finds_a_carrier_neither_alone_passes():

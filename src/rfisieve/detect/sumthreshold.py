@@ -225,7 +225,7 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
                          background_time=15.0, background_freq=5.0, bandpass_dumps=0,
                          persist_dumps=0, persist_sigma=6.0, baseline_channels=64,
                          compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None,
-                         combine_feeds=False):
+                         combine_feeds=False, wanted=None):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
@@ -318,6 +318,13 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
     combine_feeds : bool
         The band key that makes the engine give a feed pair to
         :func:`combined_flagger`; without effect on one plane.
+    wanted : (int, int), optional
+        Plane rows [lo, hi) whose detections are needed (a chunk's core, with the
+        merge's halo).  With the bandpass model on, rows farther from them than the
+        rule of :func:`sumthreshold_halo` less the bandpass's reach serve only the
+        bandpass estimate: everything after it runs without them, and their
+        detections are returned False.  The detections of the rows within the halo
+        rule's reach are unchanged (the engine's chunk-invariance tests check it).
 
     Returns
     -------
@@ -332,10 +339,15 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
     return _flag(values, mask, chi1, rho, max_window_time, max_window_freq, iterations,
                  start_scale, background_time, background_freq, invalid, sigma, t0,
                  bandpass_dumps=bandpass_dumps, persist_dumps=persist_dumps, persist_sigma=persist_sigma,
-                 baseline_channels=baseline_channels, compact_sigma=compact_sigma, protect=protect)[0]
+                 baseline_channels=baseline_channels, compact_sigma=compact_sigma, protect=protect,
+                 wanted=wanted, rest=_reach_after_bandpass(
+                     dict(iterations=iterations, max_window_time=max_window_time,
+                          background_time=background_time, bandpass_dumps=bandpass_dumps,
+                          persist_dumps=persist_dumps, compact_sigma=compact_sigma), False))[0]
 
 
-def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=None, **settings):
+def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=None, wanted=None,
+                     **settings):
     r"""SumThreshold on the two auto products of one feed pair together (both
     polarizations of one antenna).
 
@@ -366,8 +378,9 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
         Each product's noise sigma (:func:`sumthreshold_noise`); None estimates it.
     masks, invalids : sequence of ndarray of bool, optional
         Per product, as for :func:`sumthreshold_flagger`.
-    t0, protect, **settings
-        As for :func:`sumthreshold_flagger`.
+    t0, protect, wanted, **settings
+        As for :func:`sumthreshold_flagger` (``wanted``: both products run on the same
+        rows, with the combined pass's reach added).
 
     Returns
     -------
@@ -382,34 +395,40 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     s.pop("enabled", None)
     s.pop("combine_feeds", None)
     own, kept = [], []
+    rest = _reach_after_bandpass(s, True)
     for x, sig, mk, inv, name in zip(planes, sigmas, masks, invalids, ("pair", "work")):
         keep = {}
-        own.append(_flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, keep=keep, scratch=name, **s)[0])
+        own.append(_flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, keep=keep, scratch=name,
+                         wanted=wanted, rest=rest, **s)[0])
         kept.append(keep)
     if not all(kept):       # a product without a valid sample: nothing to combine
         return own
-    (ka, kb), (n, m) = kept, own[0].shape
+    ka, kb = kept
+    lo, hi = ka["rows"]     # the rows both products ran on (the same plane shape, the same rows)
+    n, m = hi - lo, own[0].shape[1]
     mw = ka["max_window"]
     z = np.empty((n, m), ka["grid"].dtype)
     lev = np.empty((n, m), np.uint8)
-    _, lo, hi = _grid_args(1.0, mw)
-    rowbad, colbad = kernels.pair_grid(ka["grid"], kb["grid"], ka["lev0"], kb["lev0"], own[0], own[1],
-                                       1.0 / np.sqrt(2.0), lo, hi, z, lev)
+    glo, ghi = _grid_args(1.0, mw)[1:]
+    rowbad, colbad = kernels.pair_grid(ka["grid"], kb["grid"], ka["lev0"], kb["lev0"], own[0][lo:hi],
+                                       own[1][lo:hi], 1.0 / np.sqrt(2.0), glo, ghi, z, lev)
     unit, rho = ka["unit"], float(s.get("rho", 1.5))
     hit = np.zeros((n, m), np.bool_)
     _st_time(z, lev, rowbad, colbad, unit, rho, _npass(s.get("max_window_time", 32)), hit, False)
     _st_freq(z, lev, rowbad, colbad, unit, rho, _npass(s.get("max_window_freq", 128)), hit, True)
     if s.get("compact_sigma", 0.0):
         hit |= compact_flags(z, lev, hit, unit / float(s.get("chi1", 8.0)), float(s["compact_sigma"]))
-        hit |= edge_flags(z, lev, hit | own[0] | own[1], unit / float(s.get("chi1", 8.0)))
+        hit |= edge_flags(z, lev, hit | own[0][lo:hi] | own[1][lo:hi], unit / float(s.get("chi1", 8.0)))
     hit &= lev != kernels.LEV_INVALID
-    out = [d | hit for d in own]
+    out = own               # fresh arrays of _flag's: or'ed in place
+    for d in out:
+        d[lo:hi] |= hit
     if "blocks" in ka and "blocks" in kb:
         # the persistence test on the pair's block means together
         prot = None if protect is None else np.asarray(protect, dtype=np.bool_)
         for d, p in zip(out, persistence_test([ka["blocks"], kb["blocks"]], float(s.get("persist_sigma", 6.0)),
                                               prot)):
-            d |= p
+            d[lo:hi] |= p
     return out
 
 
@@ -472,11 +491,14 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
           iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
           invalid=None, sigma=None, t0=0, bandpass_dumps=0, persist_dumps=0, persist_sigma=6.0,
           baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, keep=None,
-          scratch="work"):
+          scratch="work", wanted=None, rest=0):
     """The flagger; returns (detections, sigma of the last iteration).  With ``keep``
     (a dict) it also gets the last iteration's residual on the grid (``grid``: chi_1
-    sigma is ``unit`` steps, windows up to ``max_window``) and the levels (``lev0``),
-    copies of this thread's buffers (nothing when the plane has no valid sample)."""
+    sigma is ``unit`` steps, windows up to ``max_window``), the levels (``lev0``),
+    this thread's buffers, and ``rows``, the plane rows [lo, hi) they hold (nothing when
+    the plane has no valid sample).  With the bandpass on and ``wanted`` given, the
+    bandpass is estimated on the whole plane and the rest runs on the rows within
+    ``rest`` dumps of ``wanted`` (:func:`sumthreshold_flagger`)."""
     x = np.ascontiguousarray(values, dtype=np.float32)
     if x.ndim != 2:
         raise ValueError("values must be a 2-D (time, channel) plane")
@@ -498,10 +520,24 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
     base_ex = _buf(work, "base_ex", np.bool_, (n, m))     # input-flagged or invalid
     rowbad, colbad = kernels.init_flagger(x, inv, invalid is not None, flagged, mask is not None,
                                           lev0, base_ex)
-    raw = x
+    full, lo, hi = n, 0, n
     if bandpass_dumps:
         # the bandpass per block, divided out: the surface then fits only gain and sky
         bp, rowblock = block_bandpass(x, base_ex, t0, int(bandpass_dumps))
+        if wanted is not None:
+            # rows farther than ``rest`` from the wanted ones served the bandpass only
+            lo, hi = max(0, int(wanted[0]) - int(rest)), min(n, int(wanted[1]) + int(rest))
+            lo, hi = (lo, hi) if lo < hi else (0, n)
+        if (lo, hi) != (0, n):
+            x, lev0, base_ex, rowbad = x[lo:hi], lev0[lo:hi], base_ex[lo:hi], rowbad[lo:hi]
+            if colbad.any():
+                colbad = np.count_nonzero(lev0 == kernels.LEV_INVALID, axis=0).astype(np.int64)
+            first = rowblock[lo]
+            rowblock = rowblock[lo:hi] - first
+            bp = bp[first:rowblock[-1] + first + 1]
+            t0, n = int(t0) + lo, hi - lo
+    raw = x
+    if bandpass_dumps:
         y = _buf(work, "bp_div", np.float32, (n, m))
         bpk.divide_rows(x, bp, rowblock, y)
         x = y
@@ -528,7 +564,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
             coarse_residual(x, base_ex, prev, lev0, bt, bf, r, work, int(t0))
             sig = robust_sigma2(r, base_ex, prev) if sigma is None else sigma
             if not np.isfinite(sig):
-                return np.zeros((n, m), np.bool_), sig
+                return np.zeros((full, m), np.bool_), sig
             c1 = float(chi1) * factor * sig
             rg, unit = to_grid(r, c1, mw, rg)
         if i == len(factors) - 1:
@@ -540,9 +576,9 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         _st_freq(rg, lev0, rowbad, colbad, unit, float(rho), np_f, det, True)
         det, prev = prev, det
     if keep is not None and np.isfinite(sig):
-        keep.update(grid=rg, lev0=lev0, unit=unit, max_window=mw)
+        keep.update(grid=rg, lev0=lev0, unit=unit, max_window=mw, rows=(lo, hi))
     if noise_only or not np.isfinite(sig):
-        return prev, sig
+        return _whole(prev, lo, full), sig
     if compact_sigma:
         # compact shapes on the last residual (grid steps per sigma: unit / chi1)
         prev |= compact_flags(rg, lev0, prev, unit / float(chi1), float(compact_sigma))
@@ -556,7 +592,17 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         prev |= persistence_test([blocks], float(persist_sigma), prot)[0]
         if keep is not None:
             keep["blocks"] = blocks      # the pair's persistence test reuses its block means
-    return prev, sig
+    return _whole(prev, lo, full), sig
+
+
+def _whole(det, lo, full):
+    """Detections of plane rows lo .. lo + len(det), as a plane of ``full`` rows (the
+    rows the flagger left out are False)."""
+    if lo == 0 and det.shape[0] == full:
+        return det
+    out = np.zeros((full,) + det.shape[1:], np.bool_)
+    out[lo:lo + det.shape[0]] = det
+    return out
 
 
 def sumthreshold_halo(settings):
@@ -615,16 +661,25 @@ def sumthreshold_halo(settings):
     s = dict(settings or {})
     if not s.get("enabled", True):
         return 0
-    it = max(1, int(s.get("iterations", 3)))
-    bt = float(s.get("background_time", 15.0))
-    r_st = sum(M - 1 for M in window_sizes(s.get("max_window_time", 32)))
-    r_b = coarse_reach(bt)
-    ct = cell_size(bt)
-    halo = it * (r_st + r_b)
+    ct = cell_size(float(s.get("background_time", 15.0)))
+    halo = _reach_after_bandpass(s, bool(s.get("combine_feeds", False)))
     tb = int(s.get("bandpass_dumps", 0) or 0)
     if tb:
         # the residual at a dump depends on its block's bandpass: reach 3 T / 2
         halo += bandpass_reach(tb)
+    return int(-(-halo // ct) * ct)
+
+
+def _reach_after_bandpass(settings, pair):
+    """The reach of :func:`sumthreshold_halo`'s rule less the bandpass's (unrounded):
+    how far a detection depends on the residual once each row's bandpass is known
+    (``pair``: with the feed pair's combined pass)."""
+    s = settings
+    it = max(1, int(s.get("iterations", 3)))
+    r_st = sum(M - 1 for M in window_sizes(s.get("max_window_time", 32)))
+    halo = it * (r_st + coarse_reach(float(s.get("background_time", 15.0))))
+    tb = int(s.get("bandpass_dumps", 0) or 0)
+    if tb:
         # the persistence test's blocks nest in the bandpass blocks, except the shifted
         # blocks across a bandpass boundary, tested as their two aligned halves: a dump
         # depends on the next block's window up to L / 2 away (L the longest block
@@ -636,8 +691,8 @@ def sumthreshold_halo(settings):
     if s.get("compact_sigma", 0.0):
         # the boxes reach their height less one; the edge test one dump further
         halo += max(dt for dt, _ in COMPACT_SHAPES) - 1 + 1
-    if s.get("combine_feeds", False):
+    if pair:
         # a feed pair's combined pass (:func:`combined_flagger`) runs SumThreshold once
         # more on the last residuals, with the products' detections as flagged: R_st more
         halo += r_st
-    return int(-(-halo // ct) * ct)
+    return halo

@@ -227,7 +227,7 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None, hit=None
     hist = None
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
         if hit is None:
-            hit = _sumthreshold_hits([prep], (p,), band, meta, t0)[0]
+            hit = _sumthreshold_hits([prep], (p,), band, meta, t0, core if rows is None else rows)[0]
         out[hit[r] & ~excluded[r]] |= bits.SUMTHRESHOLD
     elif detector == "sk" and meta["autos"][p] and "sk" in meta:
         hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)
@@ -235,19 +235,21 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None, hit=None
     return out, hist
 
 
-def _sumthreshold_hits(preps, group, band, meta, t0):
+def _sumthreshold_hits(preps, group, band, meta, t0, wanted):
     """SumThreshold's detections of each product of ``group``: alone, or for a feed pair
     by :func:`rfisieve.detect.sumthreshold.combined_flagger` (each product's own
-    detections, or'ed with those on the pair's summed normalised residuals)."""
+    detections, or'ed with those on the pair's summed normalised residuals).  Only the
+    rows ``wanted`` are exact (the flagger skips what they do not depend on)."""
     from rfisieve.detect.sumthreshold import combined_flagger, sumthreshold_flagger
 
     st = _st_settings(band)
     if len(group) == 1:
         prep = preps[0]
         return [sumthreshold_flagger(prep["values"], invalid=prep["excluded"], sigma=meta["sigma"][group[0]],
-                                     t0=t0, protect=meta.get("protect"), **st)]
+                                     t0=t0, protect=meta.get("protect"), wanted=wanted, **st)]
     return combined_flagger([pr["values"] for pr in preps], [meta["sigma"][p] for p in group],
-                            invalids=[pr["excluded"] for pr in preps], t0=t0, protect=meta.get("protect"), **st)
+                            invalids=[pr["excluded"] for pr in preps], t0=t0, protect=meta.get("protect"),
+                            wanted=wanted, **st)
 
 
 def _detect_group(preps, group, detector, band, meta, t0, core, rows=None):
@@ -255,7 +257,7 @@ def _detect_group(preps, group, detector, band, meta, t0, core, rows=None):
     detections found together); a list of its results in the group's order."""
     hits = [None] * len(group)
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
-        hits = _sumthreshold_hits(preps, group, band, meta, t0)
+        hits = _sumthreshold_hits(preps, group, band, meta, t0, core if rows is None else rows)
     return [_detect_product(prep, p, detector, band, meta, t0, core, rows=rows, hit=h)
             for prep, p, h in zip(preps, group, hits)]
 
