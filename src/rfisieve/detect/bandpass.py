@@ -284,7 +284,8 @@ def persistent_flags(values, exclude, detected, bp, rowblock, t0, sigma, lengths
     -------
     ndarray of bool (ntime, nchan)
     """
-    bm = BlockMeans(values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect)
+    bm = BlockMeans(values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect,
+                    bandpass_dumps=bandpass_dumps)
     return persistence_test([bm], z, protect)[0]
 
 
@@ -294,12 +295,13 @@ class BlockMeans:
     so that the persistence test of a product and of its feed pair
     (:func:`persistence_test`) share them.  Arguments as for :func:`persistent_flags`."""
 
-    def __init__(self, values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect=None):
+    def __init__(self, values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect=None, *,
+                 bandpass_dumps):
         self.x = x = np.ascontiguousarray(values, dtype=np.float32)
         self.rowblock = rowblock
         self.ex = np.ascontiguousarray(exclude, dtype=np.bool_)
         self.n, self.m = n, m = x.shape
-        self.sigma, self.bp, self.lengths = sigma, bp, tuple(lengths)
+        self.sigma, self.bp, self.lengths, self.T = sigma, bp, tuple(lengths), int(bandpass_dumps)
         self.usable = bool(sigma > 0) and n > 0 and m >= 16
         self.memo, self.zmemo, self.bounds = {}, {}, {}
         if not self.usable:
@@ -431,9 +433,12 @@ def persistence_test(products, z, protect=None):
         # the aligned blocks, and the blocks half a block later (an emitter on for
         # about L dumps across an aligned boundary would show half its excess in each)
         for shift in (0, k // 2) if k > 1 and k % 2 == 0 else (0,):
-            if shift and not b0.grouped(k, shift)[5].any():
-                continue  # L = T: every shifted block spans two bandpass blocks, left out
-                # (tested as halves, they changed no score on the tuning scenes)
+            if shift and int(L) >= b0.T:
+                # L = T: every shifted block spans two bandpass blocks, left out (a rule of
+                # L and T alone: a test of whether any shifted block of the plane lies in
+                # one bandpass block would keep the partial ones at a plane's ends, so the
+                # result would depend on where the plane starts, i.e. on the chunks)
+                continue
             ok, zs, zm, grp = _joint([b.excess(k, shift=shift) for b in products])
             if shift:
                 ok, zs, zm = _straddling(b0, products, k, shift, ok, zs, zm)

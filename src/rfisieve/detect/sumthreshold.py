@@ -340,7 +340,7 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
                  start_scale, background_time, background_freq, invalid, sigma, t0,
                  bandpass_dumps=bandpass_dumps, persist_dumps=persist_dumps, persist_sigma=persist_sigma,
                  baseline_channels=baseline_channels, compact_sigma=compact_sigma, protect=protect,
-                 wanted=wanted, rest=_reach_after_bandpass(
+                 wanted=wanted, rest=_rest_after_bandpass(
                      dict(iterations=iterations, max_window_time=max_window_time,
                           background_time=background_time, bandpass_dumps=bandpass_dumps,
                           persist_dumps=persist_dumps, compact_sigma=compact_sigma), False))[0]
@@ -395,7 +395,7 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     s.pop("enabled", None)
     s.pop("combine_feeds", None)
     own, kept = [], []
-    rest = _reach_after_bandpass(s, True)
+    rest = _rest_after_bandpass(s, True)
     for x, sig, mk, inv, name in zip(planes, sigmas, masks, invalids, ("pair", "work")):
         keep = {}
         own.append(_flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, keep=keep, scratch=name,
@@ -588,7 +588,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         strong = prev & (rg > STRONG_SIGMA * unit / float(chi1))
         prot = None if protect is None else np.asarray(protect, dtype=np.bool_)
         blocks = BlockMeans(raw, base_ex, strong, bp, rowblock, int(t0), sig, int(baseline_channels), lengths,
-                            prot)
+                            prot, bandpass_dumps=int(bandpass_dumps))
         prev |= persistence_test([blocks], float(persist_sigma), prot)[0]
         if keep is not None:
             keep["blocks"] = blocks      # the pair's persistence test reuses its block means
@@ -644,8 +644,8 @@ def sumthreshold_halo(settings):
     blocks of 256, 128 and 64, boxes of up to 3 dumps): 303 + 384 + 64 + 16 + 3 = 770,
     rounded up to 776.  With ``combine_feeds`` (the engine gives a feed pair's two
     auto products to :func:`combined_flagger`) the pass on the summed residuals, which
-    takes each product's detections as flagged, adds R_st once more: L band
-    770 + 57 = 827, rounded up to 832.
+    takes each product's detections as flagged, adds R_st once more, and its boxes and
+    edge test 3 more: L band 770 + 57 + 3 = 830, rounded up to 832.
 
     Parameters
     ----------
@@ -670,6 +670,15 @@ def sumthreshold_halo(settings):
     return int(-(-halo // ct) * ct)
 
 
+def _rest_after_bandpass(settings, pair):
+    """Rows a wanted row's detections need beyond it once the bandpass is estimated
+    (``wanted`` of :func:`sumthreshold_flagger`): the halo of :func:`sumthreshold_halo`
+    less the bandpass's reach, so the rows kept lie as far inside the plane as a
+    chunk's core lies inside its halo (``pair``: with the feed pair's combined pass)."""
+    s = dict(settings, enabled=True, combine_feeds=bool(pair))
+    return sumthreshold_halo(s) - bandpass_reach(int(s.get("bandpass_dumps", 0) or 0))
+
+
 def _reach_after_bandpass(settings, pair):
     """The reach of :func:`sumthreshold_halo`'s rule less the bandpass's (unrounded):
     how far a detection depends on the residual once each row's bandpass is known
@@ -688,11 +697,12 @@ def _reach_after_bandpass(settings, pair):
         if s.get("persist_dumps", 0):
             shorter = [L for L in block_lengths(int(s["persist_dumps"]), tb) if L < tb]
             halo += (max(shorter) // 2 if shorter else 0) + PART_DUMPS
-    if s.get("compact_sigma", 0.0):
-        # the boxes reach their height less one; the edge test one dump further
-        halo += max(dt for dt, _ in COMPACT_SHAPES) - 1 + 1
+    boxes = max(dt for dt, _ in COMPACT_SHAPES) - 1 + 1 if s.get("compact_sigma", 0.0) else 0
+    # the boxes reach their height less one; the edge test one dump further
+    halo += boxes
     if pair:
         # a feed pair's combined pass (:func:`combined_flagger`) runs SumThreshold once
-        # more on the last residuals, with the products' detections as flagged: R_st more
-        halo += r_st
+        # more on the last residuals, with the products' detections as flagged (R_st
+        # more), and its boxes and edge test again
+        halo += r_st + boxes
     return halo
