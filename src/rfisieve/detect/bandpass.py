@@ -875,14 +875,16 @@ def _fine_excess_joint(rows, z, protect=None):
     if m < 16:
         return hit
     scs = []
-    for lb in lbs:
-        inner = _loo_excess(lb)[1][3:m - 3]
+    first = [_loo_excess(lb) for lb in lbs]     # (e, sym) with every neighbour as measured
+    for _, sym in first:
+        inner = sym[3:m - 3]
         scs.append(MAD_TO_SIGMA * np.median(np.abs(inner - np.median(inner))))
     if not all(sc > 0 for sc in scs):
         return hit
 
     def joint(nbs):
-        return sum(_loo_excess(lb, nb)[0] / sc for lb, nb, sc in zip(lbs, nbs, scs)) / math.sqrt(k)
+        return sum((f[0] if nb is None else _loo_excess(lb, nb)[0]) / sc
+                   for lb, nb, sc, f in zip(lbs, nbs, scs, first)) / math.sqrt(k)
 
     return _found_channels(list(lbs), joint([None] * k) > z, lambda nbs: joint(nbs) > z, protect)
 

@@ -223,16 +223,22 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None, hit=None
     """
     r = slice(*(core if rows is None else rows))
     values, invalid, excluded = prep["values"], prep["invalid"], prep["excluded"]
-    out = np.where(invalid[r], np.uint8(bits.INVALID), np.uint8(0))
+    out = _bit(invalid[r], bits.INVALID)
     hist = None
     if detector == "sumthreshold" and band["sumthreshold"]["enabled"]:
         if hit is None:
             hit = _sumthreshold_hits([prep], (p,), band, meta, t0, core if rows is None else rows)[0]
-        out[hit[r] & ~excluded[r]] |= bits.SUMTHRESHOLD
+        out |= _bit(hit[r] & ~excluded[r], bits.SUMTHRESHOLD)
     elif detector == "sk" and meta["autos"][p] and "sk" in meta:
-        hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core)
-        out[hit[r] & ~excluded[r]] |= bits.SK
+        hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core, rows=r)
+        out |= _bit(hit[r] & ~excluded[r], bits.SK)
     return out, hist
+
+
+def _bit(mask, value):
+    """uint8 plane: ``value`` where the bool plane ``mask`` is True, 0 elsewhere (one
+    multiply of its bytes, 0 or 1: no masked scatter)."""
+    return np.ascontiguousarray(mask, dtype=np.bool_).view(np.uint8) * np.uint8(value)
 
 
 def _sumthreshold_hits(preps, group, band, meta, t0, wanted):
@@ -262,8 +268,10 @@ def _detect_group(preps, group, detector, band, meta, t0, core, rows=None):
             for prep, p, h in zip(preps, group, hits)]
 
 
-def _kurtosis(prep, values, excluded, sk, t0, core):
-    from rfisieve.detect.kurtosis import sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
+def _kurtosis(prep, values, excluded, sk, t0, core, rows=None):
+    """SK's detections (a plane of the rows of ``values``; exact within ``rows``, a slice,
+    default all) and the SK histogram of the ``core`` rows."""
+    from rfisieve.detect.kurtosis import block_halo, sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
 
     m, n, d, edges = sk["m"], sk["n"], sk["d"], sk["edges"]
     valid = ~excluded
@@ -276,7 +284,12 @@ def _kurtosis(prep, values, excluded, sk, t0, core):
         ski = ski[valid[rows]]
         counts, _ = np.histogram(np.clip(ski[np.isfinite(ski)], edges[0], edges[-1] - 1e-9), edges)
         return hit, counts.astype(np.int64)
-    hit = sk_flag_blocks(values, valid, m, n, d, thresholds=sk["table"], t0=t0)
+    # the blocks reach M - 1 dumps (block_halo): the rows beyond that of the wanted ones
+    # only served SumThreshold's bandpass, so SK skips them
+    nt = values.shape[0]
+    a, b = (0, nt) if rows is None else (max(0, rows.start - block_halo(m)), min(nt, rows.stop + block_halo(m)))
+    hit = np.zeros(values.shape, np.bool_)
+    hit[a:b] = sk_flag_blocks(values[a:b], valid[a:b], m, n, d, thresholds=sk["table"], t0=t0 + a)
     return hit, sk_block_histogram(values, valid, m, n, d, edges, t0=t0, rows=core)
 
 
