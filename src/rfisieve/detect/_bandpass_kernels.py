@@ -180,9 +180,13 @@ def box_test(g, lev0, det, shapes, thrs, rest, out):
     less its largest free sample exceeds rest[k], marks its free samples in out.
     Returns the number of boxes hit.
 
-    Per dump t a ring holds the last D rows' prefix sums over channels; the column
-    sums of the boxes ending at t grow one row at a time (dt = 1, 2, ..., D), and
-    each box sum is a difference of two of them (exact integer sums)."""
+    Per dump t a ring holds the last D rows' free values; the column sums of the
+    boxes ending at t grow one row at a time (dt = 1, 2, ..., D), and each shape's
+    box sums are the sums of df neighbouring column sums (exact integer sums in the
+    grid's type: a box of up to 18 samples on the int32 grid of
+    :func:`rfisieve.detect.sumthreshold.grid_unit` stays within 2**28).  Every loop
+    over the channels is a plain array loop (no running prefix sum), which the
+    compiler vectorises."""
     n, m = g.shape
     D = 1
     for k in range(shapes.shape[0]):
@@ -190,45 +194,49 @@ def box_test(g, lev0, det, shapes, thrs, rest, out):
     has = np.zeros(D + 1, np.bool_)
     for k in range(shapes.shape[0]):
         has[shapes[k, 0]] = True
-    rs = np.zeros((D, m + 1), np.int64)      # ring of per-row prefix sums
-    col = np.zeros(m + 1, np.int64)
+    ring = np.zeros((D, m), g.dtype)        # free values of the last D rows
+    col = np.zeros(m, g.dtype)              # column sums of the dt rows ending at t
+    box = np.zeros(m, g.dtype)              # box sums of one shape, by first channel
     hits = 0
     for t in range(n):
         r = t % D
-        acc = 0
-        rs[r, 0] = 0
         for c in range(m):
-            v = 0
-            if lev0[t, c] == 0 and not det[t, c]:
-                v = g[t, c]
-            acc += v
-            rs[r, c + 1] = acc
+            free = lev0[t, c] == 0 and not det[t, c]
+            ring[r, c] = g[t, c] if free else 0
         for dt in range(1, D + 1):
             if t + 1 < dt:
                 break
             rr = (t - dt + 1) % D
             if dt == 1:
-                for c in range(m + 1):
-                    col[c] = rs[rr, c]
+                for c in range(m):
+                    col[c] = ring[rr, c]
             else:
-                for c in range(m + 1):
-                    col[c] += rs[rr, c]
+                for c in range(m):
+                    col[c] += ring[rr, c]
             if not has[dt]:
                 continue
             for k in range(shapes.shape[0]):
                 if shapes[k, 0] != dt:
                     continue
                 df = shapes[k, 1]
+                nb = m - df + 1
+                if nb <= 0:
+                    continue
                 thr = thrs[k]
+                for c in range(nb):
+                    box[c] = col[c]
+                for j in range(1, df):
+                    for c in range(nb):
+                        box[c] += col[c + j]
                 # the largest box sum of the row first (a branch-free loop): in noise
                 # almost no row holds a box above the threshold
-                mx = col[df] - col[0]
-                for c in range(1, m - df + 1):
-                    mx = max(mx, col[c + df] - col[c])
+                mx = box[0]
+                for c in range(1, nb):
+                    mx = max(mx, box[c])
                 if mx <= thr:
                     continue
-                for c in range(m - df + 1):
-                    tot = col[c + df] - col[c]
+                for c in range(nb):
+                    tot = box[c]
                     if tot > thr:
                         big = np.int64(0)
                         for u in range(t - dt + 1, t + 1):
