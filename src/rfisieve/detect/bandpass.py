@@ -354,34 +354,45 @@ class BlockMeans:
                                    np.cumsum(new_group) - 1, self.pblock[starts] == self.pblock[ends - 1])
         return self.memo[k, shift]
 
-    def excess(self, k, cols=None, shift=0):
+    def excess(self, k, cols=None, shift=0, rows=None):
         """Per group of k parts (started ``shift`` parts late, :meth:`grouped`): (ok, z
         over the smaller excess, z over the running median's) and each part's group
         (see :func:`persistent_flags`; memoised for all channels); with ``cols``, only
         for those channels, the groups' gains then taken over every fourth channel (the
         gain is common to all channels: a quarter of them pins it to well under the
-        thresholds' resolution).  A group that spans two bandpass blocks is not ok
-        (only shifted groups can: the blocks nest in the bandpass blocks)."""
+        thresholds' resolution); with ``rows`` (group indices), only for those groups,
+        in that order (each group's values are its own: the same as in the whole
+        result).  A group that spans two bandpass blocks is not ok (only shifted
+        groups can: the blocks nest in the bandpass blocks)."""
         if cols is None and (k, shift) in self.zmemo:
-            return self.zmemo[k, shift]
-        gs, gc, rows, blk, grp, inside = self.grouped(k, shift)
+            res = self.zmemo[k, shift]
+            return res if rows is None else (res[0][rows], res[1][rows], res[2][rows], res[3])
+        gs, gc, rows_, blk, grp, inside = self.grouped(k, shift)
+        if rows is not None:
+            gs, gc, rows_, blk, inside = gs[rows], gc[rows], rows_[rows], blk[rows], inside[rows]
+        rows, whole = rows_, rows is None
         ok = self.free[None, :] & (gc >= np.maximum(2, rows // 4)[:, None]) & inside[:, None]
         enough = ok.sum(axis=1) >= 8
         ok &= enough[:, None]
-        gain_ok = ok if cols is None else ok & self.every4[None, :]
+        if cols is None:
+            sel, at, gain_ok = slice(None), slice(None), ok
+        else:
+            # only the channels the gain is taken over and those asked for
+            sel = np.union1d(np.flatnonzero(self.every4), cols)
+            at = np.searchsorted(sel, cols)
+            gs, gc = gs[:, sel], gc[:, sel]
+            gain_ok = ok[:, sel] & self.every4[None, sel]
         zs = []
         with np.errstate(all="ignore"):
             mean = gs / np.maximum(gc, 1)
             for base in self.bases:
-                ratio = mean / base[blk]
+                ratio = mean / base[:, sel][blk]
                 g = _row_medians(ratio, gain_ok)
                 g = np.where(np.isfinite(g) & enough, g, 1.0)
-                rc = ratio if cols is None else ratio[:, cols]
-                cc = gc if cols is None else gc[:, cols]
-                zs.append((rc / g[:, None] - 1.0) * np.sqrt(cc) / self.sigma)
+                zs.append((ratio[:, at] / g[:, None] - 1.0) * np.sqrt(gc[:, at]) / self.sigma)
         okc = ok if cols is None else ok[:, cols]
         res = (okc, np.minimum(zs[0], zs[1]), zs[0], grp)
-        if cols is None:
+        if cols is None and whole:
             self.zmemo[k, shift] = res
         return res
 
@@ -450,14 +461,6 @@ def persistence_test(products, z, protect=None):
             cand |= hit[grp]
     flags = np.zeros((P, m), np.bool_)
     strong = np.zeros((P, m), np.bool_)   # parts that would pass ISOLATED_PART_SIGMA too
-    cols = np.flatnonzero(cand.any(axis=0))
-    if cols.size:
-        # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
-        # the parts where it stands out by PART_SIGMA
-        okp, zp, _, _ = _joint([b.excess(1, cols) for b in products])
-        oks, zsub, _, gsub = _joint([b.excess(per_sub, cols) for b in products])
-        flags[:, cols] = cand[:, cols] & (oks & (zsub > REFINE_SIGMA))[gsub] & okp & (zp > PART_SIGMA)
-        strong[:, cols] = zp > ISOLATED_PART_SIGMA
     # narrow emitters on steep slopes: the bandpass block's fine test, placed in time
     # by the symmetric leave-one-out excess of the sub-block and part means
     nb = b0.bp.shape[0]
@@ -465,13 +468,33 @@ def persistence_test(products, z, protect=None):
     for i in range(nb):
         fine[i] = fine_excess(np.array([b.bp[i] for b in products]) if len(products) > 1 else b0.bp[i],
                               z, protect)
-    cols = np.flatnonzero(fine.any(axis=0))
+    fcols = np.flatnonzero(fine.any(axis=0))
+    fhit = None
+    if fcols.size:
+        fs_ok, fs_z, fs_g = _joint([b.fine_z(per_sub, fcols) for b in products])
+        fp_ok, fp_z, _ = _joint([b.fine_z(1, fcols) for b in products])
+        fhit = fine[b0.pblock][:, fcols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g] & fp_ok & (fp_z > PART_SIGMA)
+    cols = np.flatnonzero(cand.any(axis=0))
     if cols.size:
-        fs_ok, fs_z, fs_g = _joint([b.fine_z(per_sub, cols) for b in products])
-        fp_ok, fp_z, _ = _joint([b.fine_z(1, cols) for b in products])
-        fhit = fine[b0.pblock][:, cols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g] & fp_ok & (fp_z > PART_SIGMA)
-        flags[:, cols] |= fhit
-        strong[:, cols] |= fhit & (fp_z > ISOLATED_PART_SIGMA)
+        # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
+        # the parts where it stands out by PART_SIGMA; the excesses are taken only for
+        # the parts that can be flagged (a candidate, or a fine test's hit: a part's
+        # strength counts only where it is flagged) and their sub-blocks
+        can = cand[:, cols].any(axis=1)
+        if fhit is not None:
+            can |= fhit.any(axis=1)
+        pr = np.flatnonzero(can)
+        okp, zp, _, _ = _joint([b.excess(1, cols, rows=pr) for b in products])
+        gsub = b0.grouped(per_sub)[4][pr]
+        srows = np.unique(gsub)
+        oks, zsub, _, _ = _joint([b.excess(per_sub, cols, rows=srows) for b in products])
+        sub_ok = (oks & (zsub > REFINE_SIGMA))[np.searchsorted(srows, gsub)]
+        at = np.ix_(pr, cols)
+        flags[at] = cand[at] & sub_ok & okp & (zp > PART_SIGMA)
+        strong[at] = zp > ISOLATED_PART_SIGMA
+    if fhit is not None:
+        flags[:, fcols] |= fhit
+        strong[:, fcols] |= fhit & (fp_z > ISOLATED_PART_SIGMA)
     # a part flagged alone must pass ISOLATED_PART_SIGMA
     alone = flags.copy()
     alone[1:] &= ~flags[:-1]
@@ -502,12 +525,15 @@ def _straddling(b0, products, k, shift, ok, zs, zm):
     inside = b0.grouped(k, shift)[5]
     if inside.all():
         return ok, zs, zm
-    hok, hzs, hzm, hgrp = _joint([b.excess(k // 2) for b in products])
+    hgrp = b0.grouped(k // 2)[4]
     starts, ends = b0.bounds[k, shift]
     rows = np.flatnonzero(~inside)
     h1, h2 = hgrp[starts[rows]], hgrp[ends[rows] - 1]
     two = h2 == h1 + 1                      # a whole group of each half (not at a plane's end)
     rows, h1, h2 = rows[two], h1[two], h2[two]
+    need = np.unique(np.r_[h1, h2])        # the halves' excesses, of those groups only
+    hok, hzs, hzm, _ = _joint([b.excess(k // 2, rows=need) for b in products])
+    h1, h2 = np.searchsorted(need, h1), np.searchsorted(need, h2)
     ok, zs, zm = ok.copy(), zs.copy(), zm.copy()
     ok[rows] = hok[h1] & hok[h2]
     zs[rows] = (hzs[h1] + hzs[h2]) / math.sqrt(2.0)
