@@ -38,21 +38,25 @@ def test_chunking_does_not_change_the_mask(scan, tmp_path):
     assert agree >= 0.9999, agree
 
 
-def test_a_simulated_l_band_scan_gives_one_mask_whatever_the_chunks(tmp_path):
+@pytest.mark.parametrize("bands, ntime, seed", [(("L",), 4000, 7), (("L", "P", "C"), 5000, 14)])
+def test_a_simulated_scan_gives_one_mask_whatever_the_chunks(tmp_path, bands, ntime, seed):
     # Check value: the engine's chunk invariance (docs/design.md 5: a sample's result does
-    # not depend on where chunks start), with the shipped L-band config (bandpass model,
-    # persistence test, compact boxes, feed pairs) on the project's simulator's scene of
-    # 4000 dumps x 512 channels (seed 7).  This scene found two faults the test planes
-    # above missed: shifted blocks at L = T were tested or not depending on where a
-    # plane started (311 samples differed at chunks of 700 dumps), and a cut of the
-    # persistence test's rows to its own reach (43 samples).
+    # not depend on where chunks start), with the shipped band config (bandpass model,
+    # persistence test, compact boxes, feed pairs) on the project's simulator's scenes
+    # of 512 channels; the last scan of the night is flagged.  These scenes found three
+    # faults the test planes above missed: shifted blocks at L = T tested or not
+    # depending on where a plane started (L, seed 7: 311 samples differed at chunks of
+    # 700 dumps), a cut of the persistence test's rows to its own reach (43 samples),
+    # and an isolated part of a fine-test hit kept or not depending on whether its
+    # channel had a coarse candidate anywhere in the plane (C, seed 14: 13 samples).
     from rfisieve.config.load import load_band
     from rfisieve.sim.scans import simulate_night
 
     root = os.path.join(os.path.dirname(__file__), "..")
-    band = load_band(os.path.join(root, "config", "bands"), "L")[0]
-    simulate_night(tmp_path / "night", nscans=1, bands=("L",), ntime=4000, nchan=512, seed=7)
-    (scan,) = (tmp_path / "night" / "scans").glob("*.h5")
+    band = load_band(os.path.join(root, "config", "bands"), bands[-1])[0]
+    simulate_night(tmp_path / "night", nscans=len(bands), bands=bands, ntime=ntime, nchan=512, seed=seed,
+                   s2="none")
+    scan = sorted((tmp_path / "night" / "scans").glob(f"*_{bands[-1]}.h5"))[-1]
     masks = []
     for chunk in (700, 8192):
         out = tmp_path / f"c{chunk}.h5"

@@ -474,7 +474,13 @@ def persistence_test(products, z, protect=None):
         fs_ok, fs_z, fs_g = _joint([b.fine_z(per_sub, fcols) for b in products])
         fp_ok, fp_z, _ = _joint([b.fine_z(1, fcols) for b in products])
         fhit = fine[b0.pblock][:, fcols] & (fs_ok & (fs_z > REFINE_SIGMA))[fs_g] & fp_ok & (fp_z > PART_SIGMA)
-    cols = np.flatnonzero(cand.any(axis=0))
+    # the channels of a candidate, and those of a fine test's hit: a part found alone by
+    # either test is kept when its own excess (part mean over the baselines) passes
+    # ISOLATED_PART_SIGMA, whichever test found the channel elsewhere in the plane (a
+    # rule that looked at the part's excess only in channels with a candidate somewhere
+    # in the plane made a fine hit's fate depend on the plane's extent, i.e. on the
+    # chunks)
+    cols = np.union1d(np.flatnonzero(cand.any(axis=0)), fcols)
     if cols.size:
         # in the sub-blocks where the channel stands out by REFINE_SIGMA, and there in
         # the parts where it stands out by PART_SIGMA; the excesses are taken only for
