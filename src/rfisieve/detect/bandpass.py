@@ -367,11 +367,10 @@ class BlockMeans:
         if cols is None and (k, shift) in self.zmemo:
             res = self.zmemo[k, shift]
             return res if rows is None else (res[0][rows], res[1][rows], res[2][rows], res[3])
-        gs, gc, rows_, blk, grp, inside = self.grouped(k, shift)
+        gs, gc, nrow, blk, grp, inside = self.grouped(k, shift)
         if rows is not None:
-            gs, gc, rows_, blk, inside = gs[rows], gc[rows], rows_[rows], blk[rows], inside[rows]
-        rows, whole = rows_, rows is None
-        ok = self.free[None, :] & (gc >= np.maximum(2, rows // 4)[:, None]) & inside[:, None]
+            gs, gc, nrow, blk, inside = gs[rows], gc[rows], nrow[rows], blk[rows], inside[rows]
+        ok = self.free[None, :] & (gc >= np.maximum(2, nrow // 4)[:, None]) & inside[:, None]
         enough = ok.sum(axis=1) >= 8
         ok &= enough[:, None]
         if cols is None:
@@ -392,7 +391,7 @@ class BlockMeans:
                 zs.append((ratio[:, at] / g[:, None] - 1.0) * np.sqrt(gc[:, at]) / self.sigma)
         okc = ok if cols is None else ok[:, cols]
         res = (okc, np.minimum(zs[0], zs[1]), zs[0], grp)
-        if cols is None and whole:
+        if cols is None and rows is None:
             self.zmemo[k, shift] = res
         return res
 

@@ -230,7 +230,7 @@ def _detect_product(prep, p, detector, band, meta, t0, core, rows=None, hit=None
             hit = _sumthreshold_hits([prep], (p,), band, meta, t0, core if rows is None else rows)[0]
         out |= _bit(hit[r] & ~excluded[r], bits.SUMTHRESHOLD)
     elif detector == "sk" and meta["autos"][p] and "sk" in meta:
-        hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core, rows=r)
+        hit, hist = _kurtosis(prep, values, excluded, meta["sk"], t0, core, wanted=r)
         out |= _bit(hit[r] & ~excluded[r], bits.SK)
     return out, hist
 
@@ -268,9 +268,9 @@ def _detect_group(preps, group, detector, band, meta, t0, core, rows=None):
             for prep, p, h in zip(preps, group, hits)]
 
 
-def _kurtosis(prep, values, excluded, sk, t0, core, rows=None):
-    """SK's detections (a plane of the rows of ``values``; exact within ``rows``, a slice,
-    default all) and the SK histogram of the ``core`` rows."""
+def _kurtosis(prep, values, excluded, sk, t0, core, wanted=None):
+    """SK's detections (a plane of the rows of ``values``; exact within ``wanted``, a
+    slice, default all) and the SK histogram of the ``core`` rows."""
     from rfisieve.detect.kurtosis import block_halo, sk_block_histogram, sk_estimator, sk_flag_blocks, sk_flag_dumps
 
     m, n, d, edges = sk["m"], sk["n"], sk["d"], sk["edges"]
@@ -287,7 +287,8 @@ def _kurtosis(prep, values, excluded, sk, t0, core, rows=None):
     # the blocks reach M - 1 dumps (block_halo): the rows beyond that of the wanted ones
     # only served SumThreshold's bandpass, so SK skips them
     nt = values.shape[0]
-    a, b = (0, nt) if rows is None else (max(0, rows.start - block_halo(m)), min(nt, rows.stop + block_halo(m)))
+    a, b = (0, nt) if wanted is None else (max(0, wanted.start - block_halo(m)),
+                                           min(nt, wanted.stop + block_halo(m)))
     hit = np.zeros(values.shape, np.bool_)
     hit[a:b] = sk_flag_blocks(values[a:b], valid[a:b], m, n, d, thresholds=sk["table"], t0=t0 + a)
     return hit, sk_block_histogram(values, valid, m, n, d, edges, t0=t0, rows=core)
