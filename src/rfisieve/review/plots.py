@@ -38,13 +38,32 @@ def _save(fig, path, close=True):
 
     tmp = os.path.join(os.path.dirname(os.path.abspath(path)), f".{os.path.basename(path)}.tmp.png")
     try:
-        fig.savefig(tmp, dpi=110, format="png")
+        # zlib level 2, not Pillow's 6: a scan figure encodes in 0.05 s instead of 0.10 s
+        # and comes out smaller (490 against 550 KiB; measured on the demo's figures)
+        fig.savefig(tmp, dpi=110, format="png", pil_kwargs={"compress_level": 2})
         os.replace(tmp, path)
     finally:
         if close:
             plt.close(fig)
         if os.path.exists(tmp):
             os.remove(tmp)
+
+
+def stairs(ax, values, edges, **kwargs):
+    """``ax.stairs(values, edges, **kwargs)``, with the data limits taken from the step
+    outline's vertices in one call.  Matplotlib takes a patch's limits segment by
+    segment in Python (Bezier extrema of each straight segment): 0.42 s of the 1.3 s a
+    one-scan page spends drawing, for outlines of a few thousand vertices.  A step
+    outline holds only moves and straight lines in data coordinates, so its vertices
+    give the same limits (and the same lowest positive value, for log axes)."""
+    quick = getattr(ax, "_update_patch_limits", None) is not None
+    if quick:
+        ax._update_patch_limits = lambda patch: ax.update_datalim(patch.get_path().vertices)
+    try:
+        return ax.stairs(values, edges, **kwargs)
+    finally:
+        if quick:
+            del ax._update_patch_limits
 
 
 def channel_edges(centres):
@@ -185,10 +204,10 @@ def band_occupancy(path, band, agg, emitters=(), title=None):
             if not np.any(prim[k]):
                 continue
             top = base + prim[k]
-            ax.stairs(top, edges, baseline=base, fill=True, color=CAUSE_COLOURS[name], label=name, zorder=2)
+            stairs(ax, top, edges, baseline=base, fill=True, color=CAUSE_COLOURS[name], label=name, zorder=2)
             base = top
         total = np.nan_to_num(fraction(agg["flagged"], s) * 100)
-        ax.stairs(total, edges, color=INK, lw=0.7, zorder=3, label="any cause")
+        stairs(ax, total, edges, color=INK, lw=0.7, zorder=3, label="any cause")
         for e in shown:
             if e["kind"] == "protected":
                 ax.axvspan(max(e["start_mhz"], edges[0]), min(e["stop_mhz"], edges[-1]), color=PROTECTED_COLOUR,
@@ -264,7 +283,7 @@ def scan_image(path, counts, title=None, data=None, data_note=""):
             set_time_axis(axk, "y", th[0], th[-1], max_ticks=6, label=False)
         ax.set_xlabel(f"Frequency (MHz) · time: {utc_span(time[0], time[-1])}" if len(time) else "Frequency (MHz)")
         chan = np.nan_to_num(fraction(counts["channel/flagged"], counts["channel/samples"]) * 100)
-        drawn.append(top.stairs(chan, channel_edges(freq), fill=True, color=TOTAL_COLOUR))
+        drawn.append(stairs(top, chan, channel_edges(freq), fill=True, color=TOTAL_COLOUR))
         top.set_ylim(0, 100)
         dump = np.nan_to_num(fraction(counts["dump/flagged"], counts["dump/samples"]) * 100)
         drawn.append(side.fill_betweenx(time, 0, dump, color=TOTAL_COLOUR, lw=0, step="mid"))
@@ -571,15 +590,15 @@ def sk_diagnostic(path, sk, title=None):
         out = np.zeros(len(counts), bool) if lo is None else (centres < lo) | (centres > hi)
         main = slice(0, len(counts) - 1)   # the clipping bin is drawn apart
         yy = np.where(dens > 0, dens, np.nan)[main]
-        ax.stairs(np.where(~out[main], yy, np.nan), edges[:-1], fill=True, color=TOTAL_COLOUR, alpha=0.45,
+        stairs(ax, np.where(~out[main], yy, np.nan), edges[:-1], fill=True, color=TOTAL_COLOUR, alpha=0.45,
                   label="measured, within thresholds")
-        ax.stairs(np.where(out[main], yy, np.nan), edges[:-1], fill=True, color=sk_col, alpha=0.8,
+        stairs(ax, np.where(out[main], yy, np.nan), edges[:-1], fill=True, color=sk_col, alpha=0.8,
                   label="measured, outside (flagged by sk)")
         # whole range: counts summed into at most WIDE_BINS coarser bins, so thin tails show
         log_x = lo is not None and whole[1] > WIDE_LOG_FROM * float(hi)
         wide_edges, wide_in, wide_out = _coarse(edges[:-1], counts[main], out[main], whole[1], log=log_x)
         for part, colour, alpha in ((wide_in, TOTAL_COLOUR, 0.6), (wide_out, sk_col, 0.85)):
-            wide.stairs(np.where(part > 0, part, np.nan), wide_edges, fill=True, color=colour, alpha=alpha)
+            stairs(wide, np.where(part > 0, part, np.nan), wide_edges, fill=True, color=colour, alpha=alpha)
         for a_ in (ax, wide):
             a_.set_yscale("log")
         if dist is not None:
@@ -677,8 +696,8 @@ def change_plot(path, band, freq_hz, now, before, title=None):
         edges = channel_edges(f)
         up = np.where(delta > 0, delta, 0)
         down = np.where(delta < 0, delta, 0)
-        ax.stairs(np.nan_to_num(up), edges, fill=True, color=MORE_COLOUR, label="more flagged now")
-        ax.stairs(np.nan_to_num(down), edges, fill=True, color=LESS_COLOUR, label="less flagged now")
+        stairs(ax, np.nan_to_num(up), edges, fill=True, color=MORE_COLOUR, label="more flagged now")
+        stairs(ax, np.nan_to_num(down), edges, fill=True, color=LESS_COLOUR, label="less flagged now")
         ax.axhline(0, color=INK, lw=0.8)
         ax.set_xlim(edges[0], edges[-1])
         lim = max(5.0, float(np.nanmax(np.abs(delta))) * 1.1) if np.any(np.isfinite(delta)) else 5.0
