@@ -1,5 +1,6 @@
 """rfisieve.engine.pages: numpy's huge-page advice is off while the engine runs, restored after,
-and left alone when the user set NUMPY_MADVISE_HUGEPAGE."""
+and left alone when the user set NUMPY_MADVISE_HUGEPAGE; glibc keeps freed memory for reuse,
+unless the user set one of its own switches."""
 
 import pytest
 from numpy._core import multiarray
@@ -43,3 +44,46 @@ def test_user_setting_wins(monkeypatch):
     seen = []
     small_pages(lambda: seen.append(_current()))()
     assert seen == [True]
+
+
+# keep_freed_memory acts once per process: each case runs in a fresh interpreter.
+_PROBE = """
+import resource, numpy as np
+from rfisieve.engine.pages import keep_freed_memory
+on = keep_freed_memory()
+a = np.ones(3 * 2**20); del a          # 24 MiB, touched and freed
+f0 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+b = np.ones(3 * 2**20)                 # the same size again
+print(on, keep_freed_memory(), resource.getrusage(resource.RUSAGE_SELF).ru_minflt - f0)
+"""
+
+
+def _probe(env_extra):
+    import os
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if not k.startswith("MALLOC_")}
+    env.update(NUMPY_MADVISE_HUGEPAGE="0", **env_extra)  # 4 KiB pages: faults count pages
+    out = subprocess.run([sys.executable, "-c", _PROBE], env=env, capture_output=True, text=True, check=True)
+    on, again, faults = out.stdout.split()
+    return on == "True", again == "True", int(faults)
+
+
+@pytest.mark.skipif(not __import__("sys").platform.startswith("linux"), reason="glibc's malloc")
+def test_freed_memory_is_reused_without_new_page_faults():
+    # Check value, glibc's mallopt(3) (from memory): an M_MMAP_THRESHOLD of up to 32 MiB
+    # on 64-bit systems puts a 24 MiB block on the heap, and M_TRIM_THRESHOLD keeps the
+    # heap's top when it is freed; so the second array reuses the first one's 6144 pages
+    # of 4 KiB.  With a fresh mmap each time it would fault all of them in again.
+    on, again, faults = _probe({})
+    assert on and again
+    assert faults < 6144 // 10
+
+
+def test_the_users_glibc_setting_wins():
+    on, _, faults = _probe({"MALLOC_TRIM_THRESHOLD_": "131072"})
+    assert not on
+    # and the probe does see fresh pages when glibc is left to the user's setting (a
+    # fixed 128 KiB mmap threshold: each 24 MiB array is a fresh mapping)
+    assert faults > 6144 // 2

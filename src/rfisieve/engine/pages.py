@@ -1,4 +1,4 @@
-"""Page-size advice for the flagging engine's arrays.
+"""Memory advice for the flagging engine's arrays: page size, and reuse of freed memory.
 
 numpy asks the kernel for transparent huge pages (``madvise(MADV_HUGEPAGE)``) on every
 array of 4 MiB or more.  On the virtual machines this project runs on, the first touch
@@ -16,12 +16,55 @@ afterwards.  It leaves numpy alone when the user has set ``NUMPY_MADVISE_HUGEPAG
 (numpy's own switch: 1 keeps huge pages, 0 turns them off for the whole process) and
 when numpy does not offer the switch.  It acts in this process only (dask's
 ``processes`` workers keep numpy's default unless ``NUMPY_MADVISE_HUGEPAGE`` is set).
+
+It also asks glibc to keep freed memory for reuse (:func:`keep_freed_memory`, once per
+process): arrays up to 32 MiB come from the heap instead of a fresh ``mmap``, and the
+heap is not trimmed when they are freed, so a window's planes reuse the pages of the
+window before instead of faulting in new ones.  Flagging the 134 M-sample benchmark scan
+in a fresh process (engine only, 2 threads): 8.53-9.33 s wall, 1.7-2.0 s of it in the
+kernel, 540-750 thousand page faults with glibc's defaults; 8.21-8.60 s, 0.94-1.0 s in
+the kernel, 365-375 thousand faults with these settings (four fresh runs each,
+interleaved; 2026-12-03).  The price: the process holds on to its peak memory until it
+exits (a flag job exits when its scans are done).  It leaves glibc alone when the user
+has set one of its own switches (``MALLOC_MMAP_THRESHOLD_``, ``MALLOC_TRIM_THRESHOLD_``,
+``MALLOC_TOP_PAD_``), and off glibc.  Like the huge-page switch it acts in the engine's
+own process (the threads scheduler, the default); dask's ``processes`` and distributed
+workers keep glibc's defaults unless those variables are set for them.
 """
 
 import functools
 import os
 
-__all__ = ["small_pages"]
+__all__ = ["small_pages", "keep_freed_memory"]
+
+# mallopt(3) parameters (glibc's malloc.h)
+_M_TRIM_THRESHOLD, _M_TOP_PAD, _M_MMAP_THRESHOLD = -1, -2, -3
+_MIB = 2 ** 20
+#: glibc's settings while flagging: the largest mmap threshold glibc accepts on 64-bit
+#: systems (32 MiB), a trim threshold the heap never reaches, 64 MiB grown at a time
+GLIBC_SETTINGS = {_M_MMAP_THRESHOLD: 32 * _MIB, _M_TRIM_THRESHOLD: 2 ** 31 - 1, _M_TOP_PAD: 64 * _MIB}
+_GLIBC_SWITCHES = ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_", "MALLOC_TOP_PAD_")
+_kept = []  # the settings made in this process (empty until keep_freed_memory acts)
+
+
+def keep_freed_memory():
+    """Ask glibc's malloc to keep freed memory for reuse (see the module), once per
+    process.  Returns True when the settings are in force (made now or before)."""
+    if _kept:
+        return True
+    if any(k in os.environ for k in _GLIBC_SWITCHES):
+        return False
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None)
+        mallopt = libc.mallopt
+        libc.gnu_get_libc_version  # glibc only (musl has no mallopt parameters of these)
+    except (OSError, AttributeError):  # pragma: no cover - not glibc
+        return False
+    mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
+    _kept.extend(k for k, v in GLIBC_SETTINGS.items() if mallopt(k, v) == 1)
+    return bool(_kept)
 
 
 def _setter():
@@ -35,9 +78,11 @@ def _setter():
 
 
 def small_pages(fn):
-    """Decorator: run ``fn`` with numpy's huge-page advice off (see the module)."""
+    """Decorator: run ``fn`` with numpy's huge-page advice off, and glibc keeping freed
+    memory (see the module)."""
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
+        keep_freed_memory()
         setter = _setter()
         if setter is None:
             return fn(*args, **kwargs)
