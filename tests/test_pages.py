@@ -87,3 +87,34 @@ def test_the_users_glibc_setting_wins():
     # and the probe does see fresh pages when glibc is left to the user's setting (a
     # fixed 128 KiB mmap threshold: each 24 MiB array is a fresh mapping)
     assert faults > 6144 // 2
+
+
+_CREEP = """
+import numpy as np
+from rfisieve.engine.pages import MemoryBound, _resident, keep_freed_memory
+keep_freed_memory()
+bound = MemoryBound()
+for _ in range(bound.REFERENCE):
+    bound.window_done()                      # the reference: the resident size now
+small = bound.trims
+held = [np.ones(2**17) for _ in range(200)]  # 200 MiB in 1 MiB arrays, from the heap
+del held                                     # freed, and kept by glibc
+kept = _resident()
+bound.window_done()
+print(small, bound.trims, kept // 2**20, _resident() // 2**20)
+"""
+
+
+@pytest.mark.skipif(not __import__("sys").platform.startswith("linux"), reason="glibc's malloc")
+def test_memory_kept_for_reuse_goes_back_when_it_grows_past_the_bound():
+    # Check value, glibc's malloc_trim(3) (from memory): it gives the free memory of every
+    # arena back to the system, so the 200 MiB freed but kept must leave the resident set.
+    import os
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if not k.startswith("MALLOC_")}
+    out = subprocess.run([sys.executable, "-c", _CREEP], env=env, capture_output=True, text=True, check=True)
+    before, after, kept_mib, now_mib = map(int, out.stdout.split())
+    assert (before, after) == (0, 1)
+    assert kept_mib - now_mib > 150

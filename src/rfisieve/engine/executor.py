@@ -7,6 +7,7 @@ from functools import partial
 import dask
 import numpy as np
 
+from rfisieve.engine.pages import MemoryBound
 from rfisieve.engine.plan import (detect_halo, halo_span, noise_windows, segment_chunks, segment_of,
                                   split_at_gaps, window_span)
 from rfisieve.engine.planes import (_assemble_groups, _detect_group, _flag_group, _meta, _noise_task,
@@ -183,6 +184,7 @@ def run_windows(sched, chunks, ntime, halo, size, read, build, sink, progress=No
     windows = list(_windows(chunks, size))
     spans = [window_span(w, halo, ntime, segments) for w in windows]
     done = 0
+    bound = MemoryBound()  # the memory kept for reuse stays flat over the windows
     with ThreadPoolExecutor(1, thread_name_prefix="rfisieve-read") as reader:
         ahead = reader.submit(read, *spans[0]) if windows else None
         if first is not None:
@@ -200,6 +202,8 @@ def run_windows(sched, chunks, ntime, halo, size, read, build, sink, progress=No
                 done += 1
                 if progress:
                     progress(done, len(chunks))
+            del results
+            bound.window_done()
 
 
 def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow=None, jobs=1,
