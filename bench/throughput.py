@@ -20,8 +20,12 @@ Builds simulated scans, then measures in one run, each step in its own process:
 6. memory: peak resident memory of the flag job (Snakemake's benchmark file) and of the
    engine alone on a scan 4x longer than a base scan (both longer than the engine's two
    windows of chunks: with the four products in two feed pairs a window holds two chunks
-   of 4096 dumps, so the base scan has 20480 dumps; at 12288 it never held two full
-   windows and the longer scan seemed to grow by 1.24 x).
+   of 4096 dumps, so the base scan has 32768 dumps, four windows).  A scan holds two
+   windows with halos on both sides at once (one flagged, the next read ahead) only when
+   it has four windows or more: at 12288 dumps the longer scan seemed to grow by 1.24 x, at
+   20480 by 1.07-1.10 x (the base's read-ahead second window lacks a halo and its third
+   is half a window); from 32768 dumps on the peak is the same (1229-1244 MiB at 32768
+   and at 81920 dumps, engine only, 2026-12-03).
 
 Every time is wall-clock; ``--repeat`` (default 2) fresh runs of the long-scan steps
 and the best is tabled (all are printed).
@@ -187,9 +191,10 @@ def main():
     ap.add_argument("--repeat", type=int, default=2, help="fresh runs of the long-scan steps; best tabled")
     ap.add_argument("--night-scans", type=int, default=24, help="small scans in the many-scan night (default 24)")
     ap.add_argument("--night-shape", default="1024x256x2", help="dumps x channels x products of each small scan")
-    ap.add_argument("--memory-dumps", type=int, default=20480,
-                    help="dumps of the memory check's base scan, longer than two windows of chunks "
-                         "(its 4x longer twin is also flagged)")
+    ap.add_argument("--memory-dumps", type=int, default=32768,
+                    help="dumps of the memory check's base scan, four windows of chunks or more, so that "
+                         "it holds two whole windows at once as longer scans do (its 4x longer twin is "
+                         "also flagged)")
     ap.add_argument("--no-memory", action="store_true", help="skip the memory check")
     ap.add_argument("--no-sigmaclip", action="store_true", help="skip the astropy sigma_clip comparison")
     ap.add_argument("--channel-loop", action="store_true", help="also time sigma_clip per channel (slow)")
