@@ -23,7 +23,7 @@ Builds simulated scans, then measures in one run, each step in its own process:
    of 4096 dumps, so the base scan has 32768 dumps, four windows).  A scan holds two
    windows with halos on both sides at once (one flagged, the next read ahead) only when
    it has four windows or more: at 12288 dumps the longer scan seemed to grow by 1.24 x, at
-   20480 by 1.07-1.10 x (the base's read-ahead second window lacks a halo and its third
+   20480 by 1.07-1.10 x (that base's first window lacks a halo and its third
    is half a window); from 32768 dumps on the peak is the same (1229-1244 MiB at 32768
    and at 81920 dumps, engine only, 2026-12-03).
 
