@@ -22,9 +22,10 @@ process): arrays up to 32 MiB come from the heap instead of a fresh ``mmap``, an
 heap is not trimmed when they are freed, so a window's planes reuse the pages of the
 window before instead of faulting in new ones.  Flagging the 134 M-sample benchmark scan
 in a fresh process (engine only, 2 threads): 8.53-9.33 s wall, 1.7-2.0 s of it in the
-kernel, 540-750 thousand page faults with glibc's defaults; 8.21-8.60 s, 0.94-1.0 s in
-the kernel, 365-375 thousand faults with these settings (four fresh runs each,
-interleaved; 2026-12-03).  The price: the process holds on to its peak memory until it
+kernel, 540-750 thousand page faults with glibc's defaults; 8.20-8.60 s, 0.92-1.0 s in
+the kernel, 360-375 thousand faults with these settings (fresh runs interleaved, three
+with the defaults, eleven with the settings made here or as glibc's environment
+variables; 2026-12-03).  The price: the process holds on to its peak memory until it
 exits (a flag job exits when its scans are done), and memory kept for reuse fragments, so
 the executor bounds it (:class:`MemoryBound`: freed memory goes back to the system when a
 window ends more than 4 % above the scan's first windows).  It leaves glibc alone when the user

@@ -591,9 +591,9 @@ def sk_diagnostic(path, sk, title=None):
         main = slice(0, len(counts) - 1)   # the clipping bin is drawn apart
         yy = np.where(dens > 0, dens, np.nan)[main]
         stairs(ax, np.where(~out[main], yy, np.nan), edges[:-1], fill=True, color=TOTAL_COLOUR, alpha=0.45,
-                  label="measured, within thresholds")
+               label="measured, within thresholds")
         stairs(ax, np.where(out[main], yy, np.nan), edges[:-1], fill=True, color=sk_col, alpha=0.8,
-                  label="measured, outside (flagged by sk)")
+               label="measured, outside (flagged by sk)")
         # whole range: counts summed into at most WIDE_BINS coarser bins, so thin tails show
         log_x = lo is not None and whole[1] > WIDE_LOG_FROM * float(hi)
         wide_edges, wide_in, wide_out = _coarse(edges[:-1], counts[main], out[main], whole[1], log=log_x)
