@@ -48,6 +48,7 @@ _MIB = 2 ** 20
 GLIBC_SETTINGS = {_M_MMAP_THRESHOLD: 32 * _MIB, _M_TRIM_THRESHOLD: 2 ** 31 - 1, _M_TOP_PAD: 64 * _MIB}
 _GLIBC_SWITCHES = ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_", "MALLOC_TOP_PAD_")
 _kept = []  # the settings made in this process (empty until keep_freed_memory acts)
+_glibc = []  # glibc, as keep_freed_memory found it (for MemoryBound's trim)
 
 
 def keep_freed_memory():
@@ -67,6 +68,7 @@ def keep_freed_memory():
         return False
     mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
     _kept.extend(k for k, v in GLIBC_SETTINGS.items() if mallopt(k, v) == 1)
+    _glibc[:] = [libc]
     return bool(_kept)
 
 
@@ -106,9 +108,7 @@ class MemoryBound:
         if self.windows <= self.REFERENCE:
             self.reference = max(self.reference, rss)
         elif rss > self.BOUND * self.reference:
-            import ctypes
-
-            ctypes.CDLL(None).malloc_trim(0)
+            _glibc[0].malloc_trim(0)
             self.trims += 1
 
 

@@ -182,11 +182,11 @@ def _build_review(outdir, scan_files, previous, emitters_path, bands_dir, thresh
 
     # the images are read where the scan's figure is drawn, by the pool's processes
     scans = [occ.read_scan_h5(p, images=False) for p in scan_files]
-    files = {id(s): str(p) for s, p in zip(scans, scan_files)}
     names = [str(s["attrs"]["scan"]) for s in scans]
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
         raise ScanError(scan_files[names.index(dup[0])], f"scan {dup[0]} given twice")
+    files = dict(zip(names, map(str, scan_files)))  # by scan name (unique now)
     scans.sort(key=lambda s: (float(s["attrs"]["start_time"]), str(s["attrs"]["scan"])))
     provs = {str(s["attrs"]["scan"]): pv.mask_provenance(s["attrs"].get("mask")) for s in scans}
     occ_dir = os.path.join(outdir, "occupancy")
@@ -207,7 +207,7 @@ def _build_review(outdir, scan_files, previous, emitters_path, bands_dir, thresh
         name = str(s["attrs"]["scan"])
         ident = (provs[name].get("input") or {}) if data_preview else None
         figs["scan"][name] = os.path.join(rep_dir, f"scan_{name}.png")
-        jobs.append(("scan", (figs["scan"][name], s, ident, files[id(s)])))
+        jobs.append(("scan", (figs["scan"][name], s, ident, files[name])))
     drawing = [_submit(_figure, job, pool) for job in jobs]
 
     bands = occ.aggregate_run(scans)

@@ -217,6 +217,12 @@ def _open_h5(path, missing, required, wrong):
     return fh
 
 
+def _open_scan_h5(path):
+    """A per-scan occupancy file, open read-only (one-line ScanError otherwise)."""
+    return _open_h5(path, "occupancy file not found", ("channel", "freq"),
+                    "not a per-scan occupancy file (no /channel group)")
+
+
 #: The (time x channel) images of a per-scan occupancy file: only the scan's own figure
 #: draws them, so the review reads them in the process that draws it.
 IMAGES = ("image/samples", "image/flagged", "image/data")
@@ -227,8 +233,7 @@ def read_scan_h5(path, images=True):
     without :data:`IMAGES` when ``images`` is false (:func:`read_scan_images` reads them)."""
 
     path = str(path)
-    with _open_h5(path, "occupancy file not found", ("channel", "freq"),
-                  "not a per-scan occupancy file (no /channel group)") as fh:
+    with _open_scan_h5(path) as fh:
         out = {"freq": fh["freq"][()], "time": fh["time"][()], "products": _strings(fh["products"])}
         for grp in ("channel", "dump", "product", "image"):
             for k in fh[grp]:
@@ -253,9 +258,7 @@ def read_scan_h5(path, images=True):
 def read_scan_images(path):
     """The :data:`IMAGES` of a per-scan occupancy file (those it holds), as in
     :func:`read_scan_h5`."""
-    path = str(path)
-    with _open_h5(path, "occupancy file not found", ("channel", "freq"),
-                  "not a per-scan occupancy file (no /channel group)") as fh:
+    with _open_scan_h5(str(path)) as fh:
         return {k: fh[k][()] for k in IMAGES if k in fh}
 
 
