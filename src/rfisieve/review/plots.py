@@ -275,7 +275,7 @@ def scan_image(path, counts, title=None, data=None, data_note=""):
             dcb.update_normal(dm)
             drawn.append(dm)
             dax.set_title("Data: power relative to each channel's median over time" +
-                          (f" ({data_note})" if data_note else ""), fontsize=10, fontweight="normal")
+                          (f" ({data_note})" if data_note else ""), fontsize=10, fontweight="normal", y=1.0)
         for kind in lay["rows"]:
             axk = lay[kind]
             if th[-1] > th[0]:
@@ -288,7 +288,7 @@ def scan_image(path, counts, title=None, data=None, data_note=""):
         dump = np.nan_to_num(fraction(counts["dump/flagged"], counts["dump/samples"]) * 100)
         drawn.append(side.fill_betweenx(time, 0, dump, color=TOTAL_COLOUR, lw=0, step="mid"))
         side.set_xlim(0, 100)
-        top.set_title(title or f"Scan {a['scan']} (band {a['band']})")
+        top.set_title(title or f"Scan {a['scan']} (band {a['band']})", y=1.0)
         lay["drawn"] = drawn
         _save(fig, path, close=False)
 
@@ -324,7 +324,11 @@ def _scan_layout(with_data):
             lay["data_bar"].set_label("Power / bandpass (dB)")
             plt.setp(dax.get_xticklabels(), visible=False)
             dax.set_ylabel("Time, UTC (HH:MM)")
-        ax.set_title("Mask: flagged samples (any cause, all products)", fontsize=10, fontweight="normal")
+        # Titles at y = 1.0 given, not placed by matplotlib: these axes have no tick
+        # labels or offset text above them (percent 0-100 on fixed ticks, clock times),
+        # so the placement always returned 1.0, after laying out every y tick label
+        # again (a tenth of a small scan's figure; the same pixels)
+        ax.set_title("Mask: flagged samples (any cause, all products)", fontsize=10, fontweight="normal", y=1.0)
         for kind in lay["rows"]:
             lay[kind].grid(False)
         ax.set_ylabel("Time, UTC (HH:MM)")
@@ -638,8 +642,9 @@ def sk_diagnostic(path, sk, title=None):
             verdict = f"width ratio {summ['ratio']:.2f}: " + ("ok" if summ["verdict"] == "ok" else "CHECK")
         elif summ["verdict"] == "check":
             verdict = "CHECK"
-        ax.set_title("Around the thresholds" + (f" — {verdict}" if verdict else ""), fontsize=10.5)
-        wide.set_title("Whole range: the tails (dashed: thresholds)", fontsize=10.5)
+        # at y = 1.0 (see _scan_layout): log y axes, ticks below, so nothing above them
+        ax.set_title("Around the thresholds" + (f" — {verdict}" if verdict else ""), fontsize=10.5, y=1.0)
+        wide.set_title("Whole range: the tails (dashed: thresholds)", fontsize=10.5, y=1.0)
         if summ["reasons"]:
             fig.text(0.01, 0.01, "Check: " + "; ".join(summ["reasons"]), fontsize=8.5, color=INK, ha="left",
                      va="bottom", bbox=dict(boxstyle="round", fc=PAPER, ec=INK))
