@@ -66,6 +66,25 @@ def test_a_simulated_scan_gives_one_mask_whatever_the_chunks(tmp_path, bands, nt
     np.testing.assert_array_equal(masks[0], masks[1])
 
 
+@pytest.mark.parametrize("ntime", [1, 255, 256, 257, 1023, 1024, 2048, 3000, 4096, 32768])
+def test_noise_windows_read_at_most_a_quarter(ntime):
+    """The pre-pass windows (plan.noise_windows, from its definition): inside the scan, in
+    order, not overlapping, the first at dump 0 and (two or more) the last ending at the
+    last dump; at most four windows of 256 dumps and a quarter of the scan, at least one;
+    a scan of up to 256 dumps is one window."""
+    from rfisieve.engine import noise_windows
+
+    w = noise_windows(ntime)
+    assert 1 <= len(w) <= 4
+    if ntime <= 256:
+        assert w == [[0, ntime]]
+        return
+    assert all(b - a == 256 for a, b in w)
+    assert w[0][0] == 0 and (len(w) == 1 or w[-1][1] == ntime)
+    assert all(w[k][1] <= w[k + 1][0] for k in range(len(w) - 1))
+    assert len(w) == 1 or 256 * len(w) <= ntime / 4
+
+
 def test_workers_do_not_change_the_mask(scan, tmp_path):
     # Issue 2: identical masks for 1 and 2 workers.
     a = _flag(scan, tmp_path / "a.h5", chunk_dumps=512, workers=1)

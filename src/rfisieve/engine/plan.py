@@ -167,8 +167,8 @@ def noise_windows(ntime):
     """The [start, stop) dump windows of the noise pre-pass (independent of chunking):
     n = min(NOISE_WINDOWS, ntime // (NOISE_SHARE x NOISE_WINDOW)) windows of NOISE_WINDOW
     dumps, at least one, spread evenly from the scan's first dump to its last (the first
-    window starts at dump 0, the last ends at the last dump); the whole scan when it
-    is not longer than one window."""
+    window starts at dump 0; with two or more, the last ends at the last dump); the whole
+    scan when it is not longer than one window."""
     ntime = int(ntime)
     if ntime <= NOISE_WINDOW:
         return [[0, ntime]]
