@@ -110,6 +110,31 @@ def test_page_parses_and_every_image_decodes(run):
         assert (out / "report" / name).read_bytes()[:8] == PNG_SIG
 
 
+def test_a_night_of_many_scans_links_the_scan_figures(run, tmp_path, monkeypatch):
+    """Beyond EMBED_SCANS scans the scans' figures are relative links (loaded lazily) to the
+    PNG files beside the page; the night's own figures stay inside it."""
+    from rfisieve.review import html as review_html
+
+    out, _, _, _ = run
+    new = tmp_path / "run"
+    for sub in ("flags", "occupancy"):
+        (new / sub).mkdir(parents=True)
+        for f in (out / sub).glob("night_*"):
+            (new / sub / f.name).write_bytes(f.read_bytes())
+    monkeypatch.setattr(review_html, "EMBED_SCANS", 1)
+    occs = sorted(str(p) for p in (new / "occupancy").glob("night_*.h5"))
+    index = review.build_review(str(new), occs)
+    p = _Collect()
+    p.feed(open(index, encoding="utf-8").read())
+    p.close()
+    linked = [src for src in p.imgs if not src.startswith("data:")]
+    assert sorted(linked) == ["scan_night_a.png", "scan_night_b.png"]
+    for src in linked:   # resolved against the page's directory, as a browser does
+        assert (new / "report" / src).read_bytes()[:8] == PNG_SIG
+    assert len(p.imgs) - len(linked) == 3   # night, band and kurtosis figures embedded
+    assert "more than 1" in " ".join(p.text)
+
+
 def test_run_csv_is_the_sample_weighted_sum(run):
     out, masks, freq, _ = run
     with open(out / "occupancy" / "run.csv", newline="") as fh:

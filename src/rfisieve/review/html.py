@@ -6,6 +6,7 @@ import base64
 import datetime as _dt
 import html
 import os
+import urllib.parse
 
 import numpy as np
 
@@ -45,6 +46,20 @@ def _img(path, alt):
     with open(path, "rb") as fh:
         b64 = base64.b64encode(fh.read()).decode("ascii")
     return f'<img src="data:image/png;base64,{b64}" alt="{html.escape(alt)}">'
+
+
+#: Nights of up to this many scans get every figure inside the page (one file to copy or
+#: mail).  A scan's figure is about 0.35 MiB, 0.47 MiB in the page: a night of 24 scans
+#: gave an 11 MiB page, and a night of a few hundred scans would give a page of over a
+#: hundred MiB that a browser opens slowly.  Beyond it the scans' figures are linked: the
+#: files beside the page (report/scan_<name>.png), loaded as the reader scrolls to them.
+EMBED_SCANS = 48
+
+
+def _linked_img(path, alt):
+    """An image that stays a file beside the page: a relative link, loaded when scrolled to."""
+    src = html.escape(urllib.parse.quote(os.path.basename(path)), quote=True)
+    return f'<img src="{src}" loading="lazy" alt="{html.escape(alt)}">'
 
 
 CSS = """
@@ -433,12 +448,17 @@ def render_page(outdir, scans, bands, overview, ranges, figs, sk_summaries, prev
                      *BIT_NAMES], rows, left=(0, 1, 2)))
     h.append('<p class="note">Per scan: the data (power relative to each channel\'s median, read from the '
              "scan file) above the mask (share of each bin flagged by any cause), on the same axes.</p>")
+    linked = len(scans) > EMBED_SCANS
+    if linked:
+        h.append(f'<p class="note">This night has {len(scans)} scans, more than {EMBED_SCANS}: each scan\'s figure '
+                 "is the file beside this page (<code>scan_&lt;name&gt;.png</code>), loaded as you scroll to it. "
+                 "Copy the whole <code>report/</code> directory to keep them with the page.</p>")
     for s in scans:
         name = str(s["attrs"]["scan"])
         note = figs.get("data_note", {}).get(name, "")
         extra = "" if not note or "product" in note else f'<p class="note">Data not shown: {esc(note)}.</p>'
         h.append(f'<div class="scan"><h3>{esc(name)}</h3>{extra}'
-                 + _img(figs["scan"][name], f"data and mask of {name}") + "</div>")
+                 + (_linked_img if linked else _img)(figs["scan"][name], f"data and mask of {name}") + "</div>")
 
     # --- products -----------------------------------------------------------
     h.append('<h2 id="products">Products</h2><p class="note">Over all scans; one row per product.</p>')
