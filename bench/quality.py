@@ -292,7 +292,7 @@ FIELD_TARGETS = {"tdma": 0.85, "fracpulse": 0.75}
 PROTECTED_CODE = 100
 
 
-def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
+def run_field_scene(name, tmp, band, run, seed, ntime, nchan, standing_wave=None):
     from rfisieve.engine import flag_scan
     from rfisieve.sim.field import field_scene, write_field_scene
 
@@ -302,7 +302,8 @@ def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
     lo, hi = DEFAULT_VIEW[band["band"]]
     # the L band's view is centred on the 21-cm line; the others' on their default view
     centre = 1420.0e6 if band["band"] == "L" else 0.5 * (lo + hi)
-    scene = field_scene(FIELD_SCENES[name][1], seed, ntime=ntime, nchan=nchan, f_center_hz=centre)
+    scene = field_scene(FIELD_SCENES[name][1], seed, ntime=ntime, nchan=nchan, f_center_hz=centre,
+                        standing_wave=standing_wave)
     scan, truth = Path(tmp) / f"field_{name}.h5", Path(tmp) / f"field_{name}.truth.h5"
     write_field_scene(scan, truth, scene, band=band["band"])
     t_sim = time.time() - t0
@@ -337,16 +338,29 @@ def run_field_scene(name, tmp, band, run, seed, ntime, nchan):
                                          ("grown", bits.GROWN), ("cut", bits.CUT))}}
 
 
+def _standing_wave(text):
+    """``AMP,PATH_M`` of --standing-wave as two floats."""
+    try:
+        amp, path = (float(v) for v in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected AMP,PATH_M such as 0.01,40") from None
+    if not (0 <= amp < 1 and path > 0):
+        raise argparse.ArgumentTypeError(f"{text!r}: AMP in [0, 1), PATH_M > 0")
+    return amp, path
+
+
 def main_field(args, band, run):
     seed0 = args.seed + (HELDOUT_OFFSET if args.heldout else 0)
     print(f"field scenes: {args.ntime} dumps x {args.nchan} channels of 62.5 kHz x 2 polarizations, "
           f"N = 512, seeds {seed0}..{seed0 + len(args.field) - 1}"
-          f"{' (held out: not looked at while tuning)' if args.heldout else ' (tuning set)'}")
+          f"{' (held out: not looked at while tuning)' if args.heldout else ' (tuning set)'}"
+          + (f"; a second standing wave of {args.standing_wave[0]:g} at a {args.standing_wave[1]:g} m path"
+             if args.standing_wave else ""))
     pooled, kinds_all, results = None, {}, []
     with tempfile.TemporaryDirectory(prefix="rfisieve-field-") as tmp:
         for i, name in enumerate(args.field):
             res = run_field_scene(name, tmp, band, run, seed0 + list(FIELD_SCENES).index(name),
-                                  args.ntime, args.nchan)
+                                  args.ntime, args.nchan, args.standing_wave)
             a = finish(res["counts"], res["kinds"])
             results.append((res, a))
             kinds_all.update(res["kinds"])
@@ -408,6 +422,10 @@ def main(argv=None):
     ap.add_argument("--field", nargs="*", choices=list(FIELD_SCENES), default=None,
                     help="run the field scenes (all when none named) instead of the simulator's scenes")
     ap.add_argument("--heldout", action="store_true", help="field scenes on the held-out seeds")
+    ap.add_argument("--standing-wave", type=_standing_wave, metavar="AMP,PATH_M",
+                    help="field scenes: add a second standing wave to each bandpass, relative amplitude "
+                         "AMP with the period c / (2 PATH_M) of a reflection path of PATH_M metres "
+                         "(e.g. 0.01,40: 1 %% every 3.75 MHz)")
     ap.add_argument("--band", default="L", choices=("P", "L", "C"),
                     help="field scenes: the shipped band config and view to use (default L)")
     args = ap.parse_args(argv)

@@ -452,3 +452,48 @@ def test_shifted_blocks_at_L_equal_T_are_left_out_wherever_the_plane_starts(monk
     for t0 in (0, 100, 200, 300):
         sumthreshold_flagger(x, sigma=SIGMA, t0=t0, **L_BAND)
     assert tested and max(tested) < L_BAND["bandpass_dumps"]
+
+
+def test_reference_of_is_the_median_shape():
+    # From the definition (reference_of): the per-channel median of the windows' shapes,
+    # scaled to a median of 1 over the channels; numpy's median is the check.
+    from rfisieve.detect.bandpass import reference_of
+
+    rng = np.random.default_rng(5)
+    shapes = [rng.uniform(0.5, 2.0, 64) for _ in range(5)]
+    want = np.median(np.stack(shapes), axis=0)
+    want /= np.median(want)
+    np.testing.assert_allclose(reference_of(shapes + [None]), want, rtol=1e-12)
+    assert reference_of([None]) is None
+
+
+def test_reference_finds_a_wideband_block_a_standing_wave_hides():
+    # A standing wave of 2 % with a period of 5 channels (a long reflection path) is a
+    # roughness of about 2 % / (sigma / 16) = 11 noise sigma of a 256-dump block mean
+    # (radiometer equation: sigma = 1 / sqrt(N)), which raises the spectral test's
+    # threshold to about 6 + 3 x 11 = 39 sigma; a 24-channel noise-like emitter at 1.5
+    # sigma per dump (the issue's wideband transmitter) that fills the bandpass blocks
+    # of dumps 512-1280 stands out of its block means by 1.5 x 16 = 24 sigma only.  Over
+    # the scan's reference shape (windows where it is off) the standing wave divides out
+    # and the emitter is found; the clean channels stay under the issue's 0.3 %.
+    from rfisieve.detect.bandpass import reference_of, reference_shape
+
+    rng = np.random.default_rng(12)
+    n, m, acc = 2048, 256, 1024
+    sig = 1 / math.sqrt(acc)
+    c = np.arange(m)
+    mu = knee_bandpass(m) * (1 + 0.02 * np.sin(2 * np.pi * c / 5.0 + 0.3))
+    x = (rng.gamma(acc, 1.0 / acc, (n, m)) * mu).astype(np.float32)
+    on = slice(512, 1280)
+    cols = slice(100, 124)
+    x[on, cols] += (mu[cols] * 1.5 * sig * rng.gamma(acc, 1.0 / acc, (768, 24))).astype(np.float32)
+    ex = np.zeros(x.shape, bool)
+    ref = reference_of([reference_shape(x[a:a + 256], ex[a:a + 256]) for a in (0, 1536, 1792)])
+    blind = sumthreshold_flagger(x, sigma=sig, **L_BAND)
+    seen = sumthreshold_flagger(x, sigma=sig, reference=ref, **L_BAND)
+    inside = (slice(768, 1024), cols)          # a bandpass block the emitter fills
+    assert blind[inside].mean() < 0.5
+    assert seen[inside].mean() > 0.9
+    clean = np.ones(x.shape, bool)
+    clean[on, 96:128] = False
+    assert seen[clean].mean() < 0.003

@@ -76,6 +76,15 @@ EDGE_SIGMA = 3.0
 #: amplitudes out: a 7-channel block at 5 sigma per dump on a 3 % ripple was missed.
 RIPPLE_FACTOR = 3.0
 
+#: The persistence test's temporal baselines (the scan's reference shape) run in a set of
+#: blocks only where the spectral ones are rougher than this, in noise sigma (the robust
+#: scatter s of the excess over them, see :func:`persistent_flags`): where the spectral
+#: baselines follow the bandpass to within about the noise, the temporal test finds
+#: what they find (field scenes, tuning seeds: recall and false alarms within 0.001 of
+#: each other with it run everywhere), and run everywhere it cost 5 % of the engine's
+#: time on the bench scan (7.3 -> 7.65 s; tests/ and bench/throughput.py's scan).
+TEMPORAL_FROM = 1.5
+
 
 #: Passes of the persistence test's running median over channels: each later one
 #: replaces the runs of 3 or more channels standing above the previous one by more than
@@ -196,6 +205,43 @@ def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
     return bp, rowblock
 
 
+def reference_shape(values, exclude):
+    """One window's bandpass shape for the scan's reference (:func:`reference_of`): each
+    channel's lower quantile over the window's dumps, scaled to a median of 1 over the
+    channels (:func:`block_bandpass` with the window as its one block).
+
+    Parameters
+    ----------
+    values : ndarray (ntime, nchan)
+    exclude : ndarray of bool, same shape
+
+    Returns
+    -------
+    ndarray (nchan,), float64
+    """
+    n = int(np.shape(values)[0])
+    if n == 0:
+        return np.ones(np.shape(values)[1])
+    return block_bandpass(values, exclude, 0, n)[0][0].astype(np.float64)
+
+
+def reference_of(shapes):
+    """The scan's reference bandpass shape: the per-channel median of the windows'
+    shapes (:func:`reference_shape`), scaled to a median of 1; None without a window.
+    An emitter on in fewer than half of the windows leaves it (a median; Hampel 1974,
+    JASA 69, 383), so each block's bandpass over it (:class:`BlockMeans`) is flat but
+    for what differs from most windows: every fixed structure of the receiver divides
+    out, standing waves included."""
+    shapes = [np.asarray(x, dtype=np.float64) for x in shapes if x is not None]
+    if not shapes:
+        return None
+    ref = np.median(np.stack(shapes), axis=0)
+    level = np.median(ref)
+    ref = ref / level if level > 0 else ref
+    ref[~(ref > 0)] = 1.0
+    return ref
+
+
 def block_lengths(persist_dumps, bandpass_dumps):
     """Block lengths L of the persistence test: ``persist_dumps`` and its halves down
     to a quarter of it (at least 16), each dividing ``bandpass_dumps``."""
@@ -296,7 +342,7 @@ class BlockMeans:
     (:func:`persistence_test`) share them.  Arguments as for :func:`persistent_flags`."""
 
     def __init__(self, values, exclude, detected, bp, rowblock, t0, sigma, half_width, lengths, protect=None, *,
-                 bandpass_dumps):
+                 bandpass_dumps, reference=None):
         self.x = x = np.ascontiguousarray(values, dtype=np.float32)
         self.rowblock = rowblock
         self.ex = np.ascontiguousarray(exclude, dtype=np.bool_)
@@ -330,6 +376,18 @@ class BlockMeans:
         first = np.flatnonzero(np.r_[True, self.pblock[1:] != self.pblock[:-1]])   # parts run block by block
         held[self.pblock[first]] = np.add.reduceat(scnt, first, axis=0)
         self.bases = _baselines(bp, int(half_width), held == 0)
+        # the temporal baseline: the scan's reference shape itself (:func:`reference_of`),
+        # in every block (each group's gain is taken over it as over the others).  Every
+        # fixed structure of the bandpass (standing waves of a few channels' period,
+        # knees, shoulders) divides out, and an emitter that is on in this block but not
+        # in most of the reference's windows stands out (:func:`persistence_test`).  A
+        # slow change of the bandpass's shape is not followed: it raises the scatter,
+        # hence the threshold (as a rough spectral baseline does), it does not flag.
+        self.tbases = None
+        if reference is not None:
+            ref = np.asarray(reference, dtype=np.float64)
+            if ref.shape == (m,) and np.all(ref > 0):
+                self.tbases = (np.broadcast_to(ref, bp.shape),)
         self.csum = np.zeros((P + 1, m))
         np.cumsum(ssum, axis=0, out=self.csum[1:])
         self.ccnt = np.zeros((P + 1, m), np.int64)
@@ -354,7 +412,7 @@ class BlockMeans:
                                    np.cumsum(new_group) - 1, self.pblock[starts] == self.pblock[ends - 1])
         return self.memo[k, shift]
 
-    def excess(self, k, cols=None, shift=0, rows=None):
+    def excess(self, k, cols=None, shift=0, rows=None, temporal=False):
         """Per group of k parts (started ``shift`` parts late, :meth:`grouped`): (ok, z
         over the smaller excess, z over the running median's) and each part's group
         (see :func:`persistent_flags`; memoised for all channels); with ``cols``, only
@@ -363,9 +421,11 @@ class BlockMeans:
         thresholds' resolution); with ``rows`` (group indices), only for those groups,
         in that order (each group's values are its own: the same as in the whole
         result).  A group that spans two bandpass blocks is not ok (only shifted
-        groups can: the blocks nest in the bandpass blocks)."""
-        if cols is None and (k, shift) in self.zmemo:
-            res = self.zmemo[k, shift]
+        groups can: the blocks nest in the bandpass blocks).  ``temporal``: over the
+        scan's reference shape (``tbases``) instead of the spectral baselines."""
+        key = (k, shift, bool(temporal))
+        if cols is None and key in self.zmemo:
+            res = self.zmemo[key]
             return res if rows is None else (res[0][rows], res[1][rows], res[2][rows], res[3])
         gs, gc, nrow, blk, grp, inside = self.grouped(k, shift)
         if rows is not None:
@@ -384,15 +444,15 @@ class BlockMeans:
         zs = []
         with np.errstate(all="ignore"):
             mean = gs / np.maximum(gc, 1)
-            for base in self.bases:
+            for base in (self.tbases if temporal else self.bases):
                 ratio = mean / base[:, sel][blk]
                 g = _row_medians(ratio, gain_ok)
                 g = np.where(np.isfinite(g) & enough, g, 1.0)
                 zs.append((ratio[:, at] / g[:, None] - 1.0) * np.sqrt(gc[:, at]) / self.sigma)
         okc = ok if cols is None else ok[:, cols]
-        res = (okc, np.minimum(zs[0], zs[1]), zs[0], grp)
+        res = (okc, np.minimum(zs[0], zs[1]) if len(zs) > 1 else zs[0], zs[0], grp)
         if cols is None and rows is None:
-            self.zmemo[k, shift] = res
+            self.zmemo[key] = res
         return res
 
     def fine_z(self, k, cols):
@@ -429,7 +489,12 @@ def persistence_test(products, z, protect=None):
     pair's products together (:class:`BlockMeans` each): every z of the test is the
     sum of the products' z's over sqrt(K), and a channel must be usable in all of them.
     For a pair, an emitter in both polarizations at strengths 1 and 0.8 stands out by
-    1.27 times one product's excess.  Returns each product's flags (the same samples,
+    1.27 times one product's excess.  With the scan's reference shape (each
+    :class:`BlockMeans` built with ``reference``), the test runs a second time over it as
+    the baseline, in the block sets where the spectral baselines are rougher than
+    ``TEMPORAL_FROM`` (a standing wave they cannot follow), and a channel is a
+    candidate when either run finds it; each run's candidates are refined over its own
+    baselines (docs/design.md 4.2a).  Returns each product's flags (the same samples,
     less each one's excluded samples)."""
     b0 = products[0]
     n, m = b0.n, b0.m
@@ -437,7 +502,13 @@ def persistence_test(products, z, protect=None):
         return [np.zeros((n, m), np.bool_) for _ in products]
     P, S = b0.P, b0.S
     per_sub = max(1, SUB_DUMPS // S)
-    cand = np.zeros((P, m), np.bool_)
+    # the spectral baselines, and (with the scan's reference shape) the temporal ones:
+    # each with its own roughness, a channel is a candidate when either finds it, and
+    # its parts are then refined over the baselines that found it (over the spectral
+    # ones, the parts of a channel on a standing wave's crest would stand out by the
+    # crest itself)
+    kinds = (False, True) if all(b.tbases is not None for b in products) else (False,)
+    cands = np.zeros((len(kinds), P, m), np.bool_)
     for L in b0.lengths:
         k = int(L) // S
         # the aligned blocks, and the blocks half a block later (an emitter on for
@@ -449,15 +520,20 @@ def persistence_test(products, z, protect=None):
                 # one bandpass block would keep the partial ones at a plane's ends, so the
                 # result would depend on where the plane starts, i.e. on the chunks)
                 continue
-            ok, zs, zm, grp = _joint([b.excess(k, shift=shift) for b in products])
-            if shift:
-                ok, zs, zm = _straddling(b0, products, k, shift, ok, zs, zm)
-            with np.errstate(all="ignore"):
-                med = _row_medians(zm, ok)
-                sc = MAD_TO_SIGMA * _row_medians(np.abs(zm - med[:, None]), ok)
-            thr = np.where(np.isfinite(sc), z + RIPPLE_FACTOR * np.sqrt(np.maximum(0.0, sc * sc - 1.0)), np.inf)
-            hit = ok & (zs > thr[:, None])
-            cand |= hit[grp]
+            for ki, temporal in enumerate(kinds):
+                if temporal and not np.any(sc > TEMPORAL_FROM):
+                    continue   # the spectral baselines follow the bandpass to within the noise
+                ok, zs, zm, grp = _joint([b.excess(k, shift=shift, temporal=temporal) for b in products])
+                if shift:
+                    ok, zs, zm = _straddling(b0, products, k, shift, ok, zs, zm, temporal)
+                with np.errstate(all="ignore"):
+                    med = _row_medians(zm, ok)
+                    sc = MAD_TO_SIGMA * _row_medians(np.abs(zm - med[:, None]), ok)
+                thr = np.where(np.isfinite(sc), z + RIPPLE_FACTOR * np.sqrt(np.maximum(0.0, sc * sc - 1.0)),
+                               np.inf)
+                hit = ok & (zs > thr[:, None])
+                cands[ki] |= hit[grp]
+    cand = cands.any(axis=0)
     flags = np.zeros((P, m), np.bool_)
     strong = np.zeros((P, m), np.bool_)   # parts that would pass ISOLATED_PART_SIGMA too
     # narrow emitters on steep slopes: the bandpass block's fine test, placed in time
@@ -489,14 +565,20 @@ def persistence_test(products, z, protect=None):
         if fhit is not None:
             can |= fhit.any(axis=1)
         pr = np.flatnonzero(can)
-        okp, zp, _, _ = _joint([b.excess(1, cols, rows=pr) for b in products])
         gsub = b0.grouped(per_sub)[4][pr]
         srows = np.unique(gsub)
-        oks, zsub, _, _ = _joint([b.excess(per_sub, cols, rows=srows) for b in products])
-        sub_ok = (oks & (zsub > REFINE_SIGMA))[np.searchsorted(srows, gsub)]
         at = np.ix_(pr, cols)
-        flags[at] = cand[at] & sub_ok & okp & (zp > PART_SIGMA)
-        strong[at] = zp > ISOLATED_PART_SIGMA
+        for ki, temporal in enumerate(kinds):
+            if temporal and not cands[ki].any():
+                continue
+            okp, zp, _, _ = _joint([b.excess(1, cols, rows=pr, temporal=temporal) for b in products])
+            oks, zsub, _, _ = _joint([b.excess(per_sub, cols, rows=srows, temporal=temporal) for b in products])
+            sub_ok = (oks & (zsub > REFINE_SIGMA))[np.searchsorted(srows, gsub)]
+            flags[at] |= cands[ki][at] & sub_ok & okp & (zp > PART_SIGMA)
+            if not temporal:
+                strong[at] = zp > ISOLATED_PART_SIGMA
+            else:   # the temporal strength counts in the channels the temporal test found
+                strong[at] |= (zp > ISOLATED_PART_SIGMA) & cands[ki][:, cols].any(axis=0)[None, :]
     if fhit is not None:
         flags[:, fcols] |= fhit
         strong[:, fcols] |= fhit & (fp_z > ISOLATED_PART_SIGMA)
@@ -516,7 +598,7 @@ def persistence_test(products, z, protect=None):
     return outs
 
 
-def _straddling(b0, products, k, shift, ok, zs, zm):
+def _straddling(b0, products, k, shift, ok, zs, zm, temporal=False):
     """The shifted blocks of k parts that span two bandpass blocks, tested as their two
     aligned halves together: z = (z_1 + z_2) / sqrt(2), each half's excess over its own
     bandpass block's baselines and gain (equal halves of independent noise: unit
@@ -537,7 +619,7 @@ def _straddling(b0, products, k, shift, ok, zs, zm):
     two = h2 == h1 + 1                      # a whole group of each half (not at a plane's end)
     rows, h1, h2 = rows[two], h1[two], h2[two]
     need = np.unique(np.r_[h1, h2])        # the halves' excesses, of those groups only
-    hok, hzs, hzm, _ = _joint([b.excess(k // 2, rows=need) for b in products])
+    hok, hzs, hzm, _ = _joint([b.excess(k // 2, rows=need, temporal=temporal) for b in products])
     h1, h2 = np.searchsorted(need, h1), np.searchsorted(need, h2)
     ok, zs, zm = ok.copy(), zs.copy(), zm.copy()
     ok[rows] = hok[h1] & hok[h2]

@@ -225,7 +225,7 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
                          background_time=15.0, background_freq=5.0, bandpass_dumps=0,
                          persist_dumps=0, persist_sigma=6.0, baseline_channels=64,
                          compact_sigma=0.0, invalid=None, sigma=None, t0=0, protect=None,
-                         combine_feeds=False, wanted=None):
+                         combine_feeds=False, wanted=None, reference=None):
     r"""Iterated SumThreshold flagger for one product's (time, channel) plane.
 
     Method (Offringa et al. 2010, MNRAS 405, 155): ``iterations`` times,
@@ -325,6 +325,13 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
         bandpass estimate: everything after it runs without them, and their
         detections are returned False.  The detections of the rows within the halo
         rule's reach are unchanged (the engine's chunk-invariance tests check it).
+    reference : array_like (nchan,), optional
+        The scan's reference bandpass shape
+        (:func:`rfisieve.detect.bandpass.reference_of`, from a few windows spread over
+        the scan, as ``sigma``).  With the persistence test on, the test also runs on
+        each block's bandpass divided by it (fixed structure divides out: standing
+        waves of a few channels' period that no spectral baseline follows), with its
+        own roughness, and a channel found by either is a candidate.
 
     Returns
     -------
@@ -340,14 +347,14 @@ def sumthreshold_flagger(values, mask=None, chi1=8.0, rho=1.5, max_window_time=3
                  start_scale, background_time, background_freq, invalid, sigma, t0,
                  bandpass_dumps=bandpass_dumps, persist_dumps=persist_dumps, persist_sigma=persist_sigma,
                  baseline_channels=baseline_channels, compact_sigma=compact_sigma, protect=protect,
-                 wanted=wanted, rest=_rest_after_bandpass(
+                 wanted=wanted, reference=reference, rest=_rest_after_bandpass(
                      dict(iterations=iterations, max_window_time=max_window_time,
                           background_time=background_time, bandpass_dumps=bandpass_dumps,
                           persist_dumps=persist_dumps, compact_sigma=compact_sigma), False))[0]
 
 
 def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=None, wanted=None,
-                     **settings):
+                     references=None, **settings):
     r"""SumThreshold on the two auto products of one feed pair together (both
     polarizations of one antenna).
 
@@ -381,6 +388,9 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     t0, protect, wanted, **settings
         As for :func:`sumthreshold_flagger` (``wanted``: both products run on the same
         rows, with the combined pass's reach added).
+    references : sequence of two array_like, optional
+        Each product's reference bandpass shape (``reference`` of
+        :func:`sumthreshold_flagger`).
 
     Returns
     -------
@@ -396,10 +406,11 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     s.pop("combine_feeds", None)
     own, kept = [], []
     rest = _rest_after_bandpass(s, True)
-    for x, sig, mk, inv, name in zip(planes, sigmas, masks, invalids, ("pair", "work")):
+    refs = [None] * 2 if references is None else list(references)
+    for x, sig, mk, inv, name, ref in zip(planes, sigmas, masks, invalids, ("pair", "work"), refs):
         keep = {}
         own.append(_flag(x, mk, invalid=inv, sigma=sig, t0=t0, protect=protect, keep=keep, scratch=name,
-                         wanted=wanted, rest=rest, **s)[0])
+                         wanted=wanted, rest=rest, reference=ref, **s)[0])
         kept.append(keep)
     if not all(kept):       # a product without a valid sample: nothing to combine
         return own
@@ -491,7 +502,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
           iterations=3, start_scale=4.0, background_time=15.0, background_freq=5.0,
           invalid=None, sigma=None, t0=0, bandpass_dumps=0, persist_dumps=0, persist_sigma=6.0,
           baseline_channels=64, compact_sigma=0.0, protect=None, noise_only=False, keep=None,
-          scratch="work", wanted=None, rest=0):
+          scratch="work", wanted=None, rest=0, reference=None):
     """The flagger; returns (detections, sigma of the last iteration).  With ``keep``
     (a dict) it also gets the last iteration's residual on the grid (``grid``: chi_1
     sigma is ``unit`` steps, windows up to ``max_window``), the levels (``lev0``),
@@ -588,7 +599,7 @@ def _flag(values, mask=None, chi1=8.0, rho=1.5, max_window_time=32, max_window_f
         strong = prev & (rg > STRONG_SIGMA * unit / float(chi1))
         prot = None if protect is None else np.asarray(protect, dtype=np.bool_)
         blocks = BlockMeans(raw, base_ex, strong, bp, rowblock, int(t0), sig, int(baseline_channels), lengths,
-                            prot, bandpass_dumps=int(bandpass_dumps))
+                            prot, bandpass_dumps=int(bandpass_dumps), reference=reference)
         prev |= persistence_test([blocks], float(persist_sigma), prot)[0]
         if keep is not None:
             keep["blocks"] = blocks      # the pair's persistence test reuses its block means

@@ -145,7 +145,12 @@ def _window_chunks(scan, chunk, halo, wanted, jobs=1):
 
 def _noise_prepass(scan, band, meta, sched, what, segments):
     """Per-stretch, per-product SumThreshold noise sigma: the median over the pre-pass
-    windows of each contiguous stretch (dump numbers counted from the stretch's start)."""
+    windows of each contiguous stretch (dump numbers counted from the stretch's start);
+    and per stretch and product the reference bandpass shape of those windows
+    (:func:`rfisieve.detect.bandpass.reference_of`; None when the persistence test is
+    off).  Returns (sigmas, references)."""
+    from rfisieve.detect.bandpass import reference_of
+
     tasks, owner = [], []
     task = dask.delayed(partial(_noise_task, band=band, meta=meta))
     for k, (s, e) in enumerate(segments):
@@ -155,15 +160,18 @@ def _noise_prepass(scan, band, meta, sched, what, segments):
                 tasks.append(task(sched.put(_planes(block, 0, b - a, p)), p=p, t0=a))
                 owner.append((k, p))
     values = dask.compute(*tasks, **sched.kwargs)
-    sigmas = []
+    sigmas, refs = [], []
     for k in range(len(segments)):
-        per_seg = []
+        per_seg, ref_seg = [], []
         for p in range(scan.nprod):
-            row = np.array([v for v, o in zip(values, owner) if o == (k, p)], dtype=np.float64)
+            mine = [v for v, o in zip(values, owner) if o == (k, p)]
+            row = np.array([v[0] for v in mine], dtype=np.float64)
             row = row[np.isfinite(row)]
             per_seg.append(float(np.median(row)) if row.size else 1.0)
+            ref_seg.append(reference_of([v[1] for v in mine]))
         sigmas.append(per_seg)
-    return sigmas
+        refs.append(ref_seg if any(r is not None for r in ref_seg) else None)
+    return sigmas, refs
 
 
 def run_windows(sched, chunks, ntime, halo, size, read, build, sink, progress=None, first=None,
@@ -242,12 +250,12 @@ def _run_detection(scan, detectors, band, run, plan, sched, progress, sink, grow
 
     def noise():
         # the first window is read while the noise pre-pass runs
-        sigmas = [None] * len(segments)
+        sigmas, refs = [None] * len(segments), [None] * len(segments)
         if "sumthreshold" in detectors and band["sumthreshold"]["enabled"]:
-            sigmas = _noise_prepass(scan, band, meta, sched, what, segments)
+            sigmas, refs = _noise_prepass(scan, band, meta, sched, what, segments)
             meta["sigma"] = sigmas[0] if len(segments) == 1 else sigmas
         for k, sig in enumerate(sigmas):
-            m = meta if sig is None else dict(meta, sigma=sig)
+            m = meta if sig is None else dict(meta, sigma=sig, ref=refs[k])
             tasks[k] = (dask.delayed(partial(_flag_group, band=band, meta=m)),
                         dask.delayed(partial(_detect_group, band=band, meta=m)))
 

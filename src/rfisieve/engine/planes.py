@@ -154,13 +154,27 @@ def _planes(block, lo, hi, p):
 
 
 def _noise_task(planes, band, meta, p, t0):
+    """The pre-pass on one window of one product: (SumThreshold noise sigma, the window's
+    bandpass shape for the scan's reference, or None when the persistence test is off)."""
     from rfisieve.detect.sumthreshold import sumthreshold_noise
 
     prep = _prepare(planes, p, meta)
     if prep["excluded"].all():
-        return np.nan
-    return float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0,
-                                    **_st_settings(band)))
+        return np.nan, None
+    sigma = float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0, **_st_settings(band)))
+    st = band["sumthreshold"]
+    shape = None
+    if st.get("bandpass_dumps") and st.get("persist_dumps"):
+        from rfisieve.detect.bandpass import reference_shape
+
+        shape = reference_shape(prep["values"], prep["excluded"])
+    return sigma, shape
+
+
+def _reference(meta, p):
+    """Product p's reference bandpass shape of the pre-pass (None without one)."""
+    refs = meta.get("ref")
+    return None if refs is None else refs[p]
 
 
 def _s2_invalid(s2):
@@ -252,10 +266,11 @@ def _sumthreshold_hits(preps, group, band, meta, t0, wanted):
     if len(group) == 1:
         prep = preps[0]
         return [sumthreshold_flagger(prep["values"], invalid=prep["excluded"], sigma=meta["sigma"][group[0]],
-                                     t0=t0, protect=meta.get("protect"), wanted=wanted, **st)]
+                                     t0=t0, protect=meta.get("protect"), wanted=wanted,
+                                     reference=_reference(meta, group[0]), **st)]
     return combined_flagger([pr["values"] for pr in preps], [meta["sigma"][p] for p in group],
                             invalids=[pr["excluded"] for pr in preps], t0=t0, protect=meta.get("protect"),
-                            wanted=wanted, **st)
+                            wanted=wanted, references=[_reference(meta, p) for p in group], **st)
 
 
 def _detect_group(preps, group, detector, band, meta, t0, core, rows=None):

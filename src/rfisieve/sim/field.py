@@ -71,7 +71,7 @@ SPEED_OF_LIGHT = 299_792_458.0
 
 
 def field_bandpass(nchan, rng, edge_channels=20.0, edge_drop=50.0, knee_channels=24,
-                   shoulder=True, channel_width=62.5e3):
+                   shoulder=True, channel_width=62.5e3, standing_wave=None):
     """Relative bandpass of a digitised band with steep anti-aliasing edges.
 
     Within ``knee_channels`` of each edge the response falls as
@@ -80,7 +80,10 @@ def field_bandpass(nchan, rng, edge_channels=20.0, edge_drop=50.0, knee_channels
     knee), i.e. by ``edge_drop`` over ``edge_channels`` channels.  In band: a 10 %
     dome, a random slope of up to 4 %, a 2 % standing wave of period c / (2 x 5 m)
     (common practice for a dish-feed reflection; the path is invented) and, with
-    ``shoulder``, a 30 % step over about 6 channels at a random place.
+    ``shoulder``, a 30 % step over about 6 channels at a random place.  ``standing_wave``
+    = (a, L, phase) adds a second standing wave of relative amplitude a and period
+    c / (2 L) (a reflection path of L metres, e.g. between a large dish's vertex and its
+    focus, or along a mismatched cable), at ``phase`` radians.
 
     Returns float64 (nchan,), peak about 1.
     """
@@ -97,6 +100,10 @@ def field_bandpass(nchan, rng, edge_channels=20.0, edge_drop=50.0, knee_channels
     period = SPEED_OF_LIGHT / (2 * 5.0) / channel_width
     ripple = 1.0 + 0.02 * np.sin(2 * np.pi * c / period + rng.uniform(0, 2 * np.pi))
     out = edge * dome * ripple
+    if standing_wave is not None:
+        amp, path_m, phase = standing_wave
+        period2 = SPEED_OF_LIGHT / (2 * float(path_m)) / channel_width
+        out = out * (1.0 + float(amp) * np.sin(2 * np.pi * c / period2 + float(phase)))
     if shoulder:
         at = rng.uniform(0.55, 0.8) * nchan
         out *= 1.0 - 0.3 / (1.0 + np.exp(-(c - at) / 1.5))
@@ -218,7 +225,7 @@ def _emitters(kinds, ntime, nchan, rng, used):
 
 def field_scene(kinds, seed, ntime=4096, nchan=1024, accumulations=512, channel_width=62.5e3,
                 f_center_hz=1420.0e6, sky_line=True, edge_knees=(True, True), inputs=("pier3.a", "pier3.b"),
-                second_strength=0.8, edge_carriers=True):
+                second_strength=0.8, edge_carriers=True, standing_wave=None):
     """Draw one field scene in memory.
 
     Parameters
@@ -236,6 +243,10 @@ def field_scene(kinds, seed, ntime=4096, nchan=1024, accumulations=512, channel_
         within +-150 km/s) where the view holds it.
     edge_carriers : bool
         Also put 1-sigma persistent carriers on the knees (kind ``carrier``).
+    standing_wave : (float, float), optional
+        A second standing wave in each input's bandpass, (amplitude, path in metres)
+        (:func:`field_bandpass`); its phases come from a generator of their own, so the
+        scene is otherwise the one drawn without it.
 
     Returns
     -------
@@ -247,8 +258,10 @@ def field_scene(kinds, seed, ntime=4096, nchan=1024, accumulations=512, channel_
     freq = f_center_hz + (np.arange(nchan) - nchan / 2 + 0.5) * channel_width
     used = [(0, 26), (nchan - 26, nchan)]
     mus = []
-    for _ in inputs:
-        bp = field_bandpass(nchan, rng, channel_width=channel_width)
+    phases = np.random.default_rng([seed, 2]).uniform(0, 2 * np.pi, len(inputs))
+    for i, _ in enumerate(inputs):
+        wave = None if standing_wave is None else (*standing_wave, phases[i])
+        bp = field_bandpass(nchan, rng, channel_width=channel_width, standing_wave=wave)
         mus.append(_gain(ntime, rng)[:, None] * bp[None, :])
     # the sky line
     sky = np.zeros(nchan)
