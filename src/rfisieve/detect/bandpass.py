@@ -574,7 +574,8 @@ def persistence_test(products, z, protect=None):
             okp, zp, _, _ = _joint([b.excess(1, cols, rows=pr, temporal=temporal) for b in products])
             oks, zsub, _, _ = _joint([b.excess(per_sub, cols, rows=srows, temporal=temporal) for b in products])
             sub_ok = (oks & (zsub > REFINE_SIGMA))[np.searchsorted(srows, gsub)]
-            flags[at] |= cands[ki][at] & sub_ok & okp & (zp > PART_SIGMA)
+            mine = cands[ki] if temporal or len(kinds) == 1 else cands[ki] & ~cands[1]
+            flags[at] |= mine[at] & sub_ok & okp & (zp > PART_SIGMA)
             if not temporal:
                 strong[at] = zp > ISOLATED_PART_SIGMA
             else:   # the temporal strength counts in the channels the temporal test found
