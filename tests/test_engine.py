@@ -85,6 +85,26 @@ def test_noise_windows_read_at_most_a_quarter(ntime):
     assert len(w) == 1 or 256 * len(w) <= ntime / 4
 
 
+@pytest.mark.parametrize("ntime", [1, 255, 256, 700, 1024, 1025, 2048, 3000, 4096, 32768])
+def test_reference_windows_tile_a_short_scan(ntime):
+    """The reference's windows (plan.reference_windows, from its definition): up to 1024
+    dumps they tile the scan exactly; beyond, four of 256 dumps from the first dump to the
+    last; from 4096 dumps on they are the noise windows."""
+    from rfisieve.engine import noise_windows
+    from rfisieve.engine.plan import reference_windows
+
+    w = reference_windows(ntime)
+    assert 1 <= len(w) <= 4
+    assert all(w[k][1] <= w[k + 1][0] for k in range(len(w) - 1))
+    if ntime <= 1024:
+        assert w[0][0] == 0 and w[-1][1] == ntime
+        assert all(w[k][1] == w[k + 1][0] for k in range(len(w) - 1))
+    else:
+        assert len(w) == 4 and all(b - a == 256 for a, b in w) and w[-1][1] == ntime
+    if ntime >= 4096:
+        assert w == noise_windows(ntime)
+
+
 def test_workers_do_not_change_the_mask(scan, tmp_path):
     # Issue 2: identical masks for 1 and 2 workers.
     a = _flag(scan, tmp_path / "a.h5", chunk_dumps=512, workers=1)

@@ -8,8 +8,8 @@ import dask
 import numpy as np
 
 from rfisieve.engine.pages import MemoryBound
-from rfisieve.engine.plan import (detect_halo, halo_span, noise_windows, segment_chunks, segment_of,
-                                  split_at_gaps, window_span)
+from rfisieve.engine.plan import (detect_halo, halo_span, noise_windows, reference_windows, segment_chunks,
+                                  segment_of, split_at_gaps, window_span)
 from rfisieve.engine.planes import (_assemble_groups, _detect_group, _flag_group, _meta, _noise_task,
                                     _planes, _prepare)
 from rfisieve.errors import RfisieveError
@@ -151,13 +151,21 @@ def _noise_prepass(scan, band, meta, sched, what, segments):
     off).  Returns (sigmas, references)."""
     from rfisieve.detect.bandpass import reference_of
 
+    st = band["sumthreshold"]
+    shapes = bool(st.get("bandpass_dumps") and st.get("persist_dumps"))
     tasks, owner = [], []
     task = dask.delayed(partial(_noise_task, band=band, meta=meta))
     for k, (s, e) in enumerate(segments):
-        for a, b in noise_windows(e - s):
+        # sigma on the noise windows; the reference's shapes (cheap: a quantile per
+        # channel) on up to four windows, tiling a short stretch, so that an emitter on
+        # in one of them does not make the reference
+        sig_w = {tuple(w) for w in noise_windows(e - s)}
+        ref_w = {tuple(w) for w in reference_windows(e - s)} if shapes else set()
+        for a, b in sorted(sig_w | ref_w):
             block = scan.read(s + a, s + b, what)
             for p in range(scan.nprod):
-                tasks.append(task(sched.put(_planes(block, 0, b - a, p)), p=p, t0=a))
+                tasks.append(task(sched.put(_planes(block, 0, b - a, p)), p=p, t0=a,
+                                  sigma=(a, b) in sig_w, shape=(a, b) in ref_w))
                 owner.append((k, p))
     values = dask.compute(*tasks, **sched.kwargs)
     sigmas, refs = [], []

@@ -163,6 +163,27 @@ def _check_band_matches(scan, band):
         raise ScanError(scan.path, f"band is {scan.band!r} but the band config given is for {want!r}")
 
 
+def reference_windows(ntime):
+    """The [start, stop) windows whose bandpass shapes make the scan's reference
+    (:func:`rfisieve.detect.bandpass.reference_of`): NOISE_WINDOWS windows of NOISE_WINDOW
+    dumps spread from the first dump to the last, or, for a stretch of at most
+    NOISE_WINDOWS x NOISE_WINDOW dumps, windows of about NOISE_WINDOW dumps tiling it (the
+    whole stretch when it is shorter than one).  From 4096 dumps on these are the noise
+    windows (:func:`noise_windows`)."""
+    ntime = int(ntime)
+    if ntime <= NOISE_WINDOW * NOISE_WINDOWS:
+        n = max(1, ntime // NOISE_WINDOW)
+        edges = np.linspace(0, ntime, n + 1).round().astype(int)
+        return [[int(a), int(b)] for a, b in zip(edges[:-1], edges[1:])]
+    return _spread(ntime, NOISE_WINDOWS)
+
+
+def _spread(ntime, n):
+    """n windows of NOISE_WINDOW dumps spread evenly from dump 0 to the last dump."""
+    starts = np.linspace(0, ntime - NOISE_WINDOW, n).round().astype(int)
+    return [[int(a), int(a) + NOISE_WINDOW] for a in starts]
+
+
 def noise_windows(ntime):
     """The [start, stop) dump windows of the noise pre-pass (independent of chunking):
     n = min(NOISE_WINDOWS, ntime // (NOISE_SHARE x NOISE_WINDOW)) windows of NOISE_WINDOW
@@ -172,6 +193,4 @@ def noise_windows(ntime):
     ntime = int(ntime)
     if ntime <= NOISE_WINDOW:
         return [[0, ntime]]
-    n = max(1, min(NOISE_WINDOWS, ntime // (NOISE_SHARE * NOISE_WINDOW)))
-    starts = np.linspace(0, ntime - NOISE_WINDOW, n).round().astype(int)
-    return [[int(a), int(a) + NOISE_WINDOW] for a in starts]
+    return _spread(ntime, max(1, min(NOISE_WINDOWS, ntime // (NOISE_SHARE * NOISE_WINDOW))))

@@ -153,22 +153,24 @@ def _planes(block, lo, hi, p):
     return {key: arr[lo:hi, :, p] for key, arr in block.items()}
 
 
-def _noise_task(planes, band, meta, p, t0):
-    """The pre-pass on one window of one product: (SumThreshold noise sigma, the window's
-    bandpass shape for the scan's reference, or None when the persistence test is off)."""
+def _noise_task(planes, band, meta, p, t0, sigma=True, shape=True):
+    """The pre-pass on one window of one product: (SumThreshold noise sigma, or NaN when
+    not asked for; the window's bandpass shape for the scan's reference, or None when
+    not asked for or the persistence test is off)."""
     from rfisieve.detect.sumthreshold import sumthreshold_noise
 
     prep = _prepare(planes, p, meta)
     if prep["excluded"].all():
         return np.nan, None
-    sigma = float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0, **_st_settings(band)))
+    sig = (float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0, **_st_settings(band)))
+           if sigma else np.nan)
     st = band["sumthreshold"]
-    shape = None
-    if st.get("bandpass_dumps") and st.get("persist_dumps"):
+    out = None
+    if shape and st.get("bandpass_dumps") and st.get("persist_dumps"):
         from rfisieve.detect.bandpass import reference_shape
 
-        shape = reference_shape(prep["values"], prep["excluded"])
-    return sigma, shape
+        out = reference_shape(prep["values"], prep["excluded"])
+    return sig, out
 
 
 def _reference(meta, p):
