@@ -20,6 +20,7 @@ both methods' scores (they are not a flagging decision; see rfisieve.evaluate.sc
     .venv/bin/python bench/quality.py --set sumthreshold.chi1=5.5 --set growth.eta=0.3
     .venv/bin/python bench/quality.py --field              # field scenes, tuning seeds
     .venv/bin/python bench/quality.py --field --heldout    # field scenes, held-out seeds
+    .venv/bin/python bench/quality.py --field --standing-wave 0.01,40   # plus a 1 % standing wave (40 m path)
 
 Field scenes (rfisieve.sim.field; ``--field``): 4096 dumps x 1024 channels of 62.5 kHz
 around the 21-cm line, N = 512, two polarizations sharing every emitter (the second at
