@@ -520,8 +520,9 @@ def persistence_test(products, z, protect=None):
                 # one bandpass block would keep the partial ones at a plane's ends, so the
                 # result would depend on where the plane starts, i.e. on the chunks)
                 continue
+            rough = False   # set by the spectral run, which comes first
             for ki, temporal in enumerate(kinds):
-                if temporal and not np.any(sc > TEMPORAL_FROM):
+                if temporal and not rough:
                     continue   # the spectral baselines follow the bandpass to within the noise
                 ok, zs, zm, grp = _joint([b.excess(k, shift=shift, temporal=temporal) for b in products])
                 if shift:
@@ -533,6 +534,7 @@ def persistence_test(products, z, protect=None):
                                np.inf)
                 hit = ok & (zs > thr[:, None])
                 cands[ki] |= hit[grp]
+                rough = rough or bool(np.any(sc > TEMPORAL_FROM))
     cand = cands.any(axis=0)
     flags = np.zeros((P, m), np.bool_)
     strong = np.zeros((P, m), np.bool_)   # parts that would pass ISOLATED_PART_SIGMA too

@@ -153,10 +153,11 @@ def _planes(block, lo, hi, p):
     return {key: arr[lo:hi, :, p] for key, arr in block.items()}
 
 
-def _noise_task(planes, band, meta, p, t0, sigma=True, shape=True):
+def _noise_task(planes, band, meta, p, t0, sigma=True, shape=False):
     """The pre-pass on one window of one product: (SumThreshold noise sigma, or NaN when
     not asked for; the window's bandpass shape for the scan's reference, or None when
-    not asked for or the persistence test is off)."""
+    not asked for: :func:`rfisieve.engine.executor._noise_prepass` asks for it only with
+    the persistence test on)."""
     from rfisieve.detect.sumthreshold import sumthreshold_noise
 
     prep = _prepare(planes, p, meta)
@@ -164,9 +165,8 @@ def _noise_task(planes, band, meta, p, t0, sigma=True, shape=True):
         return np.nan, None
     sig = (float(sumthreshold_noise(prep["values"], invalid=prep["excluded"], t0=t0, **_st_settings(band)))
            if sigma else np.nan)
-    st = band["sumthreshold"]
     out = None
-    if shape and st.get("bandpass_dumps") and st.get("persist_dumps"):
+    if shape:
         from rfisieve.detect.bandpass import reference_shape
 
         out = reference_shape(prep["values"], prep["excluded"])

@@ -70,6 +70,14 @@ HI_REST_HZ = 1420.405752e6
 SPEED_OF_LIGHT = 299_792_458.0
 
 
+def _standing(c, amp, path_m, channel_width, phase):
+    """1 + a sin(2 pi c / P + phase) over channels c: a standing wave of relative
+    amplitude a whose period P is c / (2 L) for a reflection path of L = ``path_m``
+    metres (in channels of ``channel_width`` Hz)."""
+    period = SPEED_OF_LIGHT / (2 * float(path_m)) / channel_width
+    return 1.0 + float(amp) * np.sin(2 * np.pi * c / period + float(phase))
+
+
 def field_bandpass(nchan, rng, edge_channels=20.0, edge_drop=50.0, knee_channels=24,
                    shoulder=True, channel_width=62.5e3, standing_wave=None):
     """Relative bandpass of a digitised band with steep anti-aliasing edges.
@@ -97,13 +105,9 @@ def field_bandpass(nchan, rng, edge_channels=20.0, edge_drop=50.0, knee_channels
     edge = np.exp(-math.log(edge_drop) * (soft(lo_u) + soft(hi_u)) / edge_channels)
     slope = rng.uniform(-0.04, 0.04)
     dome = (0.9 + 0.1 * (1.0 - (2.0 * x - 1.0) ** 2)) * (1.0 + slope * (x - 0.5))
-    period = SPEED_OF_LIGHT / (2 * 5.0) / channel_width
-    ripple = 1.0 + 0.02 * np.sin(2 * np.pi * c / period + rng.uniform(0, 2 * np.pi))
-    out = edge * dome * ripple
+    out = edge * dome * _standing(c, 0.02, 5.0, channel_width, rng.uniform(0, 2 * np.pi))
     if standing_wave is not None:
-        amp, path_m, phase = standing_wave
-        period2 = SPEED_OF_LIGHT / (2 * float(path_m)) / channel_width
-        out = out * (1.0 + float(amp) * np.sin(2 * np.pi * c / period2 + float(phase)))
+        out = out * _standing(c, *standing_wave[:2], channel_width, standing_wave[2])
     if shoulder:
         at = rng.uniform(0.55, 0.8) * nchan
         out *= 1.0 - 0.3 / (1.0 + np.exp(-(c - at) / 1.5))
