@@ -21,6 +21,7 @@ both methods' scores (they are not a flagging decision; see rfisieve.evaluate.sc
     .venv/bin/python bench/quality.py --field              # field scenes, tuning seeds
     .venv/bin/python bench/quality.py --field --heldout    # field scenes, held-out seeds
     .venv/bin/python bench/quality.py --field --standing-wave 0.01,40   # plus a 1 % standing wave (40 m path)
+    .venv/bin/python bench/quality.py --field --second-strength 0       # every emitter in one polarization
 
 Field scenes (rfisieve.sim.field; ``--field``): 4096 dumps x 1024 channels of 62.5 kHz
 around the 21-cm line, N = 512, two polarizations sharing every emitter (the second at
@@ -293,7 +294,7 @@ FIELD_TARGETS = {"tdma": 0.85, "fracpulse": 0.75}
 PROTECTED_CODE = 100
 
 
-def run_field_scene(name, tmp, band, run, seed, ntime, nchan, standing_wave=None):
+def run_field_scene(name, tmp, band, run, seed, ntime, nchan, standing_wave=None, second_strength=0.8):
     from rfisieve.engine import flag_scan
     from rfisieve.sim.field import field_scene, write_field_scene
 
@@ -304,7 +305,7 @@ def run_field_scene(name, tmp, band, run, seed, ntime, nchan, standing_wave=None
     # the L band's view is centred on the 21-cm line; the others' on their default view
     centre = 1420.0e6 if band["band"] == "L" else 0.5 * (lo + hi)
     scene = field_scene(FIELD_SCENES[name][1], seed, ntime=ntime, nchan=nchan, f_center_hz=centre,
-                        standing_wave=standing_wave)
+                        standing_wave=standing_wave, second_strength=second_strength)
     scan, truth = Path(tmp) / f"field_{name}.h5", Path(tmp) / f"field_{name}.truth.h5"
     write_field_scene(scan, truth, scene, band=band["band"])
     t_sim = time.time() - t0
@@ -356,12 +357,15 @@ def main_field(args, band, run):
           f"N = 512, seeds {seed0}..{seed0 + len(args.field) - 1}"
           f"{' (held out: not looked at while tuning)' if args.heldout else ' (tuning set)'}"
           + (f"; a second standing wave of {args.standing_wave[0]:g} at a {args.standing_wave[1]:g} m path"
-             if args.standing_wave else ""))
+             if args.standing_wave else "")
+          + (f"; the second polarization sees the emitters at {args.second_strength:g}"
+             if args.second_strength != 0.8 else ""))
     pooled, kinds_all, results = None, {}, []
     with tempfile.TemporaryDirectory(prefix="rfisieve-field-") as tmp:
         for i, name in enumerate(args.field):
             res = run_field_scene(name, tmp, band, run, seed0 + list(FIELD_SCENES).index(name),
-                                  args.ntime, args.nchan, args.standing_wave)
+                                  args.ntime, args.nchan, args.standing_wave,
+                                  args.second_strength)
             a = finish(res["counts"], res["kinds"])
             results.append((res, a))
             kinds_all.update(res["kinds"])
@@ -427,6 +431,10 @@ def main(argv=None):
                     help="field scenes: add a second standing wave to each bandpass, relative amplitude "
                          "AMP with the period c / (2 PATH_M) of a reflection path of PATH_M metres "
                          "(e.g. 0.01,40: 1 %% every 3.75 MHz)")
+    ap.add_argument("--second-strength", type=float, default=0.8, metavar="S",
+                    help="field scenes: the second polarization's share of each emitter's INR (default 0.8; "
+                         "0 puts every emitter in the first polarization only, whose false alarms in the "
+                         "second then show what flagging a feed pair together costs)")
     ap.add_argument("--band", default="L", choices=("P", "L", "C"),
                     help="field scenes: the shipped band config and view to use (default L)")
     args = ap.parse_args(argv)

@@ -285,6 +285,43 @@ def test_combining_two_polarizations_finds_a_carrier_neither_alone_passes():
     assert max(b[~truth].mean() for b in both) < 0.002
 
 
+def test_a_pulse_one_product_finds_alone_is_flagged_in_both():
+    # Check values: a pulse one dump long and three channels wide at 3 sigma sums to
+    # 3 sqrt(3) = 5.2 box sigma in the first product and 0.8 of that, 4.2, in the
+    # second (box sums of independent unit Gaussians, common practice): against the box
+    # threshold 4.5 the first finds most pulses alone and the second fewer.  The pair's
+    # sum carries (3 + 2.4) sqrt(3) / sqrt(2) = 6.6 box sigma, 2.1 sigma above the
+    # threshold (found with probability norm.cdf(2.1) = 0.98, scipy.stats), so the
+    # joint pass must flag in the second product the pulses the first found alone
+    # (before 2026-12-04 it left them out of the pair's sum as already flagged, and
+    # flagged none of them); clean samples away from the pulses stay under 0.2 %.
+    from scipy.ndimage import binary_dilation
+
+    from rfisieve.detect.sumthreshold import combined_flagger
+
+    rng = np.random.default_rng(11)
+    n, m = 512, 128
+    truth = np.zeros((n, m), bool)
+    for i in range(40):
+        t, c = 10 + 12 * i, 8 + (i * 29) % 110
+        truth[t, c:c + 3] = True
+    planes = [rng.normal(1.0, SIGMA, (n, m)) for _ in range(2)]
+    for x, strength in zip(planes, (1.0, 0.8)):
+        x[truth] += 3.0 * strength * SIGMA
+    planes = [x.astype(np.float32) for x in planes]
+    s = dict(chi1=8.0, compact_sigma=4.5)
+    alone = [sumthreshold_flagger(x, sigma=SIGMA, **s) for x in planes]
+    both = combined_flagger(planes, [SIGMA, SIGMA], **s)
+    first_only = truth & alone[0] & ~alone[1]
+    assert first_only.sum() >= 30
+    assert both[1][first_only].mean() > 0.9
+    far = ~binary_dilation(truth, np.ones((3, 5), bool))
+    for a, b in zip(alone, both):
+        assert not (a & ~b).any()                 # a product's own detections are kept
+        assert b[truth].mean() > 0.9
+        assert b[far].mean() < 0.002
+
+
 def test_column_quantiles_match_numpy():
     # Brute force from the definition: numpy.quantile (linear interpolation between
     # order statistics, its default) per channel over the rows not excluded.

@@ -478,9 +478,10 @@ def init_flagger(x, inv, has_inv, flg, has_flg, lev, ex):
 def pair_grid(ga, gb, la, lb, da, db, scale, lo, hi, z, lev):
     """A feed pair's summed residual on the grid: z = rint(clip((ga + gb) * scale, lo,
     hi)) (scale = 1 / sqrt(2): unit noise when ga and gb each have it); lev = 255 where
-    either product's level is invalid, 1 where either is flagged on input or detected
-    (da, db), 0 elsewhere.  Returns the per-row and per-column counts of invalid samples
-    (as :func:`init_levels`)."""
+    either product's level is invalid, 1 where either is flagged on input or both
+    detected it (da and db), 0 elsewhere: a sample only one product detected stays free,
+    so the pair's sum judges it.  Returns the per-row and per-column counts of invalid
+    samples (as :func:`init_levels`)."""
     n, m = z.shape
     rowbad = np.zeros(n, np.int64)
     colbad = np.zeros(m, np.int64)
@@ -488,7 +489,7 @@ def pair_grid(ga, gb, la, lb, da, db, scale, lo, hi, z, lev):
         nb = 0
         for c in range(m):
             bad = la[t, c] == LEV_INVALID or lb[t, c] == LEV_INVALID
-            flg = la[t, c] != LEV_FREE or lb[t, c] != LEV_FREE or da[t, c] or db[t, c]
+            flg = la[t, c] != LEV_FREE or lb[t, c] != LEV_FREE or (da[t, c] and db[t, c])
             lev[t, c] = np.uint8(LEV_INVALID) if bad else (np.uint8(LEV_INPUT) if flg else np.uint8(LEV_FREE))
             v = (np.float64(ga[t, c]) + np.float64(gb[t, c])) * scale
             v = v if v > lo else lo

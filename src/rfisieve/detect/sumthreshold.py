@@ -369,8 +369,10 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     along frequency with the time pass's detections as flagged, thresholds chi_1 =
     ``chi1``, as in the flagger) and, with ``compact_sigma``, the compact boxes
     (:func:`rfisieve.detect.bandpass.compact_flags`) and the edge test
-    (:func:`rfisieve.detect.bandpass.edge_flags`) run on z with both products'
-    detections and input flags as flagged; with the persistence test on, it runs on
+    (:func:`rfisieve.detect.bandpass.edge_flags`) run on z with the samples both
+    products detected, and either's input flags, as flagged: a sample only one product
+    detected enters z with its value, so a pulse one product found alone is flagged in
+    the other too when the pair's sum passes; with the persistence test on, it runs on
     the pair's block means together (:func:`rfisieve.detect.bandpass.persistence_test`:
     each z of the test summed over the products, over sqrt(2)).  A sample found
     together is flagged in *both* products (the emitter is in both).  A sample invalid in either product is left
