@@ -290,6 +290,8 @@ FIELD_SCENES = {
 }
 #: Seeds tuned on; the held-out seeds (``--heldout``) are these plus HELDOUT_OFFSET.
 HELDOUT_OFFSET = 1000
+#: Dumps and channels of a field scene unless --ntime / --nchan say otherwise.
+FIELD_SHAPE = (4096, 1024)
 FIELD_TARGETS = {"tdma": 0.85, "fracpulse": 0.75}
 PROTECTED_CODE = 100
 
@@ -416,8 +418,10 @@ def main_field(args, band, run):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--scenes", nargs="+", choices=list(SCENES), default=list(SCENES))
-    ap.add_argument("--ntime", type=int, default=NTIME)
-    ap.add_argument("--nchan", type=int, default=NCHAN)
+    ap.add_argument("--ntime", type=int, default=None,
+                    help=f"dumps per scene (default {NTIME}; field scenes {FIELD_SHAPE[0]})")
+    ap.add_argument("--nchan", type=int, default=None,
+                    help=f"channels per scene (default {NCHAN}; field scenes {FIELD_SHAPE[1]})")
     ap.add_argument("--accumulations", type=int, default=ACC)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--workers", type=int, default=2)
@@ -455,11 +459,12 @@ def main(argv=None):
         band = merge(load_band(str(Path(__file__).resolve().parent.parent / "config" / "bands"), args.band)[0],
                      parse_set(args.sets))
         args.field = args.field or list(FIELD_SCENES)
-        if args.ntime == NTIME and args.nchan == NCHAN:
-            args.ntime, args.nchan = 4096, 1024
+        args.ntime = args.ntime or FIELD_SHAPE[0]
+        args.nchan = args.nchan or FIELD_SHAPE[1]
         print(f"band settings: the shipped config/bands/{args.band}.yaml"
               + (f" with overrides {json.dumps(parse_set(args.sets))}" if args.sets else ""))
         return main_field(args, band, run)
+    args.ntime, args.nchan = args.ntime or NTIME, args.nchan or NCHAN
     print(f"rfisieve flagging-quality benchmark: {len(args.scenes)} scene(s) of {args.ntime} dumps x "
           f"{args.nchan} channels x 2 auto products, accumulations {args.accumulations}, seed {args.seed}")
     print("band settings: defaults" + (f" with overrides {json.dumps(parse_set(args.sets))}" if args.sets else ""))
