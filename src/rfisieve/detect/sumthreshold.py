@@ -653,12 +653,13 @@ def sumthreshold_halo(settings):
     block length under T) depends on the next bandpass block's window too (L / 2
     more), and the trimming of its runs' ends looks one part (``PART_DUMPS`` = 16)
     beyond; the compact boxes add their height less one (2 dumps) and the edge test
-    (:func:`rfisieve.detect.bandpass.edge_flags`) one more.  For the L band (T = 256,
-    blocks of 256, 128 and 64, boxes of up to 3 dumps): 303 + 384 + 64 + 16 + 3 = 770,
-    rounded up to 776.  With ``combine_feeds`` (the engine gives a feed pair's two
-    auto products to :func:`combined_flagger`) the pass on the summed residuals, which
-    takes each product's detections as flagged, adds R_st once more, and its boxes and
-    edge test 3 more: L band 770 + 57 + 3 = 830, rounded up to 832.
+    (:func:`rfisieve.detect.bandpass.edge_flags`) one more.  For the L band (2
+    iterations, T = 256, blocks of 256, 128 and 64, boxes of up to 3 dumps): 202 + 384 +
+    64 + 16 + 3 = 669, rounded up to 672.  With ``combine_feeds`` (the engine gives a
+    feed pair's two auto products to :func:`combined_flagger`) the pass on the summed
+    residuals, which takes the samples both products detected as flagged, adds R_st
+    once more, and its boxes and edge test 3 more: L band 669 + 57 + 3 = 729, rounded up
+    to 736.
 
     Parameters
     ----------
