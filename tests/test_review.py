@@ -512,3 +512,15 @@ def test_a_night_where_every_scan_failed_still_gets_a_page(tmp_path):
     assert main(["review", str(tmp_path)]) == 0
     page = (tmp_path / "report" / "index.html").read_text(encoding="utf-8")
     assert "qro_x_L" in page and "no such file" in page
+
+
+def test_decade_labels_of_log_axes():
+    # Check values from the definition of a decade: 10**e for whole e, written as
+    # 10 with the exponent in Unicode superscripts (U+207B minus, U+2070.. digits;
+    # the Unicode standard's superscript block), 1, 10 and 100 plainly; values between
+    # decades unlabelled.
+    from rfisieve.review.plots import decade_label
+
+    assert [decade_label(v) for v in (1e-6, 1e-1, 1.0, 10.0, 100.0, 1e3, 1e12)] == \
+        ["10\u207b\u2076", "10\u207b\u00b9", "1", "10", "100", "10\u00b3", "10\u00b9\u00b2"]
+    assert [decade_label(v) for v in (2.0, 3e-5, 0.0, -10.0)] == ["", "", "", ""]

@@ -49,6 +49,33 @@ def _save(fig, path, close=True):
             os.remove(tmp)
 
 
+_SUPERSCRIPT = str.maketrans("-0123456789", "\u207b\u2070\u00b9\u00b2\u00b3\u2074\u2075\u2076\u2077\u2078\u2079")
+
+
+def decade_label(v, _pos=None):
+    """A log axis's label of ``v``: 1, 10 and 100 as plain numbers, other decades as
+    10 with a Unicode superscript exponent (10\u207b\u2076), anything else (a value
+    between decades) unlabelled.  Matplotlib's own log labels are mathtext, whose parser
+    is built at its first use in a process: 0.1 s of the SK figure's 0.4 s."""
+    if not v > 0:
+        return ""
+    e = round(np.log10(v))
+    if abs(v / 10.0 ** e - 1.0) > 1e-9:
+        return ""
+    if 0 <= e <= 2:
+        return f"{10 ** int(e)}"
+    return "10" + str(int(e)).translate(_SUPERSCRIPT)
+
+
+def log_axis(axis):
+    """Decades labelled by :func:`decade_label` on a log-scaled ``axis`` (ax.xaxis or
+    ax.yaxis), minor ticks unlabelled."""
+    from matplotlib.ticker import FuncFormatter, NullFormatter
+
+    axis.set_major_formatter(FuncFormatter(decade_label))
+    axis.set_minor_formatter(NullFormatter())
+
+
 def stairs(ax, values, edges, **kwargs):
     """``ax.stairs(values, edges, **kwargs)``, with the data limits taken from the step
     outline's vertices in one call.  Matplotlib takes a patch's limits segment by
@@ -605,6 +632,7 @@ def sk_diagnostic(path, sk, title=None):
             stairs(wide, np.where(part > 0, part, np.nan), wide_edges, fill=True, color=colour, alpha=alpha)
         for a_ in (ax, wide):
             a_.set_yscale("log")
+            log_axis(a_.yaxis)
         if dist is not None:
             x = np.linspace(core[0], core[1], 800)
             with np.errstate(all="ignore"):
@@ -617,6 +645,7 @@ def sk_diagnostic(path, sk, title=None):
         ax.set_xlim(*core)
         if log_x:
             wide.set_xscale("log")
+            log_axis(wide.xaxis)
             wide.set_xlim(float(edges[edges > 0][0]), whole[1] * 1.3)
         else:
             wide.set_xlim(whole[0], whole[1] + 0.06 * (whole[1] - whole[0]))
