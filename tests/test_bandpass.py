@@ -534,3 +534,29 @@ def test_reference_finds_a_wideband_block_a_standing_wave_hides():
     clean = np.ones(x.shape, bool)
     clean[on, 96:128] = False
     assert seen[clean].mean() < 0.003
+
+
+def test_fine_test_spares_channels_beside_a_held_wide_emitter():
+    # Check value from the fine test's own prediction (fine_excess: p(c) = (6 s_1 + 3 s_2
+    # - 2 s_3) / 7 from the pairs' means s_j, exact for cubics): a flat log bandpass with
+    # a 25-channel block raised by D = 0.5 starting three channels past c gives
+    # s_3 = D / 2, so c stands (2 / 7)(D / 2) = D / 7 = 0.071 above its prediction, ~20
+    # times the scatter of a bandpass quartile at N = 512 (0.06 sigma of a dump, 1 / sqrt(512)
+    # each): a clean channel flagged.  With the block's channels held (the persistence
+    # test's candidates) they are replaced as neighbours from the start and c is spared;
+    # the block's own edges, found with every neighbour as measured, are still found.
+    from rfisieve.detect.bandpass import fine_excess
+
+    rng = np.random.default_rng(12)
+    m, a, b = 256, 120, 145
+    lb = rng.normal(0.0, 0.06 * SIGMA, m)
+    lb[a:b] += 0.5
+    row = np.exp(lb)
+    held = np.zeros(m, bool)
+    held[a:b] = True
+    plain = fine_excess(row, 5.0)
+    spared = fine_excess(row, 5.0, held=held)
+    assert plain[a - 3] and plain[b + 2]          # the artefact: 3 channels out on each side
+    assert not spared[a - 3] and not spared[b + 2]
+    assert not spared[~held].any()
+    assert spared[a] or spared[b - 1]             # an edge of the block itself

@@ -542,9 +542,18 @@ def persistence_test(products, z, protect=None):
     # by the symmetric leave-one-out excess of the sub-block and part means
     nb = b0.bp.shape[0]
     fine = np.zeros((nb, m), np.bool_)
+    # a channel that is a candidate in at least half of a bandpass block's parts holds an
+    # emitter there: the fine test takes it as a found neighbour from the start
+    # (fine_excess's ``held``)
+    held = np.zeros((nb, m), np.bool_)
+    if cand.any():
+        first = np.flatnonzero(np.r_[True, b0.pblock[1:] != b0.pblock[:-1]])   # parts run block by block
+        per_block = np.add.reduceat(cand.astype(np.int32), first, axis=0)
+        nparts = np.diff(np.r_[first, b0.P])
+        held[b0.pblock[first]] = (2 * per_block >= nparts[:, None]) & (per_block > 0)
     for i in range(nb):
         fine[i] = fine_excess(np.array([b.bp[i] for b in products]) if len(products) > 1 else b0.bp[i],
-                              z, protect)
+                              z, protect, held=held[i])
     fcols = np.flatnonzero(fine.any(axis=0))
     fhit = None
     if fcols.size:
@@ -904,7 +913,7 @@ def _loo_excess(lb, nb=None):
     return e, sym
 
 
-def fine_excess(bp_row, z, protect=None):
+def fine_excess(bp_row, z, protect=None, held=None):
     r"""Channels of one block's bandpass that stand out of a local quadratic in log
     power: narrow persistent emitters on steep slopes and knees.
 
@@ -931,6 +940,14 @@ def fine_excess(bp_row, z, protect=None):
         Threshold in robust sigma.
     protect : ndarray of bool, optional
         Channels not tested.
+    held : ndarray of bool, optional
+        Channels known to hold an emitter in this block (the persistence test's
+        candidates): as neighbours they are replaced from the start, like the channels
+        found, so that a wide emitter's flat top, which the test does not find, does not
+        lift the clean channels up to three away by the predictions' negative outer
+        weights (a 25-channel block at INR 25 flagged both channels three beyond its
+        edges in every dump of a demo P-band scan): a channel found within three of
+        them is kept only when found again with them replaced.
 
     Returns
     -------
@@ -938,7 +955,7 @@ def fine_excess(bp_row, z, protect=None):
     """
     rows = np.asarray(bp_row, dtype=np.float64)
     if rows.ndim == 2:
-        return _fine_excess_joint(rows, z, protect)
+        return _fine_excess_joint(rows, z, protect, held)
     lb = np.log(np.maximum(rows, 1e-30))
     m = lb.shape[0]
     hit = np.zeros(m, np.bool_)
@@ -953,35 +970,53 @@ def fine_excess(bp_row, z, protect=None):
     # three channels away would lift a clean channel's excess: as neighbours, the
     # channels found are replaced by the linear interpolation of the others, and the
     # test is repeated until the channels found no longer change (at most 4 times)
-    return _found_channels([lb], e > z * sc, lambda nbs: _loo_excess(lb, nbs[0])[0] > z * sc, protect)
+    return _found_channels([lb], e > z * sc, lambda nbs: _loo_excess(lb, nbs[0])[0] > z * sc, protect, held)
 
 
-def _found_channels(lbs, found, test, protect):
+def _found_channels(lbs, found, test, protect, held=None):
     """The channels found by :func:`fine_excess`: ``found`` refined by ``test`` (the
     channels found, given each product's log bandpass with them replaced as
-    neighbours) until they no longer change, at most 4 times; the three outer
-    channels at each end and the protected ones left out."""
+    neighbours) until they no longer change, at most 4 times; the three outer channels
+    at each end and the protected ones left out.  With ``held`` channels, a channel
+    found within three of them (the predictions' reach), not held itself, is kept only
+    when the test finds it again with the held channels replaced as neighbours from the
+    start; nothing else changes (inside a held run the neighbours would be the run's
+    outer ones, and the emitter's own channels stand out of them).  The second test runs
+    only where such a channel was found: rarely."""
     m = lbs[0].shape[0]
-    for _ in range(4):
-        if not found.any():
-            break
-        nbs = []
-        for lb in lbs:
-            nb = np.where(found, np.nan, lb)
-            kernels.fill_nan_1d(nb)
-            nbs.append(nb)
-        now = test(nbs)
-        if np.array_equal(now, found):
-            break
-        found = now
+    held = None if held is None or not np.any(held) else np.asarray(held, dtype=np.bool_)
+    out = _refined(lbs, found, test)
+    if held is not None:
+        near = (np.convolve(held.astype(np.int64), np.ones(7, np.int64), mode="same") > 0) & ~held
+        if (out & near).any():
+            out = out & ~(near & ~_refined(lbs, found, test, held))
     hit = np.zeros(m, np.bool_)
-    hit[3:m - 3] = found[3:m - 3]
+    hit[3:m - 3] = out[3:m - 3]
     if protect is not None:
         hit &= ~np.asarray(protect, dtype=np.bool_)
     return hit
 
 
-def _fine_excess_joint(rows, z, protect=None):
+def _refined(lbs, found, test, held=None):
+    """The iteration of :func:`_found_channels` (``held`` replaced as neighbours at every
+    step, the first step taken even when it changes nothing)."""
+    first = held is not None
+    for _ in range(4):
+        if not found.any():
+            break
+        nbs = []
+        for lb in lbs:
+            nb = np.where(found if held is None else found | held, np.nan, lb)
+            kernels.fill_nan_1d(nb)
+            nbs.append(nb)
+        now = test(nbs)
+        if np.array_equal(now, found) and not first:
+            break
+        found, first = now, False
+    return found
+
+
+def _fine_excess_joint(rows, z, protect=None, held=None):
     """:func:`fine_excess` on a feed pair's bandpasses (K, nchan) together: each
     product's excess in its own robust sigma, summed over sqrt(K) (unit variance
     again), must pass ``z``; the neighbours found are replaced in every product."""
@@ -1002,7 +1037,7 @@ def _fine_excess_joint(rows, z, protect=None):
         return sum((f[0] if nb is None else _loo_excess(lb, nb)[0]) / sc
                    for lb, nb, sc, f in zip(lbs, nbs, scs, first)) / math.sqrt(k)
 
-    return _found_channels(list(lbs), joint([None] * k) > z, lambda nbs: joint(nbs) > z, protect)
+    return _found_channels(list(lbs), joint([None] * k) > z, lambda nbs: joint(nbs) > z, protect, held)
 
 
 def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES):
