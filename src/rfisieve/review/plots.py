@@ -166,7 +166,9 @@ def _strip_lanes(fig, strip, shown, fmin, fmax, fontsize):
     lanes, out = [], []
     for e in shown:
         a, b = max(e["start_mhz"], fmin), min(e["stop_mhz"], fmax)
-        width = _text_width(fig, strip, " " + e["name"] + " ", fontsize)
+        # the label's padding measured as letters: the renderer's extent of a text drops
+        # its trailing space, and two labels met without a gap ("...410 MHzTV ...")
+        width = _text_width(fig, strip, "nn" + e["name"] + "nn", fontsize)
         # a label that would run past the right edge is drawn leftwards from the bar's end
         right = a + width <= fmax
         lo, hi = (a, max(b, a + width)) if right else (min(a, b - width), b)
