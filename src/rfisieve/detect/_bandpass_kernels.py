@@ -318,24 +318,32 @@ def row_medians(blk, cnt, out):
 @njit(**_opts)
 def group_means(x, ex, off, g, gm, gbad):
     """gm[j, c] = mean of x over the rows of group j (rows j g - off .. j g - off +
-    g - 1 within the plane) not excluded; gbad[j, c] = no such row."""
+    g - 1 within the plane) not excluded, less the largest of them when there are two
+    or more; gbad[j, c] = no such row."""
     n, m = x.shape
     ng = gm.shape[0]
     cnt = np.zeros(m, np.int64)
+    big = np.empty(m, np.float32)
     for j in range(ng):
         a = max(0, j * g - off)
         b = min(n, (j + 1) * g - off)
         for c in range(m):
             gm[j, c] = 0.0
             cnt[c] = 0
+            big[c] = -np.inf
         for t in range(a, b):
             for c in range(m):
                 if not ex[t, c]:
-                    gm[j, c] += x[t, c]
+                    v = x[t, c]
+                    gm[j, c] += v
                     cnt[c] += 1
+                    big[c] = max(big[c], v)
         for c in range(m):
-            if cnt[c] > 0:
-                gm[j, c] /= cnt[c]
+            k = cnt[c]
+            if k > 1:
+                gm[j, c] = (gm[j, c] - big[c]) / (k - 1)
+                gbad[j, c] = False
+            elif k == 1:
                 gbad[j, c] = False
             else:
                 gbad[j, c] = True

@@ -137,8 +137,11 @@ def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
     the q-quantile (q = ``BANDPASS_QUANTILE`` = 1/4) over samples not excluded (a
     window of 2 T dumps centred on the block, so the quantile has at least T / 2
     dumps also at a scan's ends), taken over the means of aligned groups of
-    ``GROUP_DUMPS`` dumps (the same noise as the quantile of the dumps themselves,
-    at an eighth of the cost).  A lower quantile because an emitter present in
+    ``GROUP_DUMPS`` dumps, each without its largest dump (about the noise of the
+    quantile of the dumps themselves, at an eighth of the cost; without the largest
+    dump, because a pulse train faster than the groups, such as a radar pulsing one
+    dump in six, puts a pulse in every group and would lift every group mean, so the
+    quantile too).  A lower quantile because an emitter present in
     under 1 - q = 3/4 of the window moves it little (breakdown point q; Hampel
     1974, JASA 69, 383), where a median absorbs any emitter on in over half of the
     window: a satellite pass of 400 dumps fills 60 % of a 512-dump window.  Noise
@@ -177,9 +180,9 @@ def block_bandpass(values, exclude, t0=0, bandpass_dumps=256):
     bp = np.empty((len(blocks), m), np.float32)
     rowblock = np.empty(n, np.int64)
     half = T // 2
-    # means over aligned groups of G dumps first: the quantile of n / G group means
-    # has the noise of the quantile of n dumps (both 1.86 sigma**2 / n), at a
-    # G-th of the cost
+    # means over aligned groups of G dumps first (each without its largest dump): the
+    # quantile of n / G group means has about the noise of the quantile of n dumps
+    # (both near 1.86 sigma**2 / n), at a G-th of the cost
     G = GROUP_DUMPS if T % (2 * GROUP_DUMPS) == 0 else 1
     off = int(t0) % G
     ng = -(-(n + off) // G)
