@@ -376,7 +376,8 @@ class BlockMeans:
         # flagged upstream): their bandpass is only their neighbours' interpolation,
         # so the baselines leave them out
         held = np.zeros(bp.shape, np.int64)
-        first = np.flatnonzero(np.r_[True, self.pblock[1:] != self.pblock[:-1]])   # parts run block by block
+        # the first part of each bandpass block (parts run block by block)
+        self.bstart = first = np.flatnonzero(np.r_[True, self.pblock[1:] != self.pblock[:-1]])
         held[self.pblock[first]] = np.add.reduceat(scnt, first, axis=0)
         self.bases = _baselines(bp, int(half_width), held == 0)
         # the temporal baseline: the scan's reference shape itself (:func:`reference_of`),
@@ -550,7 +551,7 @@ def persistence_test(products, z, protect=None):
     # (fine_excess's ``held``)
     held = np.zeros((nb, m), np.bool_)
     if cand.any():
-        first = np.flatnonzero(np.r_[True, b0.pblock[1:] != b0.pblock[:-1]])   # parts run block by block
+        first = b0.bstart
         per_block = np.add.reduceat(cand.astype(np.int32), first, axis=0)
         nparts = np.diff(np.r_[first, b0.P])
         held[b0.pblock[first]] = (2 * per_block >= nparts[:, None]) & (per_block > 0)
