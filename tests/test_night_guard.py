@@ -363,3 +363,35 @@ def test_unlock_prints_no_review_page_that_does_not_exist(night, tmp_path):
     res = _rfisieve("run", "--inputs", str(night), "--outdir", str(tmp_path / "fresh"), "--", "--unlock")
     assert res.returncode == 0, res.stderr[-2000:]
     assert "index.html" not in res.stderr and "report" not in res.stderr
+
+
+def test_snakemake_as_rfisieve_run_starts_it_exits_as_snakemake_does(tmp_path):
+    """rfisieve run starts Snakemake through rfisieve.cli.snakemake_process, which only
+    skips Python's shutdown: the output and exit status are plain snakemake's (the
+    reference: `python -m snakemake` itself, run beside it)."""
+    from rfisieve.cli.snakemake_process import MODULE
+
+    for args in (["--version"], ["--no-such-option"], ["--snakefile", str(tmp_path / "none"), "--cores", "1"]):
+        ref = subprocess.run([sys.executable, "-m", "snakemake", *args], cwd=tmp_path,
+                             capture_output=True, text=True, timeout=120)
+        got = subprocess.run([sys.executable, "-m", MODULE, *args], cwd=tmp_path,
+                             capture_output=True, text=True, timeout=120)
+        assert got.returncode == ref.returncode, args
+        assert got.stdout == ref.stdout, args
+    assert ref.returncode != 0 and "none" in got.stderr  # the missing Snakefile is named
+
+
+def test_snakemake_started_by_rfisieve_run_counts_as_live(tmp_path):
+    from rfisieve.cli.snakemake_process import MODULE
+
+    fake = tmp_path / "bin" / MODULE  # a process whose command line names the module, running here
+    fake.parent.mkdir()
+    fake.symlink_to(shutil.which("sleep"))
+    proc = subprocess.Popen([str(fake), "30"], cwd=tmp_path)
+    try:
+        deadline = time.time() + 10
+        while guard.snakemake_processes_in(tmp_path) != [proc.pid] and time.time() < deadline:
+            time.sleep(0.02)
+        assert guard.snakemake_processes_in(tmp_path) == [proc.pid]
+    finally:
+        proc.kill()

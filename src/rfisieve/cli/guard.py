@@ -191,12 +191,15 @@ def snakemake_processes_in(checkout):
     """
     import psutil
 
+    from rfisieve.cli.snakemake_process import MODULE
+
+    names = ("snakemake", MODULE)  # plain snakemake, or as rfisieve run starts it
     root = os.path.realpath(checkout)
     found = []
     for proc in psutil.process_iter(["pid", "cmdline"]):
         try:
             cmd = proc.info["cmdline"] or []
-            if proc.pid == os.getpid() or not any(os.path.basename(c) == "snakemake" for c in cmd[:3]):
+            if proc.pid == os.getpid() or not any(os.path.basename(c) in names for c in cmd[:3]):
                 continue
             directory = None
             for flag in ("--directory", "-d"):
