@@ -293,7 +293,7 @@ def test_a_pulse_one_product_finds_alone_is_flagged_in_both():
     # sum carries (3 + 2.4) sqrt(3) / sqrt(2) = 6.6 box sigma, 2.1 sigma above the
     # threshold (found with probability norm.cdf(2.1) = 0.98, scipy.stats), so the
     # joint pass must flag in the second product the pulses the first found alone
-    # (before 2026-12-04 it left them out of the pair's sum as already flagged, and
+    # (before 2026-12-03 it left them out of the pair's sum as already flagged, and
     # flagged none of them); clean samples away from the pulses stay under 0.2 %.
     from scipy.ndimage import binary_dilation
 
@@ -379,6 +379,46 @@ def test_edge_flags_match_the_definition():
     near = p[1:-1, :-2] | p[1:-1, 2:] | p[:-2, 1:-1] | p[2:, 1:-1]
     want = (lev == 0) & ~det & (g > 20) & near
     assert np.array_equal(got, want)
+    # with ``done``: the samples tested are those not done; detections are neighbours
+    done = det & (rng.random((40, 30)) < 0.5)
+    got = edge_flags(g, lev, det, 10.0, z=2.0, done=done)
+    assert np.array_equal(got, (lev == 0) & ~done & (g > 20) & near)
+
+
+def test_a_pulse_edge_one_product_found_is_judged_by_the_pair():
+    # Two-channel pulses with a weaker third channel: 6 and 2.5 sigma in the first
+    # product, 4.8 and 4.0 in the second.  The second product's edge test (3 sigma next
+    # to a detection) finds its third channel alone in most dumps; the first's alone
+    # with probability norm.sf(0.5) = 0.31 (scipy.stats).  The pair's summed residual
+    # at that channel is (2.5 + 4.0) / sqrt(2) = 4.6 sigma, above the edge threshold 3
+    # with probability norm.cdf(1.6) = 0.945: the pair's edge test must flag the edge
+    # in the first product too (before, it skipped a sample either product
+    # had detected, and the first product kept 0.55 of its edges).
+    from scipy.ndimage import binary_dilation
+
+    from rfisieve.detect.sumthreshold import combined_flagger
+
+    rng = np.random.default_rng(13)
+    n, m = 512, 128
+    body, edge = np.zeros((n, m), bool), np.zeros((n, m), bool)
+    for i in range(40):
+        t, c = 10 + 12 * i, 8 + (i * 29) % 110
+        body[t, c:c + 2] = True
+        edge[t, c + 2] = True
+    planes = [rng.normal(1.0, SIGMA, (n, m)) for _ in range(2)]
+    for x, (b, e) in zip(planes, ((6.0, 2.5), (4.8, 4.0))):
+        x[body] += b * SIGMA
+        x[edge] += e * SIGMA
+    planes = [x.astype(np.float32) for x in planes]
+    s = dict(chi1=8.0, compact_sigma=4.5)
+    alone = [sumthreshold_flagger(x, sigma=SIGMA, **s) for x in planes]
+    both = combined_flagger(planes, [SIGMA, SIGMA], **s)
+    second_only = edge & alone[1] & ~alone[0]
+    assert second_only.sum() >= 15
+    assert both[0][second_only].mean() >= 0.85
+    far = ~binary_dilation(body | edge, np.ones((3, 5), bool))
+    for b in both:
+        assert b[body].mean() > 0.95 and b[far].mean() < 0.002
 
 
 def test_pulse_edge_left_by_sumthreshold_is_flagged():
@@ -568,7 +608,7 @@ def test_bandpass_ignores_a_pulse_train_faster_than_its_groups():
     # Serfling 1980, 2.3.3).  A radar pulsing one dump in six puts a pulse in every
     # aligned group of 8 dumps whose means the quantile is taken over; each group's
     # mean is now taken without its largest dump, so a pulse in a group does not lift
-    # it (before 2026-12-04 the channel's bandpass rose by 1/8 of a pulse: 19 % here,
+    # it (before 2026-12-03 the channel's bandpass rose by 1/8 of a pulse: 19 % here,
     # and the fine test took the channel for a carrier).
     rng = np.random.default_rng(13)
     n, m, c = 1024, 64, 30

@@ -364,15 +364,15 @@ def masked_row_medians(a, ok, out):
 
 
 @njit(**_opts)
-def edge_test(g, lev0, det, thr, out):
-    """out[t, c] = True for free samples (lev0 == 0, not det) with g[t, c] > thr next
-    to a detected sample in the same dump (c - 1, c + 1) or channel (t - 1, t + 1).
-    Returns the number marked."""
+def edge_test(g, lev0, det, done, thr, out):
+    """out[t, c] = True for free samples (lev0 == 0, not done) with g[t, c] > thr next
+    to a detected sample (det) in the same dump (c - 1, c + 1) or channel (t - 1,
+    t + 1).  Returns the number marked."""
     n, m = g.shape
     hits = 0
     for t in range(n):
         for c in range(m):
-            if lev0[t, c] != 0 or det[t, c] or g[t, c] <= thr:
+            if lev0[t, c] != 0 or done[t, c] or g[t, c] <= thr:
                 continue
             near = ((c > 0 and det[t, c - 1]) or (c + 1 < m and det[t, c + 1])
                     or (t > 0 and det[t - 1, c]) or (t + 1 < n and det[t + 1, c]))

@@ -1080,7 +1080,7 @@ def compact_flags(grid, lev0, detected, unit_per_sigma, z, shapes=COMPACT_SHAPES
     return out
 
 
-def edge_flags(grid, lev0, detected, unit_per_sigma, z=EDGE_SIGMA):
+def edge_flags(grid, lev0, detected, unit_per_sigma, z=EDGE_SIGMA, done=None):
     r"""The edges of detected shapes: free samples above z sigma next to a detection.
 
     Method: a pulse or burst extends past the part that SumThreshold found when its
@@ -1106,12 +1106,17 @@ def edge_flags(grid, lev0, detected, unit_per_sigma, z=EDGE_SIGMA):
         Grid steps per noise sigma.
     z : float
         Threshold in sigma of one sample.
+    done : ndarray of bool, optional
+        Samples not tested (default: ``detected``).  A feed pair's test on its summed
+        residual takes as neighbours what either product detected, and tests the
+        samples only one of them detected (:func:`rfisieve.detect.sumthreshold.combined_flagger`).
 
     Returns
     -------
     ndarray of bool
     """
     out = np.zeros(grid.shape, np.bool_)
-    kernels.edge_test(grid, lev0, np.ascontiguousarray(detected, dtype=np.bool_),
-                      int(math.floor(z * unit_per_sigma)), out)
+    detected = np.ascontiguousarray(detected, dtype=np.bool_)
+    done = detected if done is None else np.ascontiguousarray(done, dtype=np.bool_)
+    kernels.edge_test(grid, lev0, detected, done, int(math.floor(z * unit_per_sigma)), out)
     return out

@@ -431,7 +431,10 @@ def combined_flagger(planes, sigmas, masks=None, invalids=None, t0=0, protect=No
     _st_freq(z, lev, rowbad, colbad, unit, rho, _npass(s.get("max_window_freq", 128)), hit, True)
     if s.get("compact_sigma", 0.0):
         hit |= compact_flags(z, lev, hit, unit / float(s.get("chi1", 8.0)), float(s["compact_sigma"]))
-        hit |= edge_flags(z, lev, hit | own[0][lo:hi] | own[1][lo:hi], unit / float(s.get("chi1", 8.0)))
+        # next to what either product detected; tested where at most one did (lev
+        # holds those both did): a pulse's edge one product found alone is judged by z
+        hit |= edge_flags(z, lev, hit | own[0][lo:hi] | own[1][lo:hi], unit / float(s.get("chi1", 8.0)),
+                          done=hit)
     hit &= lev != kernels.LEV_INVALID
     out = own               # fresh arrays of _flag's: or'ed in place
     for d in out:
